@@ -132,7 +132,7 @@ class WeekPart:
         return ("monday", "tuesday", "wednesday", "thursday", "friday", "saturday", "sunday", UNKNOWN)
 
     def labels_for(self, events: pd.DataFrame) -> pd.Series:
-        dow = _local_times(events["timestamp"], self.timezone).dt.dayofweek.to_numpy()
+        dow = _local_times(events["timestamp"], self.timezone).dt.day_of_week.to_numpy()
         if self.levels_kind == "weekday_weekend":
             out = np.where(dow >= 5, "weekend", "weekday").astype(object)
         else:

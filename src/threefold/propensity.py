@@ -102,8 +102,8 @@ def estimate_position_propensity(
     *,
     relevance_key: Sequence[str] = ("item_id",),
     max_position: int | None = None,
-    max_iter: int = 500,
-    tol: float = 1e-9,
+    max_iter: int = 5000,
+    tol: float = 1e-7,
     min_varied_share: float = 0.05,
 ) -> PositionPropensity:
     """Estimate ``theta_k / theta_1`` from the impressions and clicks of a log.
@@ -118,8 +118,8 @@ def estimate_position_propensity(
         Columns whose combination shares one relevance ``gamma``.
     max_position : int, optional
         Ignore impressions below this slot (default: the deepest slot seen).
-    max_iter : int, default=500
-    tol : float, default=1e-9
+    max_iter : int, default=5000
+    tol : float, default=1e-7
         Stop when no ratio moves by more than ``tol``.
     min_varied_share : float, default=0.05
         Warn (:class:`PropensityWarning`) when fewer impressions than this share

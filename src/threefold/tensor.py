@@ -160,13 +160,11 @@ class SparseTensor:
         ndim = len(shape)
         names = tuple(mode_names) if mode_names is not None else tuple(f"mode{n}" for n in range(ndim))
         vocabs = tuple(vocabularies) if vocabularies is not None else (None,) * ndim
+        if np.dtype(dtype) not in (np.float32, np.float64):
+            raise ValueError(f"SparseTensor dtype must be float32 or float64, got {np.dtype(dtype)}.")
         values = np.asarray(values, dtype=dtype)
         conf = np.ones_like(values) if confidence is None else np.asarray(confidence, dtype=dtype)
-        if coords.size and coords.ndim == 2 and coords.shape[0] == ndim:
-            flat = np.ravel_multi_index(tuple(coords.astype(np.int64)), tuple(shape)) if np.all(coords >= 0) else None
-            if flat is not None and np.unique(flat).size != flat.size:
-                raise ValueError("coords hold duplicate cells; aggregate them before building a tensor.")
-        return cls(
+        tensor = cls(
             coords=coords,
             shape=tuple(shape),
             mode_names=names,
@@ -176,6 +174,10 @@ class SparseTensor:
             stored_preference=values,
             stored_confidence=conf,
         )
+        flat = np.ravel_multi_index(tuple(tensor.coords.astype(np.int64)), tensor.shape)
+        if np.unique(flat).size != flat.size:
+            raise ValueError("coords hold duplicate cells; aggregate them before building a tensor.")
+        return tensor
 
     @classmethod
     def from_dense(cls, array: np.ndarray, *, mode_names: Sequence[str] | None = None, w0: float = 1.0) -> "SparseTensor":
