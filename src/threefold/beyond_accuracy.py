@@ -238,7 +238,9 @@ def top_k_kendall_distance(a: np.ndarray, b: np.ndarray, p: float = 0.5, *, norm
 
     Writing an absent item's rank as "after every listed item", cases 1-3 all
     count discordant pairs and case 4 is a pair tied in exactly one list, which
-    is how the vectorized code computes it.
+    is how the vectorized code computes it. (The four cases are recalled from
+    the paper, not re-read: the copy at hand showed only its abstract and the
+    Kendall tau between permutations, which case 1 reproduces.)
 
     Parameters
     ----------
