@@ -12,6 +12,13 @@ With ``n`` observations:
 * IPS    ``V = (1/n) Σ w_i y_i``            (Schnabel et al., ICML 2016)
 * SNIPS  ``V = Σ w_i y_i / Σ w_i``          (Swaminathan & Joachims, NeurIPS 2015)
 
+IPS is unbiased whenever ``E[w y]`` is the target value (e.g. ``w = 1/θ`` for
+the rate of relevant items among those shown). SNIPS divides by ``Σ w`` instead
+of ``n`` and is consistent only when the weights average to 1 under the
+logging distribution, i.e. when ``w`` is a likelihood ratio (the evaluated
+policy's probability of the logged action over the logging policy's); with raw
+inverse examination propensities ``1/θ`` use IPS.
+
 Clipping replaces every weight above ``max_weight`` by ``max_weight``, trading
 a little bias for much lower variance when propensities are small.
 
@@ -97,7 +104,8 @@ def click_estimates(rewards: np.ndarray, weights: np.ndarray, *, max_weight: flo
     rewards : ndarray of shape (n,), float
         Per-observation reward ``y`` (1 for a click, or a gain).
     weights : ndarray of shape (n,), float, > 0
-        Inverse propensities ``1 / θ`` of the observations.
+        Importance weights of the observations: inverse propensities ``1 / θ``
+        or likelihood ratios (see the module docstring for when SNIPS applies).
     max_weight : float or None, default=None
         Clip weights at this value (>= 1); ``None`` disables clipping.
 
