@@ -1,0 +1,411 @@
+"""Implicit-weighted Tucker by alternating least squares, linear in the stored cells.
+
+The model ``x̂ = G ×_1 F_1 ... ×_N F_N`` minimizes, over ALL cells of the tensor,
+
+    L = Σ_cells w · (p − x̂)² + reg · (Σ_n ‖F_n‖²_F + ‖G‖²_F)
+
+with ``p`` and ``w`` from the feedback weighting (``w = w0`` and ``p = 0`` on every
+cell not stored) — the confidence weighting of implicit feedback (Hu, Koren &
+Volinsky, ICDM 2008) as used for CP by iTALS (Hidasi & Tikk, ECML-PKDD 2012),
+here with the Tucker model of Karatzoglou et al., "Multiverse recommendation",
+RecSys 2010 (who fit explicit ratings by SGD). The all-cells sums are never
+materialized:
+
+* **row of mode n** (``v_e = G ×_{m≠n} F_m[i_m(e)]``, length ``R_n``)::
+
+      (w0 · G_(n) (⊗_{m≠n} F_mᵀF_m) G_(n)ᵀ + Σ_e (w_e − w0) v_e v_eᵀ + reg·I) u = Σ_e w_e p_e v_e
+
+  The first term is ``Σ v vᵀ`` over every cell of the slice, the sums run over
+  the row's stored cells only.
+* **core** (``k_e = ⊗_n F_n[i_n(e)]``, length ``P = Π R_n``)::
+
+      (w0 · ⊗_n F_nᵀF_n + Σ_e (w_e − w0) k_e k_eᵀ + reg·I) vec(G) = Σ_e w_e p_e k_e
+
+  solved exactly when the core is small (``P`` ≤ 2,000 and forming the stored
+  part costs at most 2·10¹⁰ multiply-adds), otherwise by conjugate gradient
+  with a Jacobi preconditioner, warm-started from the current core, whose
+  matrix-vector product applies the Kronecker part mode by mode and the stored
+  part as one evaluation plus one scatter over the stored cells.
+
+Each block update minimizes ``L`` exactly (rows, exact core) or decreases it
+(CG from the current core), so the loss never increases from sweep to sweep.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from typing import Callable, Sequence
+
+import numpy as np
+import scipy.linalg
+
+from threefold._checks import check_choice, check_int, check_number
+from threefold.exceptions import ConvergenceWarning
+from threefold.tensor import SparseTensor
+from threefold.tucker import SweepStats, TuckerResult, TuckerScorer, check_tucker_rank, hosvd_factors
+from threefold.tucker_kernels import FiberTree, build_fiber_tree, evaluate, implicit_rows, ttmc
+
+__all__ = ["implicit_tucker", "update_rows", "update_core", "implicit_loss", "implicit_tucker_fold_in",
+           "ImplicitTuckerModel"]
+
+#: The exact core solve is used only up to this many core entries ...
+CORE_EXACT_ENTRIES = 2000
+#: ... and while forming its stored-cell part costs at most this many multiply-adds (nnz · P²).
+CORE_EXACT_WORK = 2e10
+
+Callback = Callable[[int, TuckerResult], "bool | None"]
+
+
+def _multi_mode(core: np.ndarray, matrices: Sequence[np.ndarray | None]) -> np.ndarray:
+    """``core ×_n matrices[n]`` for every n whose matrix is not None."""
+    out = core
+    for n, m in enumerate(matrices):
+        if m is not None:
+            out = np.moveaxis(np.tensordot(m, out, axes=(1, n)), 0, n)
+    return out
+
+
+def _unfold(core: np.ndarray, n: int) -> np.ndarray:
+    return np.moveaxis(core, n, 0).reshape(core.shape[n], -1)
+
+
+def _tree(tensor: SparseTensor, mode: int, trees: dict | None) -> FiberTree:
+    if trees is None:
+        return build_fiber_tree(tensor.coords, tensor.shape, mode)
+    if mode not in trees:
+        trees[mode] = build_fiber_tree(tensor.coords, tensor.shape, mode)
+    return trees[mode]
+
+
+def _core_mode(shape: tuple[int, ...], rank: tuple[int, ...]) -> int:
+    """Root of the core products: the mode with the smallest ``I_n · Π_{m≠n} R_m``."""
+    total = int(np.prod(rank))
+    return int(np.argmin([shape[n] * total // rank[n] for n in range(len(shape))]))
+
+
+def update_rows(tensor: SparseTensor, mode: int, core: np.ndarray, factors: Sequence[np.ndarray], reg: float,
+                *, trees: dict | None = None) -> np.ndarray:
+    """Solve every row of one mode's weighted system, the core and other factors fixed.
+
+    Parameters
+    ----------
+    tensor : SparseTensor
+        ``shape[mode]`` may differ from the model's (fold-in of new rows).
+    mode : int
+    core : ndarray of shape (R_1, ..., R_N), float64
+    factors : sequence of ndarray of shape (I_n, R_n), float64; ``factors[mode]`` is unused
+    reg : float
+    trees : dict or None
+        Cache of fiber trees by root mode.
+
+    Returns
+    -------
+    ndarray of shape (tensor.shape[mode], R_mode), float64
+    """
+    grams = [None if m == mode else f.T @ f for m, f in enumerate(factors)]
+    base = tensor.w0 * _unfold(core, mode) @ _unfold(_multi_mode(core, grams), mode).T
+    base = 0.5 * (base + base.T) + reg * np.eye(core.shape[mode])
+    preference, confidence = tensor.weights()
+    shaped = list(factors)
+    shaped[mode] = np.zeros((tensor.shape[mode], core.shape[mode]))
+    return implicit_rows(_tree(tensor, mode, trees), tensor.coords, preference, confidence, tensor.w0, core, shaped,
+                         base, tensor.shape[mode])
+
+
+def _scatter(tree: FiberTree, tensor: SparseTensor, values: np.ndarray, factors, rank) -> np.ndarray:
+    """``Σ_e values[e] · k_e`` folded into a core: ``F_rᵀ Y`` with ``Y`` from the fiber tree."""
+    root = tree.root
+    y = ttmc(tree, tensor.coords, values, factors, tensor.shape[root])
+    permuted = (factors[root].T @ y).reshape(tuple(rank[m] for m in tree.levels))
+    return np.transpose(permuted, np.argsort(tree.levels))
+
+
+def _stored_kron_rows(tensor: SparseTensor, factors, start: int, stop: int) -> np.ndarray:
+    """Rows ``k_e = ⊗_n F_n[i_n(e)]`` of cells ``start..stop`` (C order, matching ``core.ravel()``)."""
+    z = factors[0][tensor.coords[0, start:stop]]
+    for n in range(1, len(factors)):
+        rows = factors[n][tensor.coords[n, start:stop]]
+        z = (z[:, :, None] * rows[:, None, :]).reshape(z.shape[0], -1)
+    return z
+
+
+def update_core(tensor: SparseTensor, core: np.ndarray, factors: Sequence[np.ndarray], reg: float, *,
+                solver: str = "auto", cg_steps: int = 10, trees: dict | None = None) -> np.ndarray:
+    """Update the core from its normal equations, the factors fixed.
+
+    Parameters
+    ----------
+    tensor : SparseTensor
+    core : ndarray of shape (R_1, ..., R_N), float64
+        Current core (the CG start).
+    factors : sequence of ndarray of shape (I_n, R_n), float64
+    reg : float
+    solver : {"auto", "exact", "cg"}, default="auto"
+        "exact" forms the ``P × P`` system (refused above 2,000 core entries);
+        "cg" runs ``cg_steps`` preconditioned CG steps; "auto" picks "exact"
+        while ``P ≤ 2000`` and ``nnz · P² ≤ 2·10¹⁰``.
+    cg_steps : int, default=10
+    trees : dict or None
+
+    Returns
+    -------
+    ndarray of shape (R_1, ..., R_N), float64
+    """
+    rank = core.shape
+    size = core.size
+    grams = [f.T @ f for f in factors]
+    preference, confidence = tensor.weights()
+    w0 = tensor.w0
+    if solver == "auto":
+        solver = "exact" if size <= CORE_EXACT_ENTRIES and tensor.nnz * size * size <= CORE_EXACT_WORK else "cg"
+    if solver == "exact":
+        if size > CORE_EXACT_ENTRIES:
+            raise ValueError(f"The exact core solve forms a {size} × {size} matrix; use solver='cg' above "
+                             f"{CORE_EXACT_ENTRIES} core entries.")
+        system = w0 * _kron_all(grams) + reg * np.eye(size)
+        rhs = np.zeros(size)
+        wp = (confidence * preference).astype(np.float64)
+        c = (confidence - w0).astype(np.float64)
+        block = max(1, (1 << 22) // size)
+        for start in range(0, tensor.nnz, block):
+            z = _stored_kron_rows(tensor, factors, start, min(start + block, tensor.nnz))
+            system += z.T @ (c[start:start + block, None] * z)
+            rhs += z.T @ wp[start:start + block]
+        return scipy.linalg.solve(system, rhs, assume_a="pos").reshape(rank)
+    tree = _tree(tensor, _core_mode(tensor.shape, rank), trees)
+    c = (confidence - w0).astype(np.float64)
+
+    def matvec(x: np.ndarray) -> np.ndarray:
+        stored = _scatter(tree, tensor, c * evaluate(tree, tensor.coords, x, factors), factors, rank)
+        return w0 * _multi_mode(x, grams) + stored + reg * x
+
+    rhs = _scatter(tree, tensor, (confidence * preference).astype(np.float64), factors, rank)
+    diag = w0 * _kron_all([np.diag(g)[None, :] for g in grams]).reshape(rank) + reg
+    diag = diag + _scatter(tree, tensor, c, [f * f for f in factors], rank)
+    return _pcg(matvec, rhs, core.astype(np.float64), diag, cg_steps)
+
+
+def _kron_all(matrices: Sequence[np.ndarray]) -> np.ndarray:
+    out = matrices[0]
+    for m in matrices[1:]:
+        out = np.kron(out, m)
+    return out
+
+
+def _pcg(matvec, rhs: np.ndarray, x: np.ndarray, diag: np.ndarray, steps: int) -> np.ndarray:
+    """Preconditioned conjugate gradient (Jacobi), ``steps`` iterations from ``x`` (Hestenes & Stiefel 1952)."""
+    r = rhs - matvec(x)
+    z = r / diag
+    p = z.copy()
+    rz = float(np.sum(r * z))
+    stop = 1e-28 * float(np.sum(rhs * rhs / diag))
+    for _ in range(steps):
+        if rz <= stop:
+            break
+        ap = matvec(p)
+        alpha = rz / float(np.sum(p * ap))
+        x = x + alpha * p
+        r = r - alpha * ap
+        z = r / diag
+        rz_new = float(np.sum(r * z))
+        p = z + (rz_new / rz) * p
+        rz = rz_new
+    return x
+
+
+def implicit_loss(tensor: SparseTensor, core: np.ndarray, factors: Sequence[np.ndarray], reg: float, *,
+                  trees: dict | None = None) -> tuple[float, float]:
+    """The weighted, regularized loss over all cells and the weighted fit.
+
+    ``L = w0 ⟨G, G ×_n F_nᵀF_n⟩ + Σ_e [w_e (p_e − x̂_e)² − w0 x̂_e²] + reg (Σ‖F_n‖² + ‖G‖²)``
+    and ``fit = 1 − sqrt(E / Σ_e w_e p_e²)`` with ``E`` the loss without the
+    regularization (the weighted squared error over all cells).
+
+    Returns
+    -------
+    loss : float
+    fit : float
+    """
+    grams = [f.T @ f for f in factors]
+    tree = _tree(tensor, _core_mode(tensor.shape, core.shape), trees)
+    preference, confidence = tensor.weights()
+    p = preference.astype(np.float64)
+    w = confidence.astype(np.float64)
+    xhat = evaluate(tree, tensor.coords, core, factors)
+    error = tensor.w0 * float(np.sum(core * _multi_mode(core, grams)))
+    error += float(np.sum(w * (p - xhat) ** 2 - tensor.w0 * xhat * xhat))
+    penalty = reg * (sum(float(np.sum(f * f)) for f in factors) + float(np.sum(core * core)))
+    total = float(np.sum(w * p * p))
+    fit = 1.0 - np.sqrt(max(error, 0.0) / total) if total > 0 else 1.0
+    return error + penalty, fit
+
+
+def _initial_model(tensor: SparseTensor, rank: tuple[int, ...], init, rng, trees) -> tuple[np.ndarray, list]:
+    if isinstance(init, str):
+        check_choice("init", init, ("hosvd", "random"), owner="implicit_tucker")
+        if init == "random":
+            factors = [rng.random((size, r)) / np.sqrt(r) for size, r in zip(tensor.shape, rank)]
+            return 0.1 * rng.standard_normal(rank), factors
+        values = tensor.preference.astype(np.float64)
+        factors = hosvd_factors(tensor.coords, values, tensor.shape, rank, rng)
+        return _scatter(_tree(tensor, _core_mode(tensor.shape, rank), trees), tensor, values, factors, rank), factors
+    core, given = init
+    core = np.asarray(core, dtype=np.float64)
+    if core.shape != rank or len(given) != tensor.ndim:
+        raise ValueError(f"init must be (core of shape {rank}, {tensor.ndim} factors), got a core of shape {core.shape}.")
+    factors = []
+    for n, f in enumerate(given):
+        f = np.asarray(f, dtype=np.float64)
+        if f.ndim != 2 or f.shape[1] != rank[n] or f.shape[0] > tensor.shape[n]:
+            raise ValueError(f"init factor {n} must have {rank[n]} columns and at most {tensor.shape[n]} rows, "
+                             f"got {f.shape}.")
+        factors.append(np.vstack([f, np.zeros((tensor.shape[n] - f.shape[0], rank[n]))]))  # new indices start at 0
+    return core, factors
+
+
+def implicit_tucker(
+    tensor: SparseTensor,
+    rank: int | Sequence[int],
+    *,
+    reg: float = 0.1,
+    max_iter: int = 20,
+    tol: float = 1e-4,
+    init="hosvd",
+    core_solver: str = "auto",
+    core_cg_steps: int = 10,
+    random_state: int | np.random.Generator | None = None,
+    callback: Callback | None = None,
+) -> TuckerResult:
+    """Fit an implicit-weighted Tucker model by ALS (rows of every mode, then the core).
+
+    Parameters
+    ----------
+    tensor : SparseTensor
+        Preference, confidence and ``w0`` from its feedback weighting.
+    rank : int or sequence of int
+        Core size per mode; each at most its mode's size.
+    reg : float, default=0.1
+        Ridge penalty on every factor and on the core.
+    max_iter : int, default=20
+    tol : float, default=1e-4
+        Stop when the relative loss change between sweeps is below ``tol``.
+    init : {"hosvd", "random"} or (core, factors), default="hosvd"
+        HOSVD factors of the preference tensor with the projected core; random;
+        or a previous model's core and factors, whose factors may have fewer
+        rows than the tensor (indices added since start as zero rows).
+    core_solver : {"auto", "exact", "cg"}, default="auto"
+        See :func:`update_core`.
+    core_cg_steps : int, default=10
+    random_state : int, numpy.random.Generator or None
+    callback : callable or None
+        ``callback(sweep, result)`` after every sweep (``sweep`` 1-based,
+        ``result`` the :class:`TuckerResult` so far); returning True stops the fit.
+
+    Returns
+    -------
+    TuckerResult
+        ``method="implicit"``; history with the loss :func:`implicit_loss` and the weighted fit.
+    """
+    owner = "implicit_tucker"
+    if not isinstance(tensor, SparseTensor):
+        raise TypeError(f"implicit_tucker needs a SparseTensor, got {type(tensor).__name__}.")
+    rank = check_tucker_rank(rank, tensor.shape, owner)
+    reg = check_number("reg", reg, low=0.0, owner=owner)
+    max_iter = check_int("max_iter", max_iter, low=1, owner=owner)
+    tol = check_number("tol", tol, low=0.0, owner=owner)
+    core_solver = check_choice("core_solver", core_solver, ("auto", "exact", "cg"), owner=owner)
+    core_cg_steps = check_int("core_cg_steps", core_cg_steps, low=1, owner=owner)
+    rng = np.random.default_rng(random_state)
+    trees: dict[int, FiberTree] = {}
+    core, factors = _initial_model(tensor, rank, init, rng, trees)
+    history: list[SweepStats] = []
+    converged = False
+    for sweep in range(1, max_iter + 1):
+        start = time.perf_counter()
+        for n in range(tensor.ndim):
+            factors[n] = update_rows(tensor, n, core, factors, reg, trees=trees)
+        core = update_core(tensor, core, factors, reg, solver=core_solver, cg_steps=core_cg_steps, trees=trees)
+        loss, fit = implicit_loss(tensor, core, factors, reg, trees=trees)
+        history.append(SweepStats(sweep, loss, fit, time.perf_counter() - start))
+        if sweep > 1:
+            previous = history[-2].loss
+            converged = abs(previous - loss) <= tol * max(abs(previous), np.finfo(float).tiny)
+        result = TuckerResult(core=core.astype(tensor.dtype), factors=tuple(f.astype(tensor.dtype) for f in factors),
+                              history=tuple(history), converged=converged, method="implicit",
+                              mode_names=tensor.mode_names)
+        if converged or (callback is not None and callback(sweep, result)):
+            break
+    if not converged and tol > 0 and len(history) == max_iter:
+        warnings.warn(f"implicit_tucker stopped after max_iter={max_iter} sweeps before reaching tol={tol:g}.",
+                      ConvergenceWarning)
+    return result
+
+
+def implicit_tucker_fold_in(result: TuckerResult, tensor: SparseTensor, mode: int | str, reg: float) -> np.ndarray:
+    """Rows for new indices of one mode from their own cells, everything else fixed.
+
+    The weighted row system of :func:`update_rows` with the fitted core and
+    factors (Hu, Koren & Volinsky, ICDM 2008, generalized to Tucker); an index
+    with no cells gets the zero row.
+
+    Parameters
+    ----------
+    result : TuckerResult
+    tensor : SparseTensor
+        Cells of the new indices: ``shape[mode]`` counts them, every other mode
+        has the fitted size; its weighting should be the training one.
+    mode : int or str
+    reg : float
+        The regularization the model was fitted with.
+
+    Returns
+    -------
+    ndarray of shape (tensor.shape[mode], R_mode), float64
+    """
+    n = tensor.mode_index(mode)
+    expected = tuple(s if m != n else tensor.shape[n] for m, s in enumerate(result.shape))
+    if tensor.shape != expected:
+        raise ValueError(f"Fold-in cells must have shape {expected} (new rows in mode {n}), got {tensor.shape}.")
+    factors = [np.asarray(f, dtype=np.float64) for f in result.factors]
+    return update_rows(tensor, n, np.asarray(result.core, dtype=np.float64), factors, reg)
+
+
+class ImplicitTuckerModel(TuckerScorer):
+    """Implicit-weighted Tucker model; scores through the shared scoring interface.
+
+    Parameters are those of :func:`implicit_tucker`.
+
+    Attributes
+    ----------
+    result_ : TuckerResult
+    core_ : ndarray of shape (R_1, ..., R_N)
+    factors_ : tuple of ndarray of shape (I_n, R_n)
+    n_iter_ : int
+    """
+
+    def __init__(self, *, rank: int | Sequence[int] = 8, reg: float = 0.1, max_iter: int = 20, tol: float = 1e-4,
+                 init="hosvd", core_solver: str = "auto", core_cg_steps: int = 10,
+                 random_state: int | None = None) -> None:
+        self.rank = rank
+        self.reg = reg
+        self.max_iter = max_iter
+        self.tol = tol
+        self.init = init
+        self.core_solver = core_solver
+        self.core_cg_steps = core_cg_steps
+        self.random_state = random_state
+
+    def fit(self, tensor: SparseTensor, *, callback: Callback | None = None) -> "ImplicitTuckerModel":
+        """Fit to ``tensor``; ``callback(sweep, result)`` as in :func:`implicit_tucker`. Returns self."""
+        self.result_ = implicit_tucker(tensor, self.rank, reg=self.reg, max_iter=self.max_iter, tol=self.tol,
+                                       init=self.init, core_solver=self.core_solver, core_cg_steps=self.core_cg_steps,
+                                       random_state=self.random_state, callback=callback)
+        self.core_ = self.result_.core
+        self.factors_ = self.result_.factors
+        self.n_iter_ = self.result_.n_iter
+        return self
+
+    def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
+        """Rows of new indices of ``mode``; see :func:`implicit_tucker_fold_in`."""
+        return implicit_tucker_fold_in(self._fitted(), tensor, mode, self.reg)

@@ -1,0 +1,453 @@
+"""Compiled kernels of the Tucker models: sparse tensor-times-matrix chains over a fiber tree.
+
+Every kernel walks the stored cells of a :class:`FiberTree`: the cells sorted
+lexicographically by a *root* mode followed by the other modes in increasing
+size (the largest mode is the leaf level). Cells that share an index prefix form
+a node, so work that depends only on a prefix is done once per node instead of
+once per cell (the compressed sparse fiber layout of Smith & Karypis, "Tensor-
+matrix products with a compressed sparse tensor", IA3 2015, applied to the
+Tucker products as in Kaya & Uçar, "High performance parallel algorithms for the
+Tucker decomposition of sparse tensors", ICPP 2016).
+
+Two directions of work:
+
+* **bottom-up** (:func:`ttmc`): ``Y[i_root] = sum_e x_e * kron_{levels 1..} F_m[i_m(e)]``,
+  the tensor times all factor matrices but the root's. Leaves cost ``R_leaf``
+  each, a node at level ``k`` costs ``R_{level k} * prod_{j > k} R_{level j}``.
+* **top-down** (:func:`implicit_rows`, :func:`evaluate`): the core contracted
+  with the factor rows of a cell's non-root modes, ``v_e = G ×_{m ≠ root} F_m[i_m(e)]``,
+  a vector of length ``R_root``; again the prefix contractions are shared.
+
+Column order of ``Y``: C order over the modes ``levels[1:]`` (the first of them
+varies slowest). Callers permute the core with ``levels`` to match.
+
+Work is split into chunks of consecutive level-1 nodes and run in parallel over
+chunks. A chunk owns the rows strictly between its first and last root; those
+two rows go to per-chunk edge buffers that are added serially afterwards, so
+no two threads ever write the same row. Memory: the output plus a few small
+buffers per chunk, never anything of size nnz × rank.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+from numba import njit, prange
+
+__all__ = ["FiberTree", "build_fiber_tree", "pack_factors", "ttmc", "implicit_rows", "evaluate"]
+
+#: Target number of stored cells per parallel chunk.
+CHUNK_CELLS = 32_768
+
+
+@dataclass(frozen=True)
+class FiberTree:
+    """Stored cells ordered for one root mode.
+
+    Attributes
+    ----------
+    levels : ndarray of shape (ndim,), int64
+        Mode at each tree level; ``levels[0]`` is the root mode, the others in
+        increasing size, so the largest mode is the leaf.
+    perm : ndarray of shape (nnz,), int32 or int64
+        Cell positions in lexicographic order of ``levels``.
+    breaks : ndarray of shape (nnz,), int8
+        ``breaks[p]`` is the first level at which cell ``perm[p]`` differs from
+        cell ``perm[p - 1]`` (0 for a new root; ``breaks[0] = 0``).
+    chunks : ndarray of shape (n_chunks + 1,), int64
+        Chunk boundaries in ``perm``; each starts a level-1 node.
+    """
+
+    levels: np.ndarray
+    perm: np.ndarray
+    breaks: np.ndarray
+    chunks: np.ndarray
+
+    @property
+    def root(self) -> int:
+        """The root mode."""
+        return int(self.levels[0])
+
+
+def build_fiber_tree(coords: np.ndarray, shape: tuple[int, ...], root: int) -> FiberTree:
+    """Sort the stored cells for kernels rooted at mode ``root``.
+
+    Parameters
+    ----------
+    coords : ndarray of shape (ndim, nnz), int32
+    shape : tuple of int
+    root : int
+
+    Returns
+    -------
+    FiberTree
+    """
+    ndim, nnz = coords.shape
+    others = sorted((m for m in range(ndim) if m != root), key=lambda m: (shape[m], m))
+    levels = np.array([root] + others, dtype=np.int64)
+    index_dtype = np.int32 if nnz < 2**31 - 1 else np.int64
+    # np.lexsort sorts by its last key first.
+    perm = np.lexsort(tuple(coords[m] for m in levels[::-1])).astype(index_dtype)
+    breaks = np.full(nnz, ndim - 1, dtype=np.int8)
+    for k in range(ndim - 2, -1, -1):
+        keys = coords[levels[k]][perm]
+        changed = np.flatnonzero(keys[1:] != keys[:-1]) + 1
+        breaks[changed] = k
+        del keys, changed
+    if nnz:
+        breaks[0] = 0
+    candidates = np.flatnonzero(breaks <= 1)
+    n_chunks = max(1, min(nnz // CHUNK_CELLS, 64 * numba.get_num_threads()))
+    targets = np.linspace(0, nnz, n_chunks + 1)[:-1]
+    starts = np.unique(candidates[np.minimum(np.searchsorted(candidates, targets), candidates.size - 1)]) if nnz else np.zeros(0, np.int64)
+    chunks = np.append(starts, nnz).astype(np.int64)
+    return FiberTree(levels=levels, perm=perm, breaks=breaks, chunks=chunks)
+
+
+def pack_factors(factors, dtype) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Concatenate factor matrices into one flat array for the kernels.
+
+    Returns
+    -------
+    flat : ndarray of shape (sum_n I_n * R_n,), dtype
+        Row ``i`` of factor ``m`` is ``flat[offsets[m] + i * ranks[m]:][:ranks[m]]``.
+    offsets : ndarray of shape (ndim,), int64
+    ranks : ndarray of shape (ndim,), int64
+    """
+    ranks = np.array([f.shape[1] for f in factors], dtype=np.int64)
+    sizes = np.array([f.size for f in factors], dtype=np.int64)
+    offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+    flat = np.concatenate([np.ascontiguousarray(f, dtype=dtype).ravel() for f in factors])
+    return flat, offsets, ranks
+
+
+def _level_sizes(levels: np.ndarray, ranks: np.ndarray) -> np.ndarray:
+    """``L[k] = prod_{j > k} ranks[levels[j]]`` for k = 0..ndim-1."""
+    sizes = np.ones(levels.shape[0], dtype=np.int64)
+    for k in range(levels.shape[0] - 2, -1, -1):
+        sizes[k] = sizes[k + 1] * ranks[levels[k + 1]]
+    return sizes
+
+
+# ---------------------------------------------------------------------- bottom-up
+@njit(cache=True)
+def _close_level(k, cell, coords, levels, flat, offsets, ranks, sizes, buf, boff):
+    """Fold the open node at level k into its parent: parent += F_m[i] ⊗ child."""
+    m = levels[k]
+    rm = ranks[m]
+    base = offsets[m] + coords[m, cell] * rm
+    child = boff[k]
+    parent = boff[k - 1]
+    width = sizes[k]
+    for r in range(rm):
+        f = flat[base + r]
+        if f != 0.0:
+            pos = parent + r * width
+            for j in range(width):
+                buf[pos + j] += f * buf[child + j]
+    for j in range(width):
+        buf[child + j] = 0.0
+
+
+@njit(cache=True)
+def _flush_root(row, first, last, ch, buf, width, out, edge):
+    if row == first:
+        for j in range(width):
+            edge[ch, 0, j] += buf[j]
+    elif row == last:
+        for j in range(width):
+            edge[ch, 1, j] += buf[j]
+    else:
+        for j in range(width):
+            out[row, j] = buf[j]
+    for j in range(width):
+        buf[j] = 0.0
+
+
+@njit(parallel=True, cache=True)
+def _ttmc_kernel(coords, values, perm, breaks, levels, flat, offsets, ranks, sizes, chunks, out, edge, edge_rows):
+    ndim = levels.shape[0]
+    boff = np.zeros(ndim, dtype=np.int64)
+    total = 0
+    for k in range(ndim - 1):
+        boff[k] = total
+        total += sizes[k]
+    root = levels[0]
+    leaf = levels[ndim - 1]
+    r_leaf = ranks[leaf]
+    width = sizes[0]
+    for ch in prange(chunks.shape[0] - 1):
+        start = chunks[ch]
+        stop = chunks[ch + 1]
+        buf = np.zeros(total, dtype=out.dtype)
+        first = coords[root, perm[start]]
+        last = coords[root, perm[stop - 1]]
+        edge_rows[ch, 0] = first
+        edge_rows[ch, 1] = last
+        row = first
+        prev = perm[start]
+        for p in range(start, stop):
+            cell = perm[p]
+            if p > start:
+                b = breaks[p]
+                low = b if b > 1 else 1
+                for k in range(ndim - 2, low - 1, -1):
+                    _close_level(k, prev, coords, levels, flat, offsets, ranks, sizes, buf, boff)
+                if b == 0:
+                    _flush_root(row, first, last, ch, buf, width, out, edge)
+                    row = coords[root, cell]
+            x = values[cell]
+            base = offsets[leaf] + coords[leaf, cell] * r_leaf
+            pos = boff[ndim - 2]
+            for r in range(r_leaf):
+                buf[pos + r] += x * flat[base + r]
+            prev = cell
+        for k in range(ndim - 2, 0, -1):
+            _close_level(k, prev, coords, levels, flat, offsets, ranks, sizes, buf, boff)
+        _flush_root(row, first, last, ch, buf, width, out, edge)
+
+
+def ttmc(tree: FiberTree, coords: np.ndarray, values: np.ndarray, factors, n_rows: int) -> np.ndarray:
+    """Tensor times all factor matrices but the root's, from the stored cells.
+
+    ``Y[i, :] = sum over stored cells e in root row i of values[e] * kron_{m in levels[1:]} F_m[i_m(e), :]``.
+    Slow reference (the same result, cost nnz · prod R): ``for e: Y[i_root(e)] += x_e *
+    functools.reduce(np.kron, [F_m[i_m(e)] for m in levels[1:]])``.
+
+    Parameters
+    ----------
+    tree : FiberTree
+    coords : ndarray of shape (ndim, nnz), int32
+    values : ndarray of shape (nnz,), float32 or float64
+    factors : sequence of ndarray of shape (I_m, R_m)
+        The root's entry is ignored (only its row count ``n_rows`` matters).
+    n_rows : int
+        Size of the root mode.
+
+    Returns
+    -------
+    ndarray of shape (n_rows, prod_{m != root} R_m), dtype of ``values``
+        Columns in C order over ``levels[1:]``.
+    """
+    dtype = values.dtype
+    flat, offsets, ranks = pack_factors(factors, dtype)
+    sizes = _level_sizes(tree.levels, ranks)
+    out = np.zeros((n_rows, int(sizes[0])), dtype=dtype)
+    n_chunks = tree.chunks.shape[0] - 1
+    if n_chunks == 0:
+        return out
+    edge = np.zeros((n_chunks, 2, int(sizes[0])), dtype=dtype)
+    edge_rows = np.zeros((n_chunks, 2), dtype=np.int64)
+    _ttmc_kernel(coords, values, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, out, edge, edge_rows)
+    np.add.at(out, edge_rows[:, 0], edge[:, 0])
+    np.add.at(out, edge_rows[:, 1], edge[:, 1])
+    return out
+
+
+# ---------------------------------------------------------------------- top-down
+@njit(cache=True)
+def _descend(low, cell, coords, levels, flat, offsets, ranks, sizes, hbuf, hoff, core_p, r_root):
+    """Recompute H_k = H_{k-1} ×_{level k} F[i] for levels low..ndim-2 (H_0 is the core)."""
+    ndim = levels.shape[0]
+    for k in range(low, ndim - 1):
+        m = levels[k]
+        rm = ranks[m]
+        base = offsets[m] + coords[m, cell] * rm
+        width = sizes[k]
+        parent_width = sizes[k - 1]
+        dst = hoff[k]
+        for a in range(r_root):
+            for j in range(width):
+                hbuf[dst + a * width + j] = 0.0
+            for r in range(rm):
+                f = flat[base + r]
+                if f != 0.0:
+                    if k == 1:
+                        for j in range(width):
+                            hbuf[dst + a * width + j] += f * core_p[a, r * width + j]
+                    else:
+                        src = hoff[k - 1] + a * parent_width + r * width
+                        for j in range(width):
+                            hbuf[dst + a * width + j] += f * hbuf[src + j]
+
+
+@njit(cache=True)
+def _leaf_vector(cell, coords, levels, flat, offsets, ranks, hbuf, hoff, core_p, r_root, v):
+    """v = H_{ndim-2} · F_leaf[i_leaf] (length R_root)."""
+    ndim = levels.shape[0]
+    leaf = levels[ndim - 1]
+    r_leaf = ranks[leaf]
+    base = offsets[leaf] + coords[leaf, cell] * r_leaf
+    for a in range(r_root):
+        s = 0.0
+        if ndim == 2:
+            for r in range(r_leaf):
+                s += core_p[a, r] * flat[base + r]
+        else:
+            src = hoff[ndim - 2] + a * r_leaf
+            for r in range(r_leaf):
+                s += hbuf[src + r] * flat[base + r]
+        v[a] = s
+
+
+@njit(cache=True)
+def _hbuf_layout(levels, sizes, r_root):
+    ndim = levels.shape[0]
+    hoff = np.zeros(ndim, dtype=np.int64)
+    total = 0
+    for k in range(1, ndim - 1):
+        hoff[k] = total
+        total += r_root * sizes[k]
+    return hoff, max(total, 1)
+
+
+@njit(parallel=True, cache=True)
+def _evaluate_kernel(coords, perm, breaks, levels, flat, offsets, ranks, sizes, chunks, core_p, out):
+    root = levels[0]
+    r_root = ranks[root]
+    hoff, total = _hbuf_layout(levels, sizes, r_root)
+    for ch in prange(chunks.shape[0] - 1):
+        start = chunks[ch]
+        stop = chunks[ch + 1]
+        hbuf = np.zeros(total, dtype=core_p.dtype)
+        v = np.zeros(r_root, dtype=core_p.dtype)
+        for p in range(start, stop):
+            cell = perm[p]
+            b = breaks[p] if p > start else 1
+            _descend(b if b > 1 else 1, cell, coords, levels, flat, offsets, ranks, sizes, hbuf, hoff, core_p, r_root)
+            _leaf_vector(cell, coords, levels, flat, offsets, ranks, hbuf, hoff, core_p, r_root, v)
+            base = offsets[root] + coords[root, cell] * r_root
+            s = 0.0
+            for a in range(r_root):
+                s += flat[base + a] * v[a]
+            out[cell] = s
+
+
+def evaluate(tree: FiberTree, coords: np.ndarray, core: np.ndarray, factors) -> np.ndarray:
+    """Model values ``x̂_e = G ×_1 F_1[i_1(e)] ... ×_N F_N[i_N(e)]`` at every stored cell.
+
+    Parameters
+    ----------
+    tree : FiberTree
+    coords : ndarray of shape (ndim, nnz), int32
+    core : ndarray of shape (R_1, ..., R_N)
+    factors : sequence of ndarray of shape (I_n, R_n)
+
+    Returns
+    -------
+    ndarray of shape (nnz,), dtype of ``core``
+    """
+    dtype = core.dtype
+    flat, offsets, ranks = pack_factors(factors, dtype)
+    sizes = _level_sizes(tree.levels, ranks)
+    core_p = np.ascontiguousarray(np.transpose(core, tree.levels).reshape(core.shape[tree.root], -1))
+    out = np.zeros(coords.shape[1], dtype=dtype)
+    _evaluate_kernel(coords, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, core_p, out)
+    return out
+
+
+@njit(cache=True)
+def _finish_row(row, first, last, ch, a_acc, b_acc, base_matrix, out, edge_a, edge_b):
+    r_root = b_acc.shape[0]
+    for a in range(r_root):
+        for d in range(a):
+            a_acc[d, a] = a_acc[a, d]
+    if row == first or row == last:
+        slot = 0 if row == first else 1
+        for a in range(r_root):
+            edge_b[ch, slot, a] += b_acc[a]
+            for c in range(r_root):
+                edge_a[ch, slot, a, c] += a_acc[a, c]
+    else:
+        system = base_matrix + a_acc
+        out[row, :] = np.linalg.solve(system, b_acc)
+    a_acc[:, :] = 0.0
+    b_acc[:] = 0.0
+
+
+@njit(parallel=True, cache=True)
+def _rows_kernel(coords, preference, confidence, w0, perm, breaks, levels, flat, offsets, ranks, sizes, chunks,
+                 core_p, base_matrix, out, edge_a, edge_b, edge_rows):
+    root = levels[0]
+    r_root = ranks[root]
+    hoff, total = _hbuf_layout(levels, sizes, r_root)
+    for ch in prange(chunks.shape[0] - 1):
+        start = chunks[ch]
+        stop = chunks[ch + 1]
+        hbuf = np.zeros(total, dtype=core_p.dtype)
+        v = np.zeros(r_root, dtype=core_p.dtype)
+        a_acc = np.zeros((r_root, r_root), dtype=base_matrix.dtype)
+        b_acc = np.zeros(r_root, dtype=base_matrix.dtype)
+        first = coords[root, perm[start]]
+        last = coords[root, perm[stop - 1]]
+        edge_rows[ch, 0] = first
+        edge_rows[ch, 1] = last
+        row = first
+        for p in range(start, stop):
+            cell = perm[p]
+            b = breaks[p] if p > start else 1
+            if b == 0:
+                _finish_row(row, first, last, ch, a_acc, b_acc, base_matrix, out, edge_a, edge_b)
+                row = coords[root, cell]
+            _descend(b if b > 1 else 1, cell, coords, levels, flat, offsets, ranks, sizes, hbuf, hoff, core_p, r_root)
+            _leaf_vector(cell, coords, levels, flat, offsets, ranks, hbuf, hoff, core_p, r_root, v)
+            w = confidence[cell]
+            c = w - w0
+            wp = w * preference[cell]
+            for a in range(r_root):
+                b_acc[a] += wp * v[a]
+                cv = c * v[a]
+                for d in range(a + 1):
+                    a_acc[a, d] += cv * v[d]
+        _finish_row(row, first, last, ch, a_acc, b_acc, base_matrix, out, edge_a, edge_b)
+
+
+def implicit_rows(tree: FiberTree, coords: np.ndarray, preference: np.ndarray, confidence: np.ndarray, w0: float,
+                  core: np.ndarray, factors, base_matrix: np.ndarray, n_rows: int) -> np.ndarray:
+    """Solve the weighted row systems of the root mode, every other block fixed.
+
+    For root row ``i``: ``(base_matrix + sum_e (w_e - w0) v_e v_eᵀ) u_i = sum_e w_e p_e v_e``
+    over its stored cells ``e``, with ``v_e = G ×_{m ≠ root} F_m[i_m(e)]``. Rows
+    without stored cells get ``base_matrix⁻¹ · 0 = 0``.
+
+    Parameters
+    ----------
+    tree : FiberTree
+    coords : ndarray of shape (ndim, nnz), int32
+    preference, confidence : ndarray of shape (nnz,)
+    w0 : float
+    core : ndarray of shape (R_1, ..., R_N)
+    factors : sequence of ndarray of shape (I_n, R_n); the root's entry is unused
+    base_matrix : ndarray of shape (R_root, R_root), float64
+        The all-cells part plus regularization, ``w0 · G_(n) (⊗ F_mᵀF_m) G_(n)ᵀ + reg·I``.
+    n_rows : int
+
+    Returns
+    -------
+    ndarray of shape (n_rows, R_root), float64
+    """
+    dtype = core.dtype
+    root = tree.root
+    r_root = core.shape[root]
+    flat, offsets, ranks = pack_factors(factors, dtype)
+    sizes = _level_sizes(tree.levels, ranks)
+    core_p = np.ascontiguousarray(np.transpose(core, tree.levels).reshape(r_root, -1))
+    out = np.zeros((n_rows, r_root), dtype=np.float64)
+    n_chunks = tree.chunks.shape[0] - 1
+    if n_chunks == 0:
+        return out
+    edge_a = np.zeros((n_chunks, 2, r_root, r_root))
+    edge_b = np.zeros((n_chunks, 2, r_root))
+    edge_rows = np.zeros((n_chunks, 2), dtype=np.int64)
+    _rows_kernel(coords, preference, confidence, float(w0), tree.perm, tree.breaks, tree.levels, flat, offsets, ranks,
+                 sizes, tree.chunks, core_p, np.ascontiguousarray(base_matrix, dtype=np.float64), out, edge_a, edge_b,
+                 edge_rows)
+    rows, inverse = np.unique(edge_rows.ravel(), return_inverse=True)
+    acc_a = np.zeros((rows.size, r_root, r_root))
+    acc_b = np.zeros((rows.size, r_root))
+    np.add.at(acc_a, inverse, edge_a.reshape(-1, r_root, r_root))
+    np.add.at(acc_b, inverse, edge_b.reshape(-1, r_root))
+    out[rows] = np.linalg.solve(base_matrix[None] + acc_a, acc_b[..., None])[..., 0]
+    return out
