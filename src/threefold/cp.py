@@ -1,0 +1,571 @@
+"""CP models of implicit feedback tensors: the fit, its result, fold-in and the estimator.
+
+``fit_cp`` minimizes, over all cells of a :class:`~threefold.tensor.SparseTensor`,
+
+    Σ w·(p − x̂)²  +  reg · Σ_n ‖F_n‖²,     x̂(i_1..i_N) = Σ_r Π_n F_n[i_n, r],
+
+with ``w = w0`` and ``p = 0`` on every cell not stored, by alternating least
+squares (exact row solves, or a few conjugate-gradient steps per row) in time
+linear in the stored cells (iTALS: Hidasi & Tikk, ECML-PKDD 2012;
+arXiv:1309.7611). A :class:`~threefold.structure.Structure` says which modes
+each component uses (General Factorization Framework: Hidasi & Tikk, DMKD 30,
+2016; arXiv:1401.4529). ``docs/models.md`` explains the model and its choices.
+
+References
+----------
+Hidasi, B. & Tikk, D. "Fast ALS-based tensor factorization for context-aware
+recommendation from implicit feedback", ECML-PKDD 2012; arXiv:1309.7611.
+Takács, G., Pilászy, I. & Tikk, D. "Applications of the conjugate gradient
+method for implicit feedback collaborative filtering", RecSys 2011.
+Hu, Y., Koren, Y. & Volinsky, C. "Collaborative filtering for implicit feedback
+datasets", ICDM 2008 (fold-in).
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from dataclasses import dataclass, replace
+from typing import Callable, Sequence
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from threefold import als, kernels
+from threefold._checks import check_choice, check_int, check_number
+from threefold.exceptions import ConvergenceWarning
+from threefold.initialize import initial_factors
+from threefold.scoring import Scorer, ScoreTerms, check_queries
+from threefold.structure import Structure, resolve_structure
+from threefold.tensor import SparseTensor
+from threefold.vocabulary import Vocabulary
+
+__all__ = ["SweepRecord", "CPResult", "fit_cp", "fold_in", "CPModel"]
+
+STOP_REASONS = ("converged", "max_sweeps", "callback")
+
+
+@dataclass(frozen=True)
+class SweepRecord:
+    """Progress after one sweep (sweep 0 is the initial state).
+
+    Attributes
+    ----------
+    sweep : int
+    loss : float
+        The full objective, regularization included.
+    fit : float
+        Weighted relative fit ``1 − sqrt(Σ w (p − x̂)² / Σ w p²)``.
+    seconds : float
+        Wall time of this sweep (of the initialization for sweep 0).
+    """
+
+    sweep: int
+    loss: float
+    fit: float
+    seconds: float
+
+
+@dataclass(frozen=True, eq=False)
+class CPResult(Scorer):
+    """A fitted CP model: ``x̂ = Σ_r weights[r] · Π_n factors[n][i_n, r]``.
+
+    Components are normalized (every column a mode owns has unit norm; the
+    others are the constant 1) and sorted by decreasing weight within each
+    structure term. Validated at construction.
+
+    Parameters
+    ----------
+    weights : ndarray of shape (R,), float64
+        λ: product of each component's column norms.
+    factors : tuple of ndarray of shape (I_n, R), float32 or float64
+    column_norms : ndarray of shape (ndim, R), float64
+        The norms the columns had at the end of fitting (1 where a mode does
+        not own a column). With regularization the split of scale across modes
+        matters, so fold-in and warm starts rebuild the fitted factors from
+        them (:meth:`unnormalized_factors`).
+    structure : Structure
+    mode_names : tuple of str
+    vocabularies : tuple of Vocabulary or None
+    history : tuple of SweepRecord
+        Sweep 0 (initial state) first.
+    stop_reason : {"converged", "max_sweeps", "callback"}
+    w0, reg : float
+        The weight of cells not stored and the regularization it was fitted with.
+    """
+
+    weights: np.ndarray
+    factors: tuple[np.ndarray, ...]
+    column_norms: np.ndarray
+    structure: Structure
+    mode_names: tuple[str, ...]
+    vocabularies: tuple[Vocabulary | None, ...]
+    history: tuple[SweepRecord, ...]
+    stop_reason: str
+    w0: float
+    reg: float
+
+    def __post_init__(self) -> None:
+        factors = tuple(np.asarray(f) for f in self.factors)
+        object.__setattr__(self, "factors", factors)
+        rank = self.structure.rank
+        ndim = len(self.mode_names)
+        if ndim < 2 or len(factors) != ndim or len(self.vocabularies) != ndim:
+            raise ValueError(
+                f"CPResult needs one factor and one vocabulary per mode for {ndim} modes "
+                f"(at least 2); got {len(factors)} factors and {len(self.vocabularies)} vocabularies."
+            )
+        weights = np.asarray(self.weights, dtype=np.float64)
+        if weights.shape != (rank,) or not np.all(np.isfinite(weights)) or np.any(weights < 0):
+            raise ValueError(f"weights must be {rank} finite non-negative values, got shape {weights.shape}.")
+        object.__setattr__(self, "weights", weights)
+        norms = np.asarray(self.column_norms, dtype=np.float64)
+        if norms.shape != (ndim, rank):
+            raise ValueError(f"column_norms must have shape ({ndim}, {rank}), got {norms.shape}.")
+        object.__setattr__(self, "column_norms", norms)
+        mask = self.structure.active_mask(self.mode_names)
+        for n, (name, factor) in enumerate(zip(self.mode_names, factors)):
+            if factor.ndim != 2 or factor.shape[1] != rank or factor.dtype not in (np.float32, np.float64):
+                raise ValueError(
+                    f"Factor of mode {name!r} must be a float32 or float64 array of shape (I, {rank}), "
+                    f"got {factor.dtype} {factor.shape}."
+                )
+            if not np.all(factor[:, ~mask[n]] == 1):
+                raise ValueError(f"Factor of mode {name!r} must hold 1 in the columns its mode does not use.")
+            vocab = self.vocabularies[n]
+            if vocab is not None and len(vocab) != factor.shape[0]:
+                raise ValueError(
+                    f"Factor of mode {name!r} has {factor.shape[0]} rows but its vocabulary {len(vocab)} labels."
+                )
+        check_choice("stop_reason", self.stop_reason, STOP_REASONS, owner="CPResult")
+
+    # ------------------------------------------------------------------ summary
+    @property
+    def shape(self) -> tuple[int, ...]:
+        """Mode sizes (user, item, context...)."""
+        return tuple(f.shape[0] for f in self.factors)
+
+    @property
+    def rank(self) -> int:
+        """Number of components."""
+        return self.weights.shape[0]
+
+    @property
+    def n_sweeps(self) -> int:
+        """Sweeps run (the initial state not counted)."""
+        return len(self.history) - 1
+
+    @property
+    def converged(self) -> bool:
+        """True when the relative loss change fell below ``tol``."""
+        return self.stop_reason == "converged"
+
+    @property
+    def loss(self) -> float:
+        """Final loss."""
+        return self.history[-1].loss
+
+    @property
+    def fit(self) -> float:
+        """Final weighted relative fit."""
+        return self.history[-1].fit
+
+    def unnormalized_factors(self) -> list[np.ndarray]:
+        """The factors as fitted (columns times their norms), for warm starts and fold-in."""
+        return [(f * self.column_norms[n]).astype(f.dtype) for n, f in enumerate(self.factors)]
+
+    def to_tensorly(self):
+        """The model as a ``tensorly.cp_tensor.CPTensor`` (float64)."""
+        from tensorly.cp_tensor import CPTensor
+
+        return CPTensor((self.weights.copy(), [f.astype(np.float64) for f in self.factors]))
+
+    def predict(self, coords: np.ndarray) -> np.ndarray:
+        """Model values at given cells.
+
+        Parameters
+        ----------
+        coords : array-like of shape (ndim, n), int
+
+        Returns
+        -------
+        ndarray of shape (n,), float64
+        """
+        coords = np.asarray(coords, dtype=np.int64).reshape(len(self.factors), -1)
+        rows = np.tile(self.weights, (coords.shape[1], 1))
+        for n, f in enumerate(self.factors):
+            rows *= f[coords[n]]
+        return rows.sum(axis=1)
+
+    # ------------------------------------------------------------------ scoring interface
+    def query_matrix(self, users: np.ndarray, contexts: np.ndarray | None = None) -> np.ndarray:
+        """ndarray of shape (q, R), float64: ``λ ⊙ user row ⊙ context rows`` per query."""
+        users, contexts = check_queries(users, contexts, self.shape)
+        q = self.weights * self.factors[0][users]
+        for j in range(contexts.shape[1]):
+            q *= self.factors[2 + j][contexts[:, j]]
+        return q
+
+    def item_matrix(self) -> np.ndarray:
+        """ndarray of shape (n_items, R): the item factor."""
+        return self.factors[1]
+
+    def score_terms(self, user: int, context, item: int) -> ScoreTerms:
+        """One term per component (labels ``"user*item #0"``, ...), summing to the score."""
+        context = np.asarray(context, dtype=np.int64).reshape(1, -1)
+        q = self.query_matrix(np.array([user]), context if context.size else None)[0]
+        if not 0 <= item < self.shape[1]:
+            raise IndexError(f"item index must lie in [0, {self.shape[1]}), got {item}.")
+        return ScoreTerms(labels=self.structure.component_labels(), values=q * self.factors[1][item])
+
+    def with_rows(self, mode: int | str, rows: np.ndarray, labels: Sequence[str] | None = None) -> "CPResult":
+        """The model with rows appended to one mode (e.g. folded-in newcomers).
+
+        Parameters
+        ----------
+        mode : int or str
+        rows : ndarray of shape (n_new, R)
+            As returned by :func:`fold_in`.
+        labels : sequence of str, optional
+            Their labels; required when the mode has a vocabulary.
+        """
+        n = _mode_position(self.mode_names, mode)
+        factors = list(self.factors)
+        factors[n] = np.concatenate([factors[n], np.asarray(rows, dtype=factors[n].dtype)], axis=0)
+        vocabularies = list(self.vocabularies)
+        if vocabularies[n] is not None:
+            if labels is None or len(labels) != len(rows):
+                raise ValueError(f"Mode {self.mode_names[n]!r} has a vocabulary: give one label per new row.")
+            vocabularies[n] = Vocabulary(vocabularies[n].labels + tuple(labels), name=vocabularies[n].name)
+        return replace(self, factors=tuple(factors), vocabularies=tuple(vocabularies))
+
+
+# ---------------------------------------------------------------------- fitting
+def fit_cp(
+    tensor: SparseTensor,
+    *,
+    rank: int = 16,
+    structure: Structure | str | None = None,
+    solver: str = "als",
+    cg_steps: int = 3,
+    reg: float = 0.1,
+    init: str | Sequence[np.ndarray] | CPResult = "random",
+    max_sweeps: int = 30,
+    tol: float = 1e-4,
+    fixed_modes: Sequence[int | str] = (),
+    random_state: int | np.random.Generator | None = None,
+    n_threads: int | None = None,
+    dtype: np.dtype | type | None = None,
+    callback: Callable[[SweepRecord, tuple[np.ndarray, ...]], bool | None] | None = None,
+) -> CPResult:
+    """Fit a CP model (any structure) to the implicit all-cells loss.
+
+    Parameters
+    ----------
+    tensor : SparseTensor
+        Mode 0 users, mode 1 items, modes 2.. context (at least 2 modes).
+    rank : int, default=16
+        Components of a plain CP, and of every structure term without ``:rank``.
+    structure : Structure, str or None, default=None
+        Which modes each term uses (see :mod:`threefold.structure`); ``None``
+        is plain N-way CP over every mode.
+    solver : {"als", "cg"}, default="als"
+        Exact row solves (``O(nnz·R² + Σ I_n R³)`` per sweep) or ``cg_steps``
+        conjugate-gradient steps per row warm-started at the current row
+        (``O(cg_steps·(nnz·R + Σ I_n R²))``). Modes with few rows and many
+        cells are solved exactly by blocked products with either solver.
+    cg_steps : int, default=3
+    reg : float, default=0.1
+        Ridge weight on every factor entry a mode owns.
+    init : {"random", "svd"}, sequence of ndarray, or CPResult, default="random"
+        See :func:`threefold.initialize.initial_factors`. A CPResult warm-starts
+        from its fitted factors (same structure and modes; modes may have grown
+        by appended labels, whose rows start at zero).
+    max_sweeps : int, default=30
+    tol : float, default=1e-4
+        Stop when the relative loss change of a sweep falls below ``tol``; with
+        ``tol = 0`` exactly ``max_sweeps`` sweeps run and no warning is given.
+    fixed_modes : sequence of int or str, default=()
+        Modes kept at their initial factors (e.g. refresh only the users).
+    random_state : int, Generator or None
+    n_threads : int or None
+        numba threads for this fit (``None``: numba's current setting). The
+        result does not depend on it.
+    dtype : float32, float64 or None
+        Factor precision; ``None`` takes the tensor's.
+    callback : callable or None
+        Called after every sweep as ``callback(record, factors)`` with a
+        :class:`SweepRecord` and the current (unnormalized, read-only) factors;
+        returning True stops the fit.
+
+    Returns
+    -------
+    CPResult
+
+    Warns
+    -----
+    ConvergenceWarning
+        When ``tol > 0`` and ``max_sweeps`` sweeps did not reach it.
+    """
+    owner = "fit_cp"
+    if not isinstance(tensor, SparseTensor):
+        raise TypeError(f"fit_cp needs a SparseTensor, got {type(tensor).__name__}.")
+    if tensor.ndim < 2:
+        raise ValueError(f"fit_cp needs a tensor with at least 2 modes, got {tensor.ndim}.")
+    rank = check_int("rank", rank, low=1, owner=owner)
+    check_choice("solver", solver, ("als", "cg"), owner=owner)
+    cg_steps = check_int("cg_steps", cg_steps, low=1, owner=owner)
+    reg = check_number("reg", reg, low=0.0, owner=owner)
+    max_sweeps = check_int("max_sweeps", max_sweeps, low=1, owner=owner)
+    tol = check_number("tol", tol, low=0.0, owner=owner)
+    if n_threads is not None:
+        check_int("n_threads", n_threads, low=1, owner=owner)
+    if callback is not None and not callable(callback):
+        raise ValueError(f"The 'callback' parameter of {owner} must be callable or None. Got {callback!r} instead.")
+    dtype = tensor.dtype if dtype is None else np.dtype(dtype)
+    check_choice("dtype", np.dtype(dtype), (np.dtype(np.float32), np.dtype(np.float64)), owner=owner)
+    if tensor.dtype != dtype:
+        tensor = tensor.astype(dtype)
+    structure = resolve_structure(structure, tensor.mode_names, rank)
+    active = structure.active_mask(tensor.mode_names)
+    fixed = {_mode_position(tensor.mode_names, m) for m in fixed_modes}
+    update_modes = tuple(n for n in range(tensor.ndim) if n not in fixed and active[n].any())
+    rng = np.random.default_rng(random_state)
+
+    start = time.perf_counter()
+    init = _warm_start_factors(init, tensor, structure) if isinstance(init, CPResult) else _check_init(init, tensor, structure.rank)
+    factors = initial_factors(tensor, active, init, dtype=dtype, rng=rng)
+    previous_threads = kernels.set_threads(n_threads)
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            problem = als.make_problem(tensor, factors, active, reg=reg, update_modes=update_modes)
+            history = [SweepRecord(0, *als.loss_and_fit(problem), time.perf_counter() - start)]
+            loss_floor = 1e-12 * max(problem.sum_wp2, np.finfo(float).tiny)  # an exact fit has loss ~ 0
+            stop_reason = "max_sweeps"
+            for sweep in range(1, max_sweeps + 1):
+                start = time.perf_counter()
+                for n in update_modes:
+                    als.update_mode(problem, n, cg_steps if solver == "cg" else 0)
+                record = SweepRecord(sweep, *als.loss_and_fit(problem), time.perf_counter() - start)
+                history.append(record)
+                if callback is not None and callback(record, _read_only_views(problem)):
+                    stop_reason = "callback"
+                    break
+                change = abs(history[-2].loss - record.loss) / max(abs(history[-2].loss), loss_floor)
+                if tol > 0 and change < tol:
+                    stop_reason = "converged"
+                    break
+    finally:
+        kernels.set_threads(previous_threads)
+    if stop_reason == "max_sweeps" and tol > 0:
+        warnings.warn(
+            f"fit_cp stopped after max_sweeps={max_sweeps} sweeps before the relative loss change fell "
+            f"below tol={tol:g}; raise max_sweeps or tol.",
+            ConvergenceWarning,
+            stacklevel=2,
+        )
+    weights, normalized, norms = _normalize(
+        [problem.factor(n).copy() for n in range(tensor.ndim)], active, structure.component_terms()
+    )
+    return CPResult(
+        weights=weights, factors=tuple(normalized), column_norms=norms, structure=structure,
+        mode_names=tensor.mode_names, vocabularies=tensor.vocabularies, history=tuple(history),
+        stop_reason=stop_reason, w0=tensor.w0, reg=reg,
+    )
+
+
+def _read_only_views(problem: als.Problem) -> tuple[np.ndarray, ...]:
+    views = tuple(problem.factor(n) for n in range(len(problem.offsets) - 1))
+    for view in views:
+        view.flags.writeable = False
+    return views
+
+
+def _check_init(init, tensor: SparseTensor, rank: int):
+    if isinstance(init, str):
+        return check_choice("init", init, ("random", "svd"), owner="fit_cp")
+    if not isinstance(init, (list, tuple)) or len(init) != tensor.ndim:
+        raise ValueError(
+            f"The 'init' parameter of fit_cp must be 'random', 'svd', a CPResult or {tensor.ndim} factor arrays. "
+            f"Got {type(init).__name__} instead."
+        )
+    for n, given in enumerate(init):
+        given = np.asarray(given)
+        if given.ndim != 2 or given.shape[1] != rank or given.shape[0] > tensor.shape[n]:
+            raise ValueError(
+                f"Initial factor of mode {tensor.mode_names[n]!r} must have shape (at most {tensor.shape[n]}, {rank}), "
+                f"got {given.shape}."
+            )
+        if not np.all(np.isfinite(given)):
+            raise ValueError(f"Initial factor of mode {tensor.mode_names[n]!r} holds non-finite values.")
+    return init
+
+
+def _warm_start_factors(result: CPResult, tensor: SparseTensor, structure: Structure) -> list[np.ndarray]:
+    """The fitted factors of a previous model, checked against the grown tensor."""
+    if result.mode_names != tensor.mode_names:
+        raise ValueError(f"Warm start: the model's modes {result.mode_names} differ from the tensor's {tensor.mode_names}.")
+    if str(result.structure) != str(structure):
+        raise ValueError(f"Warm start: the model's structure {str(result.structure)!r} differs from {str(structure)!r}.")
+    for n, name in enumerate(tensor.mode_names):
+        if result.shape[n] > tensor.shape[n]:
+            raise ValueError(
+                f"Warm start: mode {name!r} has {result.shape[n]} rows in the model but {tensor.shape[n]} in the tensor; "
+                "vocabularies only grow by appending."
+            )
+        old, new = result.vocabularies[n], tensor.vocabularies[n]
+        if old is not None and new is not None and new.labels[: len(old)] != old.labels:
+            raise ValueError(f"Warm start: the {name!r} vocabulary is not the model's vocabulary with labels appended.")
+    return result.unnormalized_factors()
+
+
+def _normalize(
+    factors: list[np.ndarray], active: np.ndarray, terms: np.ndarray
+) -> tuple[np.ndarray, list[np.ndarray], np.ndarray]:
+    """Unit-norm owned columns, weights = product of norms, components sorted by weight within terms."""
+    norms = np.ones(active.shape)
+    for n, f in enumerate(factors):
+        cols = np.flatnonzero(active[n])
+        norms[n, cols] = np.linalg.norm(f[:, cols].astype(np.float64), axis=0)
+        safe = np.where(norms[n, cols] > 0, norms[n, cols], 1.0)
+        f[:, cols] = (f[:, cols] / safe).astype(f.dtype)
+    weights = norms.prod(axis=0)
+    order = np.lexsort((-weights, terms))
+    return weights[order], [f[:, order] for f in factors], norms[:, order]
+
+
+def _mode_position(mode_names: Sequence[str], mode: int | str) -> int:
+    if isinstance(mode, str):
+        if mode not in mode_names:
+            raise KeyError(f"No mode named {mode!r}; modes are {tuple(mode_names)}.")
+        return list(mode_names).index(mode)
+    if isinstance(mode, bool) or not isinstance(mode, (int, np.integer)) or not -len(mode_names) <= mode < len(mode_names):
+        raise IndexError(f"Mode {mode!r} out of range for a {len(mode_names)}-way model.")
+    return int(mode) % len(mode_names)
+
+
+# ---------------------------------------------------------------------- fold-in
+def fold_in(result: CPResult, tensor: SparseTensor, mode: int | str, *, n_threads: int | None = None) -> np.ndarray:
+    """Rows for new users, items or context levels, solved from their own cells.
+
+    Every other factor stays fixed and the weighting is the training one, so
+    each row is the exact solution of its row system (methods.md section 8;
+    Hu, Koren & Volinsky, ICDM 2008, generalized to tensors and structures).
+    All rows are solved in one parallel batch.
+
+    Parameters
+    ----------
+    result : CPResult
+    tensor : SparseTensor
+        The new rows' cells: mode ``mode`` indexes the new rows ``0 .. n_new - 1``;
+        every other mode has the model's size and mode names, and ``w0`` is the
+        model's.
+    mode : int or str
+    n_threads : int or None
+
+    Returns
+    -------
+    ndarray of shape (n_new, R), the model's dtype
+        In the model's normalized coordinates (ready for :meth:`CPResult.with_rows`);
+        a row with no cells is zero in a plain CP.
+    """
+    n = _mode_position(result.mode_names, mode)
+    if tensor.mode_names != result.mode_names:
+        raise ValueError(f"fold_in: the tensor's modes {tensor.mode_names} differ from the model's {result.mode_names}.")
+    for m, name in enumerate(result.mode_names):
+        if m != n and tensor.shape[m] != result.shape[m]:
+            raise ValueError(
+                f"fold_in: mode {name!r} has {tensor.shape[m]} rows in the tensor but {result.shape[m]} in the model."
+            )
+    if tensor.w0 != result.w0:
+        raise ValueError(f"fold_in: the tensor's w0={tensor.w0:g} differs from the model's w0={result.w0:g}.")
+    dtype = result.factors[0].dtype
+    factors = result.unnormalized_factors()
+    factors[n] = np.zeros((tensor.shape[n], result.rank), dtype=dtype)
+    active = result.structure.active_mask(result.mode_names)
+    previous_threads = kernels.set_threads(n_threads)
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            problem = als.make_problem(tensor.astype(dtype), factors, active, reg=result.reg, update_modes=(n,))
+            als.update_mode(problem, n, 0)
+    finally:
+        kernels.set_threads(previous_threads)
+    rows = problem.factor(n).copy()
+    cols = np.flatnonzero(active[n])
+    norms = result.column_norms[n, cols]
+    rows[:, cols] = np.where(norms > 0, rows[:, cols] / np.where(norms > 0, norms, 1.0), 0.0)
+    return rows
+
+
+# ---------------------------------------------------------------------- estimator
+class CPModel(Scorer):
+    """Estimator around :func:`fit_cp`; parameters as there, fitted state ending in ``_``.
+
+    Attributes
+    ----------
+    result_ : CPResult
+    weights_ : ndarray of shape (R,)
+    factors_ : tuple of ndarray of shape (I_n, R)
+    structure_ : Structure
+    history_ : tuple of SweepRecord
+    n_sweeps_ : int
+    converged_ : bool
+    """
+
+    def __init__(
+        self, *, rank=16, structure=None, solver="als", cg_steps=3, reg=0.1, init="random", max_sweeps=30,
+        tol=1e-4, fixed_modes=(), random_state=None, n_threads=None, dtype=None, callback=None,
+    ):
+        self.rank = rank
+        self.structure = structure
+        self.solver = solver
+        self.cg_steps = cg_steps
+        self.reg = reg
+        self.init = init
+        self.max_sweeps = max_sweeps
+        self.tol = tol
+        self.fixed_modes = fixed_modes
+        self.random_state = random_state
+        self.n_threads = n_threads
+        self.dtype = dtype
+        self.callback = callback
+
+    def get_params(self) -> dict:
+        """The constructor parameters, by name (the names configs and the command line use)."""
+        names = ("rank", "structure", "solver", "cg_steps", "reg", "init", "max_sweeps", "tol",
+                 "fixed_modes", "random_state", "n_threads", "dtype", "callback")
+        return {name: getattr(self, name) for name in names}
+
+    def fit(self, tensor: SparseTensor) -> "CPModel":
+        """Fit to a tensor; returns self."""
+        result = fit_cp(tensor, **self.get_params())
+        self.result_ = result
+        self.weights_ = result.weights
+        self.factors_ = result.factors
+        self.structure_ = result.structure
+        self.history_ = result.history
+        self.n_sweeps_ = result.n_sweeps
+        self.converged_ = result.converged
+        return self
+
+    def _fitted(self) -> CPResult:
+        if not hasattr(self, "result_"):
+            raise RuntimeError("This CPModel is not fitted yet; call fit(tensor) first.")
+        return self.result_
+
+    def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
+        """Rows for new users, items or context levels; see :func:`fold_in`."""
+        return fold_in(self._fitted(), tensor, mode, n_threads=self.n_threads)
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return self._fitted().shape
+
+    def query_matrix(self, users, contexts=None) -> np.ndarray:
+        return self._fitted().query_matrix(users, contexts)
+
+    def item_matrix(self) -> np.ndarray:
+        return self._fitted().item_matrix()
+
+    def score_terms(self, user, context, item) -> ScoreTerms:
+        return self._fitted().score_terms(user, context, item)
