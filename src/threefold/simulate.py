@@ -1,0 +1,550 @@
+"""The demo scenario: an invented media site, its event log and its ground truth.
+
+*The Quillfen Courier* is a fictional local publisher (the town of Quillfen is
+invented; the IANA timezone is only a technical setting). Readers see ranked
+lists of articles, clips and audio pieces in sections such as ``civic``,
+``markets`` or ``culture``; they read on a ``mobile``, ``desktop`` or ``tablet``
+while a page of some ``page_tone`` is open, at some daypart of their local day.
+
+The generative story (all planted, all saved as the scenario's truth):
+
+* **Users** have an activity level (log-normal), daypart / device / page-tone
+  habits (Dirichlet around the site's shares; mobile is more common in the
+  morning), a topic taste, a small latent taste vector and, for a share of them,
+  a *daypart persona* that shifts their topic taste by daypart.
+* **Items** have a kind, a topic, a tone, a short- or long-form ``format``, a
+  quality, a latent vector, a ``published_at`` and a short lifetime
+  (``expires_at``).
+* **True relevance** (the click probability given examination) of user ``u``,
+  item ``i`` in daypart ``d``, on device ``v``, reading a page of tone ``t``::
+
+      logit γ = b + quality_i + taste[u, topic_i] + <latent_u, latent_i>
+                + shift_u · persona[p_u, d, topic_i]
+                + kind_context[kind_i, d, v] + long_form_i · long_form_context[kind_i, d]
+                + tone_context[t, tone_i]
+
+  Planted context effects: audio on mobile in the morning (commute), long-form
+  clips in the evening, items matching the tone of the page being read, and the
+  personas' daypart shifts. Popularity and the user's topic taste stay the
+  strongest terms, so context-free baselines remain reasonable.
+* **Logging policy**: a context-free ranker (popularity, a noisy copy of the
+  topic taste, freshness, Gumbel noise) fills ``n_positions`` slots from the
+  items live at request time; a share of the lists swaps position 1 with a random
+  lower position, so the position bias is identifiable.
+* **Clicks** follow the position-based model: P(click) = θ_k · γ with planted
+  examination probabilities θ_k. Clicks carry dwell seconds that depend on kind,
+  format and relevance.
+
+Timestamps are int64 epoch seconds (UTC) in memory and in Parquet, and ISO-8601
+strings with a ``+00:00`` offset in CSV. ``daypart`` is never a column: derive it
+from the timestamp with :func:`daypart_of` (local hour in the site's timezone).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import zoneinfo
+from dataclasses import asdict, dataclass, field, fields, replace
+from pathlib import Path
+from typing import Literal, Mapping
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pa_csv
+import pyarrow.parquet as pq
+
+from threefold import _scenario
+from threefold._checks import check_choice, check_int, check_number
+
+__all__ = [
+    "CONTEXT_COLUMNS",
+    "ScenarioParameters",
+    "SimulatedSite",
+    "SiteTruth",
+    "daypart_of",
+    "read_site",
+    "read_truth",
+    "simulate_site",
+    "true_relevance",
+    "write_site",
+]
+
+#: Context modes of the scenario, in the order :func:`true_relevance` expects.
+CONTEXT_COLUMNS = ("daypart", "device", "page_tone")
+FORMAT_VERSION = 1
+FileFormat = Literal["parquet", "csv"]
+_OWNER = "ScenarioParameters"
+
+
+def _default_examination(n_positions: int = 10) -> tuple[float, ...]:
+    return tuple(round(0.9 * k**-0.6, 4) for k in range(1, n_positions + 1))
+
+
+@dataclass(frozen=True)
+class ScenarioParameters:
+    """Every knob of the demo scenario (JSON-serializable, immutable).
+
+    Shares are relative weights (normalized on use). Tuples indexed by kind
+    follow ``("article", "clip", "audio")``. The planted effects refer to the
+    daypart labels ``"morning"`` and ``"evening"`` and the device ``"mobile"``,
+    which must be among the labels. Use :meth:`scaled` for user and item counts
+    that grow with ``n_events``.
+    """
+
+    site_name: str = "Quillfen Courier"
+    seed: int = 20260323
+    n_events: int = 100_000
+    n_users: int = 1_000
+    n_items: int = 411
+    start: str = "2026-03-23T00:00:00"  # local wall time in `timezone`; the log covers `days` local days
+    days: int = 14
+    timezone: str = "Europe/Berlin"
+    prelaunch_days: int = 3  # the catalog starts publishing this many days before the log
+    topics: tuple[str, ...] = ("civic", "markets", "science", "culture", "sport",
+                               "food", "weather", "travel", "health", "tech")
+    tones: tuple[str, ...] = ("grave", "neutral", "upbeat")
+    tone_shares: tuple[float, ...] = (0.3, 0.45, 0.25)
+    kind_shares: tuple[float, ...] = (0.6, 0.25, 0.15)
+    long_form_shares: tuple[float, ...] = (0.2, 0.3, 0.5)
+    lifetime_hours: tuple[float, ...] = (30.0, 60.0, 120.0)  # median per kind
+    lifetime_sigma: float = 0.35
+    devices: tuple[str, ...] = ("mobile", "desktop", "tablet")
+    device_shares: tuple[float, ...] = (0.55, 0.3, 0.15)
+    commute_mobile_factor: float = 2.0
+    daypart_labels: tuple[str, ...] = ("morning", "daytime", "evening", "night")
+    daypart_starts: tuple[int, ...] = (6, 10, 17, 22)  # local start hours; the last daypart wraps past midnight
+    daypart_shares: tuple[float, ...] = (0.22, 0.33, 0.33, 0.12)
+    weekend_activity: float = 0.8
+    habit_concentration: float = 4.0
+    activity_sigma: float = 1.0
+    n_positions: int = 10
+    examination: tuple[float, ...] = field(default_factory=_default_examination)
+    swap_probability: float = 0.25
+    intercept: float = -2.8
+    quality_sd: float = 0.6
+    taste_sd: float = 1.0
+    latent_rank: int = 4
+    latent_sd: float = 0.45
+    shifter_share: float = 0.35
+    shift_strength: float = 1.0
+    audio_commute_boost: float = 1.2
+    long_clip_evening_boost: float = 1.0
+    tone_match: float = 0.6
+    context_jitter_sd: float = 0.15
+    policy_popularity_weight: float = 1.0
+    policy_taste_weight: float = 0.8
+    policy_taste_noise: float = 0.7
+    policy_freshness_per_day: float = 0.5
+    policy_noise: float = 0.6
+    dwell_median_seconds: tuple[tuple[float, float], ...] = ((45.0, 240.0), (40.0, 420.0), (180.0, 1200.0))
+    dwell_sigma: float = 0.6
+
+    def __post_init__(self) -> None:
+        for name in ("seed", "n_events", "n_users", "n_items", "days", "n_positions", "latent_rank"):
+            check_int(name, getattr(self, name), low=0 if name == "seed" else 1, owner=_OWNER)
+        check_int("prelaunch_days", self.prelaunch_days, low=0, owner=_OWNER)
+        for name in ("swap_probability", "shifter_share"):
+            check_number(name, getattr(self, name), low=0.0, high=1.0, owner=_OWNER)
+        for name in ("lifetime_sigma", "quality_sd", "taste_sd", "latent_sd", "shift_strength", "context_jitter_sd",
+                     "policy_taste_noise", "policy_noise", "dwell_sigma", "activity_sigma"):
+            check_number(name, getattr(self, name), low=0.0, owner=_OWNER)
+        for name in ("commute_mobile_factor", "weekend_activity", "habit_concentration"):
+            check_number(name, getattr(self, name), low=0.0, low_open=True, owner=_OWNER)
+        for name in ("intercept", "audio_commute_boost", "long_clip_evening_boost", "tone_match",
+                     "policy_popularity_weight", "policy_taste_weight", "policy_freshness_per_day"):
+            check_number(name, getattr(self, name), owner=_OWNER)
+        for name in ("topics", "tones", "devices", "daypart_labels"):
+            labels = getattr(self, name)
+            if not labels or len(set(labels)) != len(labels) or not all(isinstance(x, str) and x for x in labels):
+                raise ValueError(f"The {name!r} parameter of {_OWNER} must hold distinct non-empty strings. "
+                                 f"Got {labels!r} instead.")
+        self._check_lengths()
+        for name, low_open in (("examination", True), ("long_form_shares", False)):
+            for value in getattr(self, name):
+                check_number(name, value, low=0.0, high=1.0, low_open=low_open, owner=_OWNER)
+        for name in ("tone_shares", "kind_shares", "device_shares", "daypart_shares", "lifetime_hours"):
+            for value in getattr(self, name):
+                check_number(name, value, low=0.0, low_open=True, owner=_OWNER)
+        for pair in self.dwell_median_seconds:
+            for value in pair:
+                check_number("dwell_median_seconds", value, low=0.0, low_open=True, owner=_OWNER)
+        starts = self.daypart_starts
+        if not all(isinstance(h, int) and 0 <= h <= 23 for h in starts) or list(starts) != sorted(set(starts)):
+            raise ValueError(f"The 'daypart_starts' parameter of {_OWNER} must be strictly increasing hours "
+                             f"in [0, 23]. Got {starts!r} instead.")
+        for name, label in (("daypart_labels", "morning"), ("daypart_labels", "evening"), ("devices", "mobile")):
+            check_choice(f"{name} entry", label, getattr(self, name), owner=_OWNER)
+        try:
+            zoneinfo.ZoneInfo(self.timezone)
+        except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+            raise ValueError(f"The 'timezone' parameter of {_OWNER} must be an IANA zone name. "
+                             f"Got {self.timezone!r} instead.") from None
+        try:
+            stamp = pd.Timestamp(self.start)
+        except ValueError:
+            stamp = None
+        if stamp is None or stamp.tzinfo is not None:
+            raise ValueError(f"The 'start' parameter of {_OWNER} must be a local ISO-8601 time without offset. "
+                             f"Got {self.start!r} instead.")
+
+    def _check_lengths(self) -> None:
+        expected = {
+            "examination": self.n_positions, "tone_shares": len(self.tones), "device_shares": len(self.devices),
+            "daypart_starts": len(self.daypart_labels), "daypart_shares": len(self.daypart_labels),
+            "kind_shares": 3, "long_form_shares": 3, "lifetime_hours": 3, "dwell_median_seconds": 3,
+        }
+        for name, n in expected.items():
+            if len(getattr(self, name)) != n:
+                raise ValueError(f"The {name!r} parameter of {_OWNER} must have length {n}. "
+                                 f"Got {len(getattr(self, name))} instead.")
+        if any(len(pair) != 2 for pair in self.dwell_median_seconds):
+            raise ValueError(f"The 'dwell_median_seconds' parameter of {_OWNER} must hold (short, long) pairs.")
+
+    @classmethod
+    def scaled(cls, n_events: int = 100_000, **overrides) -> "ScenarioParameters":
+        """Parameters whose user and item counts grow with ``n_events``.
+
+        ``n_users = clip(n_events // 100, 50, 1_000_000)`` (about ten lists a
+        user) and ``n_items = clip(round(1.3 * sqrt(n_events)), 150, 20_000)``
+        (a bigger site publishes more, sub-linearly); ``overrides`` win.
+        """
+        n_events = check_int("n_events", n_events, low=1, owner=_OWNER)
+        sizes = {
+            "n_events": n_events,
+            "n_users": int(np.clip(n_events // 100, 50, 1_000_000)),
+            "n_items": int(np.clip(round(1.3 * np.sqrt(n_events)), 150, 20_000)),
+        }
+        return cls(**{**sizes, **overrides})
+
+    def to_dict(self) -> dict:
+        """A JSON-serializable dict of every parameter (tuples become lists in JSON)."""
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: Mapping) -> "ScenarioParameters":
+        """Inverse of :meth:`to_dict`; missing keys take their defaults, unknown keys are refused."""
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(data) - known)
+        if unknown:
+            raise ValueError(f"Unknown {_OWNER} parameter(s): {', '.join(map(repr, unknown))}.")
+
+        def as_tuple(value):
+            return tuple(as_tuple(v) for v in value) if isinstance(value, (list, tuple)) else value
+
+        return cls(**{key: as_tuple(value) for key, value in data.items()})
+
+
+@dataclass(frozen=True, eq=False)
+class SiteTruth:
+    """The planted latent truth of a scenario: everything :func:`true_relevance` needs.
+
+    Items are in publish order, users in id order; array names follow the
+    formula of the module docstring. Shapes: ``user_taste`` (n_users, n_topics),
+    ``user_latent`` (n_users, rank), ``item_latent`` (n_items, rank),
+    ``user_persona`` (n_users,) int8 (-1: no daypart shift), ``user_shift``
+    (n_users,), ``personas`` (3, n_dayparts, n_topics), ``item_quality``
+    (n_items,), ``item_topic`` / ``item_kind`` / ``item_tone`` (n_items,) int,
+    ``item_long_form`` (n_items,) bool, ``kind_context`` (3, n_dayparts,
+    n_devices), ``long_form_context`` (3, n_dayparts), ``tone_context`` (page
+    tones, item tones), ``examination`` (n_positions,) the planted θ_k,
+    ``published_at`` / ``expires_at`` (n_items,) int64 epoch seconds; all float
+    arrays float64.
+    """
+
+    user_ids: np.ndarray
+    item_ids: np.ndarray
+    topics: tuple[str, ...]
+    tones: tuple[str, ...]
+    devices: tuple[str, ...]
+    daypart_labels: tuple[str, ...]
+    daypart_starts: tuple[int, ...]
+    timezone: str
+    intercept: float
+    user_taste: np.ndarray
+    user_latent: np.ndarray
+    item_latent: np.ndarray
+    user_persona: np.ndarray
+    user_shift: np.ndarray
+    personas: np.ndarray
+    item_quality: np.ndarray
+    item_topic: np.ndarray
+    item_kind: np.ndarray
+    item_tone: np.ndarray
+    item_long_form: np.ndarray
+    kind_context: np.ndarray
+    long_form_context: np.ndarray
+    tone_context: np.ndarray
+    examination: np.ndarray
+    published_at: np.ndarray
+    expires_at: np.ndarray
+
+    @property
+    def context_levels(self) -> dict[str, tuple[str, ...]]:
+        """Labels of each context mode, keyed by :data:`CONTEXT_COLUMNS`."""
+        return {"daypart": self.daypart_labels, "device": self.devices, "page_tone": self.tones}
+
+
+_TRUTH_JSON = ("topics", "tones", "devices", "daypart_labels", "daypart_starts", "timezone", "intercept")
+
+
+@dataclass(frozen=True, eq=False)
+class SimulatedSite:
+    """A simulated log with its catalog, parameters and truth.
+
+    Attributes
+    ----------
+    events : DataFrame
+        The event log (columns of the event-log contract; ``timestamp`` int64 epoch seconds).
+    items : DataFrame
+        The catalog: ``item_id``, ``kind``, ``topic``, ``tone``, ``format``, ``published_at``, ``expires_at``.
+    params : ScenarioParameters
+    truth : SiteTruth
+    """
+
+    events: pd.DataFrame
+    items: pd.DataFrame
+    params: ScenarioParameters
+    truth: SiteTruth
+
+    @property
+    def examination(self) -> np.ndarray:
+        """The planted examination probabilities θ_k, shape (n_positions,), float64."""
+        return self.truth.examination
+
+
+def _labels(prefix: str, numbers: np.ndarray, width: int) -> np.ndarray:
+    return np.asarray([f"{prefix}{n:0{width}d}" for n in numbers])
+
+
+def _id_width(n: int, minimum: int) -> int:
+    return max(minimum, len(str(max(n - 1, 0))))
+
+
+def _take(labels, codes: np.ndarray) -> pa.Array:
+    return pa.array(np.asarray(labels, dtype=object)).take(pa.array(np.asarray(codes, dtype=np.int64)))
+
+
+def simulate_site(
+    params: ScenarioParameters | None = None, *, n_events: int | None = None, random_state: int | None = None
+) -> SimulatedSite:
+    """Simulate the demo site.
+
+    Parameters
+    ----------
+    params : ScenarioParameters or None
+        The scenario; ``None`` means ``ScenarioParameters.scaled(n_events)``.
+    n_events : int or None
+        Target number of log rows (impressions plus clicks); overrides
+        ``params.n_events``. The log stops at the first request that reaches it,
+        so it holds between ``n_events`` and ``n_events + 2 * n_positions - 1`` rows.
+    random_state : int or None
+        Seed; overrides ``params.seed``. An int (not a Generator) so the written
+        parameters regenerate the same log.
+
+    Returns
+    -------
+    SimulatedSite
+        Deterministic given the resolved parameters (``site.params``).
+    """
+    if params is None:
+        params = ScenarioParameters.scaled(100_000 if n_events is None else n_events)
+    overrides = {"n_events": n_events, "seed": random_state}
+    params = replace(params, **{k: v for k, v in overrides.items() if v is not None})
+    arrays, habits = _scenario.draw_world(params, np.random.default_rng([params.seed, 0]))
+    kind = arrays["item_kind"]
+    item_ids = np.asarray([_scenario.KIND_PREFIX[k] for k in kind], dtype=object) + np.char.zfill(
+        np.arange(params.n_items).astype(str), _id_width(params.n_items, 5)).astype(object)
+    truth = SiteTruth(
+        user_ids=_labels("u", np.arange(params.n_users), _id_width(params.n_users, 6)),
+        item_ids=item_ids.astype(str),
+        topics=params.topics, tones=params.tones, devices=params.devices, daypart_labels=params.daypart_labels,
+        daypart_starts=params.daypart_starts, timezone=params.timezone, intercept=params.intercept, **arrays,
+    )
+    start_local = np.datetime64(params.start, "s").astype(np.int64)
+    window = tuple(_scenario.local_to_epoch(np.array([start_local, start_local + params.days * 86_400]),
+                                            params.timezone))
+    log = _scenario.generate_log(params, truth, habits, window)
+    items = pa.table({
+        "item_id": pa.array(truth.item_ids.astype(object)),
+        "kind": _take(_scenario.KINDS, kind), "topic": _take(params.topics, truth.item_topic),
+        "tone": _take(params.tones, truth.item_tone),
+        "format": _take(("short-form", "long-form"), truth.item_long_form.astype(np.int64)),
+        "published_at": truth.published_at, "expires_at": truth.expires_at,
+    }).to_pandas()
+    return SimulatedSite(events=_events_frame(log, truth, params), items=items, params=params, truth=truth)
+
+
+def _events_frame(log: dict, truth: SiteTruth, params: ScenarioParameters) -> pd.DataFrame:
+    """Impression and click rows in time order; requests numbered chronologically."""
+    request = log["request"]
+    used = np.unique(request)
+    chronological = used[np.argsort(log["timestamp"][used], kind="stable")]
+    number = np.zeros(log["timestamp"].size, dtype=np.int64)
+    number[chronological] = np.arange(chronological.size)
+    source = np.concatenate([np.arange(request.size), np.flatnonzero(log["clicked"])])
+    is_click = np.repeat(np.array([0, 1], dtype=np.int64), [request.size, source.size - request.size])
+    req = request[source]
+    timestamp = log["timestamp"][req] + is_click * log["click_delay"][source]
+    position = log["position"][source].astype(np.int64)
+    order = np.lexsort((position, is_click, number[req], timestamp))
+    source, is_click, req = source[order], is_click[order], req[order]
+    request_labels = _labels("r", np.arange(chronological.size), _id_width(chronological.size, 7))
+    return pa.table({
+        "request_id": _take(request_labels, number[req]),
+        "timestamp": timestamp[order],
+        "user_id": _take(truth.user_ids, log["user"][req]),
+        "item_id": _take(truth.item_ids, log["item"][source]),
+        "event": _take(("impression", "click"), is_click),
+        "position": position[order],
+        "dwell_seconds": np.where(is_click == 1, log["dwell"][source], np.nan),
+        "device": _take(params.devices, log["device"][req]),
+        "page_tone": _take(params.tones, log["page_tone"][req]),
+    }).to_pandas()
+
+
+def daypart_of(timestamps, scenario: ScenarioParameters | SiteTruth) -> np.ndarray:
+    """Daypart label of each timestamp: the local hour in the scenario's timezone, binned by its start hours.
+
+    Parameters
+    ----------
+    timestamps : array-like of shape (n,)
+        int64 epoch seconds, or ISO-8601 strings with a UTC offset.
+    scenario : ScenarioParameters or SiteTruth
+        Supplies ``timezone``, ``daypart_starts`` and ``daypart_labels``.
+
+    Returns
+    -------
+    ndarray of shape (n,), str
+    """
+    values = np.asarray(timestamps)
+    if values.dtype.kind not in "iu":
+        values = pd.DatetimeIndex(pd.to_datetime(values, format="ISO8601", utc=True)).as_unit("s").asi8
+    codes = _scenario.daypart_codes(values, scenario.timezone, scenario.daypart_starts)
+    return np.asarray(scenario.daypart_labels)[codes]
+
+
+def true_relevance(truth: SiteTruth, user_ids, item_ids, contexts) -> np.ndarray:
+    """True relevance γ (click probability given examination) of (user, item, context) triples.
+
+    Parameters
+    ----------
+    truth : SiteTruth
+        From :func:`simulate_site` (``site.truth``) or :func:`read_truth`.
+    user_ids, item_ids : array-like of str, shape (n,) or scalar
+    contexts : mapping or DataFrame
+        ``"daypart"``, ``"device"`` and ``"page_tone"`` labels, each of shape
+        (n,) or a scalar (broadcast).
+
+    Returns
+    -------
+    ndarray of shape (n,), float64
+        Values in (0, 1).
+    """
+    missing = [c for c in CONTEXT_COLUMNS if c not in contexts]
+    if missing:
+        raise ValueError(f"contexts lacks the context column(s) {missing}; expected {list(CONTEXT_COLUMNS)}.")
+    columns = {"user_id": (user_ids, truth.user_ids), "item_id": (item_ids, truth.item_ids)}
+    columns.update({c: (contexts[c], truth.context_levels[c]) for c in CONTEXT_COLUMNS})
+    try:
+        values = np.broadcast_arrays(*(np.asarray(v, dtype=object) for v, _ in columns.values()))
+    except ValueError:
+        raise ValueError("user_ids, item_ids and the context columns must have one length (or be scalars).") from None
+    codes = []
+    for (name, (_, labels)), value in zip(columns.items(), values):
+        value = np.atleast_1d(value)
+        code = pd.Index(np.asarray(labels, dtype=object)).get_indexer(value)
+        bad = np.flatnonzero(code < 0)
+        if bad.size:
+            raise ValueError(f"{bad.size} {name} value(s) are not in the scenario, "
+                             f"e.g. {value[bad[0]]!r} at row {bad[0]}.")
+        codes.append(code)
+    return 1.0 / (1.0 + np.exp(-_scenario.relevance_logit(truth, *codes)))
+
+
+def _replace_atomically(path: Path, write) -> None:
+    tmp = path.with_name(f".{path.name}.tmp")
+    write(tmp)
+    os.replace(tmp, path)
+
+
+def _iso(seconds: np.ndarray) -> pa.Array:
+    return pc.strftime(pa.array(seconds, pa.int64()).cast(pa.timestamp("s", tz="UTC")),
+                       format="%Y-%m-%dT%H:%M:%S+00:00")
+
+
+def write_site(site: SimulatedSite, out_dir: str | os.PathLike, *, file_format: FileFormat = "parquet") -> Path:
+    """Write ``events``, ``items``, ``scenario.json``, ``truth.json`` and ``truth.npz`` to ``out_dir``.
+
+    Parquet keeps timestamps as int64 epoch seconds; CSV writes ISO-8601 strings
+    with a ``+00:00`` offset. Each file is written under a temporary name and
+    renamed into place. Returns the folder.
+    """
+    check_choice("file_format", file_format, ("parquet", "csv"), owner="write_site")
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    for name, frame in (("events", site.events), ("items", site.items)):
+        table = pa.Table.from_pandas(frame, preserve_index=False)
+        if file_format == "csv":
+            for column in ("timestamp", "published_at", "expires_at"):
+                if column in table.column_names:
+                    table = table.set_column(table.column_names.index(column), column, _iso(frame[column]))
+            _replace_atomically(out / f"{name}.csv", lambda p, t=table: pa_csv.write_csv(t, p))
+        else:
+            _replace_atomically(out / f"{name}.parquet", lambda p, t=table: pq.write_table(t, p))
+    scenario = {"format_version": FORMAT_VERSION, "parameters": site.params.to_dict()}
+    truth_json = {"format_version": FORMAT_VERSION, **{k: getattr(site.truth, k) for k in _TRUTH_JSON}}
+    arrays = {f.name: getattr(site.truth, f.name) for f in fields(SiteTruth) if f.name not in _TRUTH_JSON}
+    for name, payload in (("scenario.json", scenario), ("truth.json", truth_json)):
+        _replace_atomically(out / name, lambda p, d=payload: p.write_text(json.dumps(d, indent=2) + "\n"))
+    def write_npz(path: Path) -> None:
+        with open(path, "wb") as handle:
+            np.savez_compressed(handle, **arrays)
+
+    _replace_atomically(out / "truth.npz", write_npz)
+    return out
+
+
+def _read_json(path: Path) -> dict:
+    data = json.loads(path.read_text())
+    if data.get("format_version") != FORMAT_VERSION:
+        raise ValueError(f"{path} has format_version {data.get('format_version')!r}; "
+                         f"this version of threefold reads {FORMAT_VERSION}.")
+    return data
+
+
+def read_truth(out_dir: str | os.PathLike) -> SiteTruth:
+    """Read the truth written by :func:`write_site` (JSON and ``.npz``, never pickle)."""
+    out = Path(out_dir)
+    data = _read_json(out / "truth.json")
+    with np.load(out / "truth.npz", allow_pickle=False) as npz:
+        arrays = {name: npz[name] for name in npz.files}
+    labels = {k: tuple(data[k]) if isinstance(data[k], list) else data[k] for k in _TRUTH_JSON}
+    return SiteTruth(**labels, **arrays)
+
+
+def _read_table(out: Path, name: str) -> pd.DataFrame:
+    if (out / f"{name}.parquet").exists():
+        return pq.read_table(out / f"{name}.parquet").to_pandas()
+    path = out / f"{name}.csv"
+    if not path.exists():
+        raise FileNotFoundError(f"{out} holds neither {name}.parquet nor {name}.csv.")
+    header = pa_csv.read_csv(path, read_options=pa_csv.ReadOptions(skip_rows_after_names=10**12)).column_names
+    numeric = {"position": pa.int64(), "dwell_seconds": pa.float64()}
+    types = {c: numeric.get(c, pa.string()) for c in header}
+    frame = pa_csv.read_csv(path, convert_options=pa_csv.ConvertOptions(
+        column_types=types, strings_can_be_null=False, quoted_strings_can_be_null=False)).to_pandas()
+    for column in ("timestamp", "published_at", "expires_at"):
+        if column in frame:
+            frame[column] = pd.DatetimeIndex(pd.to_datetime(frame[column], format="ISO8601", utc=True)).as_unit("s").asi8
+    return frame
+
+
+def read_site(out_dir: str | os.PathLike) -> SimulatedSite:
+    """Read a folder written by :func:`write_site` (Parquet or CSV); ids come back as strings."""
+    out = Path(out_dir)
+    params = ScenarioParameters.from_dict(_read_json(out / "scenario.json")["parameters"])
+    return SimulatedSite(events=_read_table(out, "events"), items=_read_table(out, "items"),
+                         params=params, truth=read_truth(out))
