@@ -55,6 +55,26 @@ def test_top_k_matches_slow_reference_with_ties_masks_and_inf():
         assert_array_equal(top_k(scores, k, candidate_mask=mask), slow_top_k(scores, k, mask))
 
 
+def test_top_k_on_wide_rows_matches_slow_reference():
+    # Rows wide enough for the prefilter (>= 64 k columns), including the worst case for the
+    # strided sample (scores rising with the index) and ties at the threshold.
+    rng = np.random.default_rng(5)
+    n = 700
+    scores = rng.integers(0, 50, size=(30, n)).astype(np.float32)
+    scores[0] = np.arange(n)
+    scores[1] = 0.0
+    scores[2, ::3] = -np.inf
+    mask = rng.random(scores.shape) < 0.9
+    mask[3, 5:] = False  # fewer than k candidates
+    for k in (1, 4, 10):
+        assert_array_equal(top_k(scores, k), slow_top_k(scores, k))
+        assert_array_equal(top_k(scores, k, candidate_mask=mask), slow_top_k(scores, k, mask))
+    wide_nan = np.zeros((2, n))
+    wide_nan[1, 11] = np.nan
+    with pytest.raises(ValueError, match="NaN"):
+        top_k(wide_nan, 3)
+
+
 def test_top_k_breaks_ties_by_lower_item_index():
     scores = np.array([[0.5, 0.9, 0.5, 0.9, 0.1, 0.5]])
     assert_array_equal(top_k(scores, 4), [[1, 3, 0, 2]])

@@ -54,33 +54,31 @@ __all__ = ["RankingMetrics", "top_k", "top_k_from_factors", "ranking_metrics", "
 
 #: Target number of score cells per block in :func:`top_k_from_factors`.
 _BLOCK_CELLS = 1 << 24
+#: Prefilter rows at least this many times wider than k, sampling every _STRIDE-th column.
+_PREFILTER_WIDTH = 64
+_STRIDE = 8
 
 
-def _select_top_k(scores: np.ndarray, k: int) -> np.ndarray:
-    """Top-k column indices of every row of ``scores`` (not modified).
+def _select_exact(scores: np.ndarray, k: int) -> np.ndarray:
+    """Top-k column indices of every row of ``scores`` (not modified), ``-1`` for ``-inf``.
 
     Selection by value: the k-th largest score ``t`` of a row comes from
     ``np.partition``; the row's list is every column scoring above ``t`` plus
     the lowest-index columns scoring exactly ``t``, up to ``k``. Only rows where
     ties straddle the threshold pay for the extra cumulative count. The ``k``
     selected columns are then sorted by (score descending, index ascending).
-    ``-inf`` entries are replaced by ``-1`` in the output.
     """
     q, n = scores.shape
     kk = min(k, n)
     out = np.full((q, k), -1, dtype=np.int64)
     if q == 0 or kk == 0:
         return out
-    if kk < n:
-        top = np.partition(scores, n - kk, axis=1)[:, n - kk:]
-    else:
-        top = scores
+    top = np.partition(scores, n - kk, axis=1)[:, n - kk:] if kk < n else scores
     if np.isnan(top).any():
         raise ValueError("scores contain NaN; mask the candidate instead or give it -inf.")
     threshold = top.min(axis=1)[:, None]
     keep = scores >= threshold
-    n_keep = keep.sum(axis=1)
-    tied = np.flatnonzero(n_keep > kk)
+    tied = np.flatnonzero(np.count_nonzero(keep, axis=1) > kk)
     if tied.size:
         s, t = scores[tied], threshold[tied]
         above = s > t
@@ -94,6 +92,34 @@ def _select_top_k(scores: np.ndarray, k: int) -> np.ndarray:
     vals = np.take_along_axis(vals, order, axis=1)
     out[:, :kk] = np.where(vals == -np.inf, -1, cols)
     return out
+
+
+def _select_top_k(scores: np.ndarray, k: int) -> np.ndarray:
+    """Like :func:`_select_exact`, with a prefilter on wide rows.
+
+    The k-th largest score of every ``_STRIDE``-th column is a lower bound of
+    the row's k-th largest score, so every column at or above it is kept as a
+    candidate (in index order) and :func:`_select_exact` runs on the packed
+    candidates only: about ``k * _STRIDE`` per row for exchangeable scores,
+    the whole row in the worst case.
+    """
+    q, n = scores.shape
+    kk = min(k, n)
+    if q == 0 or n < _PREFILTER_WIDTH * kk:
+        return _select_exact(scores, k)
+    if np.isnan(scores).any():
+        raise ValueError("scores contain NaN; mask the candidate instead or give it -inf.")
+    sample = scores[:, ::_STRIDE]
+    bound = np.partition(sample, sample.shape[1] - kk, axis=1)[:, sample.shape[1] - kk]
+    rows, cols = np.nonzero(scores >= bound[:, None])
+    counts = np.bincount(rows, minlength=q)
+    slot = np.arange(rows.size) - np.repeat(np.cumsum(counts) - counts, counts)
+    packed = np.full((q, max(int(counts.max()), kk)), -np.inf, dtype=scores.dtype)
+    packed[rows, slot] = scores[rows, cols]
+    packed_cols = np.zeros(packed.shape, dtype=np.int64)
+    packed_cols[rows, slot] = cols
+    picked = _select_exact(packed, k)
+    return np.where(picked >= 0, np.take_along_axis(packed_cols, np.maximum(picked, 0), axis=1), -1)
 
 
 def top_k(scores: np.ndarray, k: int, candidate_mask: np.ndarray | None = None) -> np.ndarray:
@@ -121,8 +147,11 @@ def top_k(scores: np.ndarray, k: int, candidate_mask: np.ndarray | None = None) 
     Selection uses ``np.partition`` to find each row's k-th largest score and
     keeps the columns at or above it (resolving ties at the threshold by
     index), then sorts the k selected entries: O(n) per row plus O(k log k).
-    On float32 rows of 20,000 items this measured about 4x faster than
-    ``np.argpartition`` on the same machine.
+    Rows at least 64 k wide are first narrowed to the columns at or above the
+    k-th largest score of every 8th column (a lower bound of the row's k-th
+    largest, so nothing is lost). On float32 rows of 20,000 items, ``np.partition``
+    measured 2-4 times faster than ``np.argpartition`` on the same machine, and
+    the prefilter removes most of the remaining partition work.
     """
     k = check_int("k", k, low=1, owner="top_k")
     scores = np.asarray(scores)
