@@ -1,0 +1,135 @@
+"""Benchmark: validating and loading a large event log, beside plain pyarrow reads.
+
+Each contender runs in its own child process; wall time and peak resident memory
+(``resource.getrusage(RUSAGE_SELF).ru_maxrss`` in the child) are reported. The
+references read the same file with pyarrow alone: ``read_csv`` (whole file,
+multithreaded, types inferred) and the streaming ``open_csv`` reader with every
+column as text (what threefold's chunked reader starts from).
+
+The log is invented random data (fictional users, items and requests), written
+once to ``--path`` if the file does not exist.
+
+Usage::
+
+    python experiments/benchmarks/event_log_io.py --rows 10000000 --path /tmp/events_10m.csv \
+        --out experiments/benchmarks/results/event-log.md
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pcsv
+
+CONTENDERS = {
+    "pyarrow read_csv (reference)": "import pyarrow.csv as c; t = c.read_csv(PATH); n = t.num_rows",
+    "pyarrow open_csv, text columns (reference)": (
+        "import pyarrow as pa, pyarrow.csv as c\n"
+        "names = c.open_csv(PATH).schema.names\n"
+        "r = c.open_csv(PATH, convert_options=c.ConvertOptions(column_types={k: pa.string() for k in names}))\n"
+        "n = sum(b.num_rows for b in r)"
+    ),
+    "threefold validate_events": (
+        "from threefold.validate import validate_events\n"
+        "r = validate_events(PATH, now=2_000_000_000); n = r.summary['rows_read']"
+    ),
+    "threefold load_events": (
+        "import warnings; from threefold.events import load_events\n"
+        "warnings.simplefilter('ignore')\n"
+        "df = load_events(PATH); n = len(df)"
+    ),
+}
+
+
+def write_log(path: str, rows: int, seed: int = 0, block: int = 1_000_000) -> None:
+    """Invented log: 10 items per request, 8% clicks, 0.1% client-retry duplicates."""
+    rng = np.random.default_rng(seed)
+    n_users, n_items = max(rows // 40, 10), max(rows // 400, 10)
+    with pcsv.CSVWriter(path, pa.schema([(k, pa.string()) for k in (
+        "user_id", "item_id", "timestamp", "event", "position", "dwell_seconds", "request_id", "device", "page_tone",
+    )])) as writer:
+        for start in range(0, rows, block):
+            m = min(block, rows - start)
+            req = (start + np.arange(m)) // 10
+            user = rng.integers(0, n_users, m // 10 + 2)[req - start // 10]
+            ts = 1_700_000_000 + rng.integers(0, 30 * 86400, m // 10 + 2)[req - start // 10]
+            click = rng.random(m) < 0.08
+            dwell = np.where(click, np.round(rng.exponential(40.0, m), 1), np.nan)
+            dup = rng.random(m) < 0.001
+            idx = np.where(dup, np.maximum(np.arange(m) - 1, 0), np.arange(m))
+            cols = {
+                "user_id": np.char.add("reader", user.astype(str)),
+                "item_id": np.char.add("story", rng.integers(0, n_items, m).astype(str)),
+                "timestamp": pa.array(ts.astype("datetime64[s]")).cast(pa.string()).to_numpy(zero_copy_only=False),
+                "event": np.where(click, "click", "impression"),
+                "position": ((start + np.arange(m)) % 10 + 1).astype(str),
+                "dwell_seconds": np.where(click, dwell.astype(str), ""),
+                "request_id": np.char.add("q", req.astype(str)),
+                "device": rng.choice(np.array(["phone", "desktop", "tablet"]), m),
+                "page_tone": rng.choice(np.array(["calm", "urgent", "playful"]), m),
+            }
+            cols["timestamp"] = np.char.add(np.char.replace(cols["timestamp"].astype(str), " ", "T"), "+00:00")
+            writer.write_table(pa.table({k: pa.array(v[idx].astype(str)) for k, v in cols.items()}))
+
+
+def child(code: str, path: str) -> None:
+    start = time.perf_counter()
+    scope = {"PATH": path}
+    exec(code, scope)
+    seconds = time.perf_counter() - start
+    peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(json.dumps({"seconds": seconds, "peak_mb": peak_mb, "rows": int(scope["n"])}))
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rows", type=int, default=10_000_000)
+    parser.add_argument("--path", default="/tmp/threefold_events_10m.csv")
+    parser.add_argument("--out", default=None)
+    parser.add_argument("--child", default=None, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.child:
+        child(CONTENDERS[args.child], args.path)
+        return
+    if not os.path.exists(args.path):
+        t = time.perf_counter()
+        write_log(args.path, args.rows)
+        print(f"wrote {args.path} in {time.perf_counter() - t:.1f} s", file=sys.stderr)
+    size_mb = os.path.getsize(args.path) / 1e6
+    lines = [
+        f"Event log: {args.path}, {size_mb:,.0f} MB of CSV, {args.rows:,} rows (invented data).",
+        f"Machine: {platform.processor() or platform.machine()}, {os.cpu_count()} cores; one child process per contender.",
+        "",
+        "| contender | rows | wall time (s) | peak RSS (MB) | time / pyarrow read_csv |",
+        "| --- | ---: | ---: | ---: | ---: |",
+    ]
+    results = {}
+    for name in CONTENDERS:
+        out = subprocess.run([sys.executable, __file__, "--child", name, "--path", args.path],
+                             check=True, capture_output=True, text=True).stdout
+        results[name] = json.loads(out.strip().splitlines()[-1])
+        print(name, results[name], file=sys.stderr)
+    ref = results["pyarrow read_csv (reference)"]["seconds"]
+    for name, r in results.items():
+        lines.append(f"| {name} | {r['rows']:,} | {r['seconds']:.1f} | {r['peak_mb']:,.0f} | {r['seconds'] / ref:.1f} |")
+    lines += ["", "Reproduce:", "", "```",
+              f"python experiments/benchmarks/event_log_io.py --rows {args.rows} --path {args.path}"
+              + (f" --out {args.out}" if args.out else ""), "```"]
+    text = "\n".join(lines) + "\n"
+    print(text)
+    if args.out:
+        with open(args.out, "w") as handle:
+            handle.write(text)
+
+
+if __name__ == "__main__":
+    main()

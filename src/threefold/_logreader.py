@@ -1,0 +1,188 @@
+"""Chunked reading of tabular logs: CSV, one Parquet file, or a folder of Parquet files.
+
+Every source is read as a stream of Arrow record batches, re-cut into tables of
+exactly ``chunk_rows`` rows (the last one shorter), so memory stays bounded by
+the chunk size whatever the file's own block or row-group sizes are.
+
+* CSV (optionally compressed, detected from the extension, e.g. ``.csv.gz``):
+  UTF-8, a header row, every column read as text. Nothing is converted to a
+  number or a missing value at read time: a blank field is the empty string.
+* Parquet file (detected by its ``PAR1`` magic bytes, whatever the extension).
+* Folder: every Parquet file below it (names starting with ``.`` or ``_`` are
+  skipped), in sorted path order, with ``key=value`` folder names read as
+  columns (hive partitioning).
+
+Id columns (``user_id``, ``item_id``, ``request_id``) always come out as
+strings: text stays as written, integers are printed exactly (``2**53 + 1``
+included). Floating-point id columns are refused, since a float cannot hold
+every id exactly.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterator, Sequence
+
+import pyarrow as pa
+import pyarrow.csv as pcsv
+import pyarrow.dataset as pds
+import pyarrow.parquet as pq
+
+__all__ = ["LogSource", "open_source", "ID_COLUMNS"]
+
+ID_COLUMNS = ("user_id", "item_id", "request_id")
+_CSV_BLOCK_BYTES = 8 << 20
+
+
+@dataclass(frozen=True)
+class LogSource:
+    """An opened log.
+
+    Attributes
+    ----------
+    path : str
+    kind : {"csv", "parquet", "parquet-folder"}
+    schema : pyarrow.Schema
+        Column names and stored types (CSV: every column is a string).
+    """
+
+    path: str
+    kind: str
+    schema: pa.Schema
+
+    @property
+    def columns(self) -> list[str]:
+        """Column names in file order."""
+        return list(self.schema.names)
+
+    def id_type_errors(self) -> list[tuple[str, str]]:
+        """(column, type) of every id column stored as something other than text or integers."""
+        bad = []
+        for name in ID_COLUMNS:
+            if name in self.schema.names:
+                kind = self.schema.field(name).type
+                if pa.types.is_dictionary(kind):
+                    kind = kind.value_type
+                ok = (
+                    pa.types.is_string(kind) or pa.types.is_large_string(kind)
+                    or pa.types.is_integer(kind) or pa.types.is_null(kind)
+                )
+                if not ok:
+                    bad.append((name, str(kind)))
+        return bad
+
+    def iter_tables(self, chunk_rows: int, columns: Sequence[str] | None = None) -> Iterator[tuple[int, pa.Table]]:
+        """Yield ``(first_row, table)`` with ``first_row`` the 1-based data row number of the table's first row.
+
+        Raises
+        ------
+        ValueError
+            If a requested column is absent or an id column has a floating-point type.
+        """
+        names = self.columns if columns is None else list(columns)
+        absent = [c for c in names if c not in self.schema.names]
+        if absent:
+            raise ValueError(f"{self.path}: no column(s) {absent}; the file has {self.columns}.")
+        bad = [(c, t) for c, t in self.id_type_errors() if c in names]
+        if bad:
+            col, kind = bad[0]
+            raise ValueError(
+                f"{self.path}: column {col!r} is stored as {kind}; ids must be text or integers "
+                "(a floating-point id cannot hold every id exactly). Rewrite the column as text."
+            )
+        first_row = 1
+        for table in _rebatch(self._batches(names, chunk_rows), chunk_rows):
+            yield first_row, _ids_as_text(table)
+            first_row += table.num_rows
+
+    def _batches(self, names: list[str], chunk_rows: int) -> Iterator[pa.RecordBatch]:
+        if self.kind == "csv":
+            reader = pcsv.open_csv(
+                self.path,
+                read_options=pcsv.ReadOptions(block_size=_CSV_BLOCK_BYTES, use_threads=True),
+                parse_options=pcsv.ParseOptions(newlines_in_values=True),
+                convert_options=pcsv.ConvertOptions(
+                    column_types={c: pa.string() for c in self.columns},
+                    include_columns=names,
+                    strings_can_be_null=False,
+                    quoted_strings_can_be_null=False,
+                ),
+            )
+            yield from reader
+        elif self.kind == "parquet":
+            yield from pq.ParquetFile(self.path).iter_batches(batch_size=chunk_rows, columns=names)
+        else:
+            dataset = _dataset(self.path)
+            for fragment in sorted(dataset.get_fragments(), key=lambda f: f.path):
+                scanner = pds.Scanner.from_fragment(
+                    fragment, schema=dataset.schema, columns=names, batch_size=chunk_rows
+                )
+                yield from scanner.to_batches()
+
+
+def _dataset(path: str) -> pds.Dataset:
+    return pds.dataset(path, format="parquet", partitioning="hive", ignore_prefixes=[".", "_"])
+
+
+def _rebatch(batches: Iterator[pa.RecordBatch], chunk_rows: int) -> Iterator[pa.Table]:
+    """Re-cut a stream of batches into tables of exactly ``chunk_rows`` rows (last one shorter)."""
+    pending: list[pa.RecordBatch] = []
+    count = 0
+    for batch in batches:
+        if batch.num_rows == 0:
+            continue
+        pending.append(batch)
+        count += batch.num_rows
+        if count < chunk_rows:
+            continue
+        table = pa.Table.from_batches(pending)
+        start = 0
+        while count - start >= chunk_rows:
+            yield table.slice(start, chunk_rows)
+            start += chunk_rows
+        rest = table.slice(start)
+        pending = rest.to_batches() if rest.num_rows else []
+        count = rest.num_rows
+    if count:
+        yield pa.Table.from_batches(pending)
+
+
+def _ids_as_text(table: pa.Table) -> pa.Table:
+    """Cast integer, dictionary and null id columns to text (exact decimal digits)."""
+    for name in ID_COLUMNS:
+        if name in table.column_names:
+            i = table.column_names.index(name)
+            column = table.column(i)
+            if not pa.types.is_string(column.type):
+                table = table.set_column(i, name, column.cast(pa.string()))
+    return table
+
+
+def open_source(path: str | os.PathLike) -> LogSource:
+    """Open a log (CSV, Parquet file or Parquet folder) and read its schema.
+
+    Raises
+    ------
+    FileNotFoundError
+        If ``path`` does not exist.
+    ValueError
+        If a folder holds no Parquet files.
+    """
+    p = Path(path)
+    if not p.exists():
+        raise FileNotFoundError(f"No such file or folder: {str(p)!r}.")
+    if p.is_dir():
+        dataset = _dataset(str(p))
+        if not dataset.files:
+            raise ValueError(f"Folder {str(p)!r} holds no Parquet files.")
+        return LogSource(str(p), "parquet-folder", dataset.schema)
+    with open(p, "rb") as handle:
+        magic = handle.read(4)
+    if magic == b"PAR1":
+        return LogSource(str(p), "parquet", pq.read_schema(str(p)))
+    reader = pcsv.open_csv(str(p), read_options=pcsv.ReadOptions(block_size=1 << 16))
+    names = reader.schema.names
+    schema = pa.schema([pa.field(name, pa.string()) for name in names])
+    return LogSource(str(p), "csv", schema)
