@@ -8,9 +8,13 @@ labels, frames and files. Parameters arrive as a validated
 from __future__ import annotations
 
 import math
+import zoneinfo
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+
+from threefold._checks import check_choice, check_int, check_number
 
 #: Item kinds of the event-log contract, in code order.
 KINDS = ("article", "clip", "audio")
@@ -170,7 +174,8 @@ def _request_block(params, habits, n: int, window: tuple[int, int], rng) -> dict
     day = rng.choice(params.days, size=n, p=day_weights / day_weights.sum())
     starts = np.asarray(params.daypart_starts, dtype=np.int64)
     length = np.diff(np.append(starts, starts[0] + 24))
-    second_of_day = (starts[daypart] * 3600 + np.floor(rng.random(n) * length[daypart] * 3600).astype(np.int64)) % 86_400
+    offset = np.floor(rng.random(n) * length[daypart] * 3600).astype(np.int64)
+    second_of_day = (starts[daypart] * 3600 + offset) % 86_400
     epoch = local_to_epoch(start_local + day * 86_400 + second_of_day, params.timezone)
     epoch = np.clip(epoch, window[0], window[1] - 1)
     device = _sample_rows(habits["device"][user] * habits["device_by_daypart"][daypart], rng)
@@ -272,3 +277,123 @@ def generate_log(params, truth, habits: dict, window: tuple[int, int]) -> dict:
     out = {key: np.concatenate([p[key] for p in parts]) for key in parts[0] if key != "request"}
     out["request"] = np.concatenate([p["request"] + o for p, o in zip(parts, offsets)])
     return out
+
+
+def id_labels(prefix: str, n: int, min_width: int) -> np.ndarray:
+    """``prefix`` plus zero-padded numbers ``0 .. n - 1`` (at least ``min_width`` digits), str array."""
+    width = max(min_width, len(str(max(n - 1, 0))))
+    return np.asarray([f"{prefix}{k:0{width}d}" for k in range(n)])
+
+
+def item_id_labels(kind: np.ndarray) -> np.ndarray:
+    """Item ids: the kind's letter plus the zero-padded item number (at least 5 digits), str array."""
+    digits = id_labels("", kind.size, 5)
+    return np.char.add(np.asarray(KIND_PREFIX)[kind], digits)
+
+
+def _take(labels, codes: np.ndarray) -> pa.Array:
+    return pa.array(np.asarray(labels, dtype=object)).take(pa.array(np.asarray(codes, dtype=np.int64)))
+
+
+def items_frame(truth) -> pd.DataFrame:
+    """The catalog frame of the contract (timestamps as int64 epoch seconds)."""
+    return pa.table({
+        "item_id": pa.array(truth.item_ids.astype(object)),
+        "kind": _take(KINDS, truth.item_kind), "topic": _take(truth.topics, truth.item_topic),
+        "tone": _take(truth.tones, truth.item_tone),
+        "format": _take(("short-form", "long-form"), truth.item_long_form.astype(np.int64)),
+        "published_at": truth.published_at, "expires_at": truth.expires_at,
+    }).to_pandas()
+
+
+def events_frame(log: dict, truth) -> pd.DataFrame:
+    """Impression and click rows in time order; requests numbered chronologically."""
+    request = log["request"]
+    used = np.unique(request)
+    chronological = used[np.argsort(log["timestamp"][used], kind="stable")]
+    number = np.zeros(log["timestamp"].size, dtype=np.int64)
+    number[chronological] = np.arange(chronological.size)
+    source = np.concatenate([np.arange(request.size), np.flatnonzero(log["clicked"])])
+    is_click = np.repeat(np.array([0, 1], dtype=np.int64), [request.size, source.size - request.size])
+    req = request[source]
+    timestamp = log["timestamp"][req] + is_click * log["click_delay"][source]
+    position = log["position"][source].astype(np.int64)
+    order = np.lexsort((position, is_click, number[req], timestamp))
+    source, is_click, req = source[order], is_click[order], req[order]
+    request_labels = id_labels("r", chronological.size, 7)
+    return pa.table({
+        "request_id": _take(request_labels, number[req]),
+        "timestamp": timestamp[order],
+        "user_id": _take(truth.user_ids, log["user"][req]),
+        "item_id": _take(truth.item_ids, log["item"][source]),
+        "event": _take(("impression", "click"), is_click),
+        "position": position[order],
+        "dwell_seconds": np.where(is_click == 1, log["dwell"][source], np.nan),
+        "device": _take(truth.devices, log["device"][req]),
+        "page_tone": _take(truth.tones, log["page_tone"][req]),
+    }).to_pandas()
+
+
+def check_parameters(params, owner: str) -> None:
+    """Validate a ScenarioParameters (raises ValueError naming the parameter)."""
+    for name in ("seed", "n_events", "n_users", "n_items", "days", "n_positions", "latent_rank"):
+        check_int(name, getattr(params, name), low=0 if name == "seed" else 1, owner=owner)
+    check_int("prelaunch_days", params.prelaunch_days, low=0, owner=owner)
+    for name in ("swap_probability", "shifter_share"):
+        check_number(name, getattr(params, name), low=0.0, high=1.0, owner=owner)
+    for name in ("lifetime_sigma", "quality_sd", "taste_sd", "latent_sd", "shift_strength", "context_jitter_sd",
+                 "policy_taste_noise", "policy_noise", "dwell_sigma", "activity_sigma"):
+        check_number(name, getattr(params, name), low=0.0, owner=owner)
+    for name in ("commute_mobile_factor", "weekend_activity", "habit_concentration"):
+        check_number(name, getattr(params, name), low=0.0, low_open=True, owner=owner)
+    for name in ("intercept", "audio_commute_boost", "long_clip_evening_boost", "tone_match",
+                 "policy_popularity_weight", "policy_taste_weight", "policy_freshness_per_day"):
+        check_number(name, getattr(params, name), owner=owner)
+    for name in ("topics", "tones", "devices", "daypart_labels"):
+        labels = getattr(params, name)
+        if not labels or len(set(labels)) != len(labels) or not all(isinstance(x, str) and x for x in labels):
+            raise ValueError(f"The {name!r} parameter of {owner} must hold distinct non-empty strings. "
+                             f"Got {labels!r} instead.")
+    _check_lengths(params, owner)
+    for name, low_open in (("examination", True), ("long_form_shares", False)):
+        for value in getattr(params, name):
+            check_number(name, value, low=0.0, high=1.0, low_open=low_open, owner=owner)
+    for name in ("tone_shares", "kind_shares", "device_shares", "daypart_shares", "lifetime_hours"):
+        for value in getattr(params, name):
+            check_number(name, value, low=0.0, low_open=True, owner=owner)
+    for pair in params.dwell_median_seconds:
+        for value in pair:
+            check_number("dwell_median_seconds", value, low=0.0, low_open=True, owner=owner)
+    starts = params.daypart_starts
+    if not all(isinstance(h, int) and 0 <= h <= 23 for h in starts) or list(starts) != sorted(set(starts)):
+        raise ValueError(f"The 'daypart_starts' parameter of {owner} must be strictly increasing hours "
+                         f"in [0, 23]. Got {starts!r} instead.")
+    for name, label in (("daypart_labels", "morning"), ("daypart_labels", "evening"), ("devices", "mobile")):
+        check_choice(f"{name} entry", label, getattr(params, name), owner=owner)
+    try:
+        zoneinfo.ZoneInfo(params.timezone)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise ValueError(f"The 'timezone' parameter of {owner} must be an IANA zone name. "
+                         f"Got {params.timezone!r} instead.") from None
+    try:
+        stamp = pd.Timestamp(params.start)
+    except ValueError:
+        stamp = None
+    if stamp is None or stamp.tzinfo is not None:
+        raise ValueError(f"The 'start' parameter of {owner} must be a local ISO-8601 time without offset. "
+                         f"Got {params.start!r} instead.")
+
+
+def _check_lengths(params, owner: str) -> None:
+    expected = {
+        "examination": params.n_positions, "tone_shares": len(params.tones), "device_shares": len(params.devices),
+        "daypart_starts": len(params.daypart_labels), "daypart_shares": len(params.daypart_labels),
+        "kind_shares": 3, "long_form_shares": 3, "lifetime_hours": 3, "dwell_median_seconds": 3,
+    }
+    for name, n in expected.items():
+        if len(getattr(params, name)) != n:
+            raise ValueError(f"The {name!r} parameter of {owner} must have length {n}. "
+                             f"Got {len(getattr(params, name))} instead.")
+    if any(len(pair) != 2 for pair in params.dwell_median_seconds):
+        raise ValueError(f"The 'dwell_median_seconds' parameter of {owner} must hold (short, long) pairs.")
+

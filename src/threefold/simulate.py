@@ -42,22 +42,16 @@ from the timestamp with :func:`daypart_of` (local hour in the site's timezone).
 
 from __future__ import annotations
 
-import json
 import os
-import zoneinfo
 from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
 from typing import Literal, Mapping
 
 import numpy as np
 import pandas as pd
-import pyarrow as pa
-import pyarrow.compute as pc
-import pyarrow.csv as pa_csv
-import pyarrow.parquet as pq
-
 from threefold import _scenario
-from threefold._checks import check_choice, check_int, check_number
+from threefold import _scenario_files as _files
+from threefold._checks import check_choice, check_int
 
 __all__ = [
     "CONTEXT_COLUMNS",
@@ -74,7 +68,6 @@ __all__ = [
 
 #: Context modes of the scenario, in the order :func:`true_relevance` expects.
 CONTEXT_COLUMNS = ("daypart", "device", "page_tone")
-FORMAT_VERSION = 1
 FileFormat = Literal["parquet", "csv"]
 _OWNER = "ScenarioParameters"
 
@@ -143,65 +136,7 @@ class ScenarioParameters:
     dwell_sigma: float = 0.6
 
     def __post_init__(self) -> None:
-        for name in ("seed", "n_events", "n_users", "n_items", "days", "n_positions", "latent_rank"):
-            check_int(name, getattr(self, name), low=0 if name == "seed" else 1, owner=_OWNER)
-        check_int("prelaunch_days", self.prelaunch_days, low=0, owner=_OWNER)
-        for name in ("swap_probability", "shifter_share"):
-            check_number(name, getattr(self, name), low=0.0, high=1.0, owner=_OWNER)
-        for name in ("lifetime_sigma", "quality_sd", "taste_sd", "latent_sd", "shift_strength", "context_jitter_sd",
-                     "policy_taste_noise", "policy_noise", "dwell_sigma", "activity_sigma"):
-            check_number(name, getattr(self, name), low=0.0, owner=_OWNER)
-        for name in ("commute_mobile_factor", "weekend_activity", "habit_concentration"):
-            check_number(name, getattr(self, name), low=0.0, low_open=True, owner=_OWNER)
-        for name in ("intercept", "audio_commute_boost", "long_clip_evening_boost", "tone_match",
-                     "policy_popularity_weight", "policy_taste_weight", "policy_freshness_per_day"):
-            check_number(name, getattr(self, name), owner=_OWNER)
-        for name in ("topics", "tones", "devices", "daypart_labels"):
-            labels = getattr(self, name)
-            if not labels or len(set(labels)) != len(labels) or not all(isinstance(x, str) and x for x in labels):
-                raise ValueError(f"The {name!r} parameter of {_OWNER} must hold distinct non-empty strings. "
-                                 f"Got {labels!r} instead.")
-        self._check_lengths()
-        for name, low_open in (("examination", True), ("long_form_shares", False)):
-            for value in getattr(self, name):
-                check_number(name, value, low=0.0, high=1.0, low_open=low_open, owner=_OWNER)
-        for name in ("tone_shares", "kind_shares", "device_shares", "daypart_shares", "lifetime_hours"):
-            for value in getattr(self, name):
-                check_number(name, value, low=0.0, low_open=True, owner=_OWNER)
-        for pair in self.dwell_median_seconds:
-            for value in pair:
-                check_number("dwell_median_seconds", value, low=0.0, low_open=True, owner=_OWNER)
-        starts = self.daypart_starts
-        if not all(isinstance(h, int) and 0 <= h <= 23 for h in starts) or list(starts) != sorted(set(starts)):
-            raise ValueError(f"The 'daypart_starts' parameter of {_OWNER} must be strictly increasing hours "
-                             f"in [0, 23]. Got {starts!r} instead.")
-        for name, label in (("daypart_labels", "morning"), ("daypart_labels", "evening"), ("devices", "mobile")):
-            check_choice(f"{name} entry", label, getattr(self, name), owner=_OWNER)
-        try:
-            zoneinfo.ZoneInfo(self.timezone)
-        except (zoneinfo.ZoneInfoNotFoundError, ValueError):
-            raise ValueError(f"The 'timezone' parameter of {_OWNER} must be an IANA zone name. "
-                             f"Got {self.timezone!r} instead.") from None
-        try:
-            stamp = pd.Timestamp(self.start)
-        except ValueError:
-            stamp = None
-        if stamp is None or stamp.tzinfo is not None:
-            raise ValueError(f"The 'start' parameter of {_OWNER} must be a local ISO-8601 time without offset. "
-                             f"Got {self.start!r} instead.")
-
-    def _check_lengths(self) -> None:
-        expected = {
-            "examination": self.n_positions, "tone_shares": len(self.tones), "device_shares": len(self.devices),
-            "daypart_starts": len(self.daypart_labels), "daypart_shares": len(self.daypart_labels),
-            "kind_shares": 3, "long_form_shares": 3, "lifetime_hours": 3, "dwell_median_seconds": 3,
-        }
-        for name, n in expected.items():
-            if len(getattr(self, name)) != n:
-                raise ValueError(f"The {name!r} parameter of {_OWNER} must have length {n}. "
-                                 f"Got {len(getattr(self, name))} instead.")
-        if any(len(pair) != 2 for pair in self.dwell_median_seconds):
-            raise ValueError(f"The 'dwell_median_seconds' parameter of {_OWNER} must hold (short, long) pairs.")
+        _scenario.check_parameters(self, _OWNER)
 
     @classmethod
     def scaled(cls, n_events: int = 100_000, **overrides) -> "ScenarioParameters":
@@ -315,18 +250,6 @@ class SimulatedSite:
         return self.truth.examination
 
 
-def _labels(prefix: str, numbers: np.ndarray, width: int) -> np.ndarray:
-    return np.asarray([f"{prefix}{n:0{width}d}" for n in numbers])
-
-
-def _id_width(n: int, minimum: int) -> int:
-    return max(minimum, len(str(max(n - 1, 0))))
-
-
-def _take(labels, codes: np.ndarray) -> pa.Array:
-    return pa.array(np.asarray(labels, dtype=object)).take(pa.array(np.asarray(codes, dtype=np.int64)))
-
-
 def simulate_site(
     params: ScenarioParameters | None = None, *, n_events: int | None = None, random_state: int | None = None
 ) -> SimulatedSite:
@@ -354,12 +277,9 @@ def simulate_site(
     overrides = {"n_events": n_events, "seed": random_state}
     params = replace(params, **{k: v for k, v in overrides.items() if v is not None})
     arrays, habits = _scenario.draw_world(params, np.random.default_rng([params.seed, 0]))
-    kind = arrays["item_kind"]
-    item_ids = np.asarray([_scenario.KIND_PREFIX[k] for k in kind], dtype=object) + np.char.zfill(
-        np.arange(params.n_items).astype(str), _id_width(params.n_items, 5)).astype(object)
     truth = SiteTruth(
-        user_ids=_labels("u", np.arange(params.n_users), _id_width(params.n_users, 6)),
-        item_ids=item_ids.astype(str),
+        user_ids=_scenario.id_labels("u", params.n_users, 6),
+        item_ids=_scenario.item_id_labels(arrays["item_kind"]),
         topics=params.topics, tones=params.tones, devices=params.devices, daypart_labels=params.daypart_labels,
         daypart_starts=params.daypart_starts, timezone=params.timezone, intercept=params.intercept, **arrays,
     )
@@ -367,42 +287,8 @@ def simulate_site(
     window = tuple(_scenario.local_to_epoch(np.array([start_local, start_local + params.days * 86_400]),
                                             params.timezone))
     log = _scenario.generate_log(params, truth, habits, window)
-    items = pa.table({
-        "item_id": pa.array(truth.item_ids.astype(object)),
-        "kind": _take(_scenario.KINDS, kind), "topic": _take(params.topics, truth.item_topic),
-        "tone": _take(params.tones, truth.item_tone),
-        "format": _take(("short-form", "long-form"), truth.item_long_form.astype(np.int64)),
-        "published_at": truth.published_at, "expires_at": truth.expires_at,
-    }).to_pandas()
-    return SimulatedSite(events=_events_frame(log, truth, params), items=items, params=params, truth=truth)
-
-
-def _events_frame(log: dict, truth: SiteTruth, params: ScenarioParameters) -> pd.DataFrame:
-    """Impression and click rows in time order; requests numbered chronologically."""
-    request = log["request"]
-    used = np.unique(request)
-    chronological = used[np.argsort(log["timestamp"][used], kind="stable")]
-    number = np.zeros(log["timestamp"].size, dtype=np.int64)
-    number[chronological] = np.arange(chronological.size)
-    source = np.concatenate([np.arange(request.size), np.flatnonzero(log["clicked"])])
-    is_click = np.repeat(np.array([0, 1], dtype=np.int64), [request.size, source.size - request.size])
-    req = request[source]
-    timestamp = log["timestamp"][req] + is_click * log["click_delay"][source]
-    position = log["position"][source].astype(np.int64)
-    order = np.lexsort((position, is_click, number[req], timestamp))
-    source, is_click, req = source[order], is_click[order], req[order]
-    request_labels = _labels("r", np.arange(chronological.size), _id_width(chronological.size, 7))
-    return pa.table({
-        "request_id": _take(request_labels, number[req]),
-        "timestamp": timestamp[order],
-        "user_id": _take(truth.user_ids, log["user"][req]),
-        "item_id": _take(truth.item_ids, log["item"][source]),
-        "event": _take(("impression", "click"), is_click),
-        "position": position[order],
-        "dwell_seconds": np.where(is_click == 1, log["dwell"][source], np.nan),
-        "device": _take(params.devices, log["device"][req]),
-        "page_tone": _take(params.tones, log["page_tone"][req]),
-    }).to_pandas()
+    return SimulatedSite(events=_scenario.events_frame(log, truth), items=_scenario.items_frame(truth),
+                         params=params, truth=truth)
 
 
 def daypart_of(timestamps, scenario: ScenarioParameters | SiteTruth) -> np.ndarray:
@@ -464,87 +350,37 @@ def true_relevance(truth: SiteTruth, user_ids, item_ids, contexts) -> np.ndarray
     return 1.0 / (1.0 + np.exp(-_scenario.relevance_logit(truth, *codes)))
 
 
-def _replace_atomically(path: Path, write) -> None:
-    tmp = path.with_name(f".{path.name}.tmp")
-    write(tmp)
-    os.replace(tmp, path)
-
-
-def _iso(seconds: np.ndarray) -> pa.Array:
-    return pc.strftime(pa.array(seconds, pa.int64()).cast(pa.timestamp("s", tz="UTC")),
-                       format="%Y-%m-%dT%H:%M:%S+00:00")
-
-
 def write_site(site: SimulatedSite, out_dir: str | os.PathLike, *, file_format: FileFormat = "parquet") -> Path:
-    """Write ``events``, ``items``, ``scenario.json``, ``truth.json`` and ``truth.npz`` to ``out_dir``.
+    """Write a simulated site to a folder (created if missing); returns the folder.
 
-    Parquet keeps timestamps as int64 epoch seconds; CSV writes ISO-8601 strings
-    with a ``+00:00`` offset. Each file is written under a temporary name and
-    renamed into place. Returns the folder.
+    Files: ``events`` and ``items`` (``.parquet`` with int64 epoch-second
+    timestamps, or ``.csv`` with ISO-8601 ``+00:00`` strings), ``scenario.json``
+    (the parameters), ``truth.json`` (labels and scalars) and ``truth.npz`` (the
+    truth arrays). Each file is renamed into place once complete.
     """
     check_choice("file_format", file_format, ("parquet", "csv"), owner="write_site")
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    for name, frame in (("events", site.events), ("items", site.items)):
-        table = pa.Table.from_pandas(frame, preserve_index=False)
-        if file_format == "csv":
-            for column in ("timestamp", "published_at", "expires_at"):
-                if column in table.column_names:
-                    table = table.set_column(table.column_names.index(column), column, _iso(frame[column]))
-            _replace_atomically(out / f"{name}.csv", lambda p, t=table: pa_csv.write_csv(t, p))
-        else:
-            _replace_atomically(out / f"{name}.parquet", lambda p, t=table: pq.write_table(t, p))
-    scenario = {"format_version": FORMAT_VERSION, "parameters": site.params.to_dict()}
-    truth_json = {"format_version": FORMAT_VERSION, **{k: getattr(site.truth, k) for k in _TRUTH_JSON}}
-    arrays = {f.name: getattr(site.truth, f.name) for f in fields(SiteTruth) if f.name not in _TRUTH_JSON}
-    for name, payload in (("scenario.json", scenario), ("truth.json", truth_json)):
-        _replace_atomically(out / name, lambda p, d=payload: p.write_text(json.dumps(d, indent=2) + "\n"))
-    def write_npz(path: Path) -> None:
-        with open(path, "wb") as handle:
-            np.savez_compressed(handle, **arrays)
-
-    _replace_atomically(out / "truth.npz", write_npz)
+    _files.write_table(site.events, out, "events", file_format)
+    _files.write_table(site.items, out, "items", file_format)
+    _files.write_json(out / "scenario.json", {"parameters": site.params.to_dict()})
+    _files.write_json(out / "truth.json", {k: getattr(site.truth, k) for k in _TRUTH_JSON})
+    _files.write_arrays(out / "truth.npz",
+                        {f.name: getattr(site.truth, f.name) for f in fields(SiteTruth) if f.name not in _TRUTH_JSON})
     return out
-
-
-def _read_json(path: Path) -> dict:
-    data = json.loads(path.read_text())
-    if data.get("format_version") != FORMAT_VERSION:
-        raise ValueError(f"{path} has format_version {data.get('format_version')!r}; "
-                         f"this version of threefold reads {FORMAT_VERSION}.")
-    return data
 
 
 def read_truth(out_dir: str | os.PathLike) -> SiteTruth:
     """Read the truth written by :func:`write_site` (JSON and ``.npz``, never pickle)."""
     out = Path(out_dir)
-    data = _read_json(out / "truth.json")
-    with np.load(out / "truth.npz", allow_pickle=False) as npz:
-        arrays = {name: npz[name] for name in npz.files}
+    data = _files.read_json(out / "truth.json")
     labels = {k: tuple(data[k]) if isinstance(data[k], list) else data[k] for k in _TRUTH_JSON}
-    return SiteTruth(**labels, **arrays)
-
-
-def _read_table(out: Path, name: str) -> pd.DataFrame:
-    if (out / f"{name}.parquet").exists():
-        return pq.read_table(out / f"{name}.parquet").to_pandas()
-    path = out / f"{name}.csv"
-    if not path.exists():
-        raise FileNotFoundError(f"{out} holds neither {name}.parquet nor {name}.csv.")
-    header = pa_csv.read_csv(path, read_options=pa_csv.ReadOptions(skip_rows_after_names=10**12)).column_names
-    numeric = {"position": pa.int64(), "dwell_seconds": pa.float64()}
-    types = {c: numeric.get(c, pa.string()) for c in header}
-    frame = pa_csv.read_csv(path, convert_options=pa_csv.ConvertOptions(
-        column_types=types, strings_can_be_null=False, quoted_strings_can_be_null=False)).to_pandas()
-    for column in ("timestamp", "published_at", "expires_at"):
-        if column in frame:
-            frame[column] = pd.DatetimeIndex(pd.to_datetime(frame[column], format="ISO8601", utc=True)).as_unit("s").asi8
-    return frame
+    return SiteTruth(**labels, **_files.read_arrays(out / "truth.npz"))
 
 
 def read_site(out_dir: str | os.PathLike) -> SimulatedSite:
     """Read a folder written by :func:`write_site` (Parquet or CSV); ids come back as strings."""
     out = Path(out_dir)
-    params = ScenarioParameters.from_dict(_read_json(out / "scenario.json")["parameters"])
-    return SimulatedSite(events=_read_table(out, "events"), items=_read_table(out, "items"),
+    params = ScenarioParameters.from_dict(_files.read_json(out / "scenario.json")["parameters"])
+    return SimulatedSite(events=_files.read_table(out, "events"), items=_files.read_table(out, "items"),
                          params=params, truth=read_truth(out))
