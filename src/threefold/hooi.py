@@ -26,23 +26,61 @@ import warnings
 from typing import Callable, Sequence
 
 import numpy as np
+import scipy.linalg
 
-from threefold._checks import check_int, check_number
+from threefold._checks import check_choice, check_int, check_number
+from threefold.cp import SweepRecord
 from threefold.exceptions import ConvergenceWarning
 from threefold.tensor import SparseTensor
 from threefold.tucker import (
-    SweepStats,
+    TuckerEstimator,
     TuckerResult,
-    TuckerScorer,
+    check_fold_in,
     check_tucker_rank,
     hosvd_factors,
-    leading_left_vectors,
+    read_only_model,
+    fit_threads,
 )
 from threefold.tucker_kernels import build_fiber_tree, ttmc
 
-__all__ = ["hooi", "hooi_fold_in", "HOOIModel"]
+__all__ = ["fit_hooi", "hooi_fold_in", "HOOIModel"]
 
-Callback = Callable[[int, TuckerResult], "bool | None"]
+Callback = Callable[[SweepRecord, tuple], "bool | None"]
+
+
+def leading_vectors(y: np.ndarray, rank: int, rng: np.random.Generator) -> np.ndarray:
+    """Leading ``rank`` left singular vectors of a dense matrix from its smaller Gram matrix.
+
+    ``eigh(Y Yᵀ)`` when ``Y`` has at most as many rows as columns, else
+    ``eigh(Yᵀ Y)`` and ``U = orth(Y V)``; columns the matrix cannot give (rank
+    above its smaller side) are random and orthonormal to the others, as in
+    tensorly's Tucker.
+
+    Parameters
+    ----------
+    y : ndarray of shape (I, J)
+    rank : int
+    rng : numpy.random.Generator
+
+    Returns
+    -------
+    ndarray of shape (I, rank), float64, orthonormal columns by decreasing singular value
+    """
+    n_rows, n_cols = y.shape
+    y = np.asarray(y, dtype=np.float64)
+    wide = n_rows <= n_cols
+    gram = y @ y.T if wide else y.T @ y
+    keep = min(rank, gram.shape[0])
+    _, vectors = scipy.linalg.eigh(gram, subset_by_index=(gram.shape[0] - keep, gram.shape[0] - 1))
+    u = vectors[:, ::-1]
+    if not wide:
+        u, r = np.linalg.qr(y @ u)
+        u = u * np.where(np.diag(r) < 0, -1.0, 1.0)
+    if keep < rank:
+        extra = rng.random((n_rows, rank - keep))
+        extra -= u @ (u.T @ extra)
+        u = np.hstack([u, np.linalg.qr(extra)[0]])
+    return u
 
 
 def _fold_core(y_core: np.ndarray, levels: np.ndarray, rank: tuple[int, ...]) -> np.ndarray:
@@ -51,31 +89,41 @@ def _fold_core(y_core: np.ndarray, levels: np.ndarray, rank: tuple[int, ...]) ->
     return np.ascontiguousarray(np.transpose(permuted, np.argsort(levels)))
 
 
-def _initial_factors(tensor: SparseTensor, values: np.ndarray, rank: tuple[int, ...], init, rng) -> list[np.ndarray]:
+def _initial_factors(tensor: SparseTensor, rank: tuple[int, ...], init, rng) -> list[np.ndarray]:
     if isinstance(init, str):
-        if init != "hosvd":
-            raise ValueError(f"The 'init' parameter of hooi must be 'hosvd' or (core, factors). Got {init!r} instead.")
-        return hosvd_factors(tensor.coords, values, tensor.shape, rank, rng)
-    _, factors = init
+        check_choice("init", init, ("hosvd",), owner="fit_hooi")
+        return hosvd_factors(tensor, rank, rng)
+    factors = list(init.factors) if isinstance(init, TuckerResult) else list(init)
     if len(factors) != tensor.ndim:
-        raise ValueError(f"init has {len(factors)} factors for a {tensor.ndim}-way tensor.")
+        raise ValueError(f"The 'init' parameter of fit_hooi must be 'hosvd', a TuckerResult or {tensor.ndim} "
+                         f"factor arrays. Got {len(factors)} arrays instead.")
     out = []
     for n, f in enumerate(factors):
         f = np.asarray(f, dtype=np.float64)
-        if f.shape != (tensor.shape[n], rank[n]):
-            raise ValueError(f"init factor {n} must have shape {(tensor.shape[n], rank[n])}, got {f.shape}.")
+        if f.ndim != 2 or f.shape[1] != rank[n] or f.shape[0] > tensor.shape[n]:
+            raise ValueError(f"Initial factor of mode {tensor.mode_names[n]!r} must have shape "
+                             f"(at most {tensor.shape[n]}, {rank[n]}), got {f.shape}.")
+        f = np.vstack([f, np.zeros((tensor.shape[n] - f.shape[0], rank[n]))])  # appended indices start at 0
         out.append(np.linalg.qr(f)[0])
     return out
 
 
-def hooi(
+def _sweep_record(sweep: int, norm_sq: float, core: np.ndarray, seconds: float) -> SweepRecord:
+    loss = max(norm_sq - float(np.sum(core * core)), 0.0)
+    fit = 1.0 - np.sqrt(loss / norm_sq) if norm_sq > 0 else 1.0
+    return SweepRecord(sweep, loss, fit, seconds)
+
+
+def fit_hooi(
     tensor: SparseTensor,
-    rank: int | Sequence[int],
     *,
-    max_iter: int = 50,
-    tol: float = 1e-8,
+    rank: int | Sequence[int] = 8,
     init="hosvd",
+    max_sweeps: int = 50,
+    tol: float = 1e-8,
     random_state: int | np.random.Generator | None = None,
+    n_threads: int | None = None,
+    dtype: np.dtype | type | None = None,
     callback: Callback | None = None,
 ) -> TuckerResult:
     """Fit a Tucker model to the preference values by HOOI.
@@ -85,67 +133,84 @@ def hooi(
     tensor : SparseTensor
         Its preference values are ``X``; every cell not stored is 0 and
         confidences are ignored (HOOI is unweighted).
-    rank : int or sequence of int
+    rank : int or sequence of int, default=8
         Core size per mode (one int for all modes); each at most its mode's size.
-    max_iter : int, default=50
-        Maximum number of sweeps.
+    init : "hosvd", TuckerResult or sequence of ndarray, default="hosvd"
+        Truncated HOSVD of the sparse unfoldings, or given factors (a previous
+        model's; modes may have grown, appended rows start at zero), made
+        orthonormal by QR.
+    max_sweeps : int, default=50
     tol : float, default=1e-8
-        Stop when the relative change of ``‖X − X̂‖²`` between sweeps is below
-        ``tol``; 0 runs all ``max_iter`` sweeps.
-    init : "hosvd" or (core, factors), default="hosvd"
-        Truncated HOSVD of the sparse unfoldings, or given factors
-        (orthonormalized by QR; the core is ignored).
+        Stop when the relative change of ``‖X − X̂‖²`` of a sweep falls below
+        ``tol``; with ``tol = 0`` exactly ``max_sweeps`` sweeps run and no
+        warning is given.
     random_state : int, numpy.random.Generator or None
-        Seeds the sparse SVD start vectors and the random completion of a
-        factor when an unfolding has fewer singular vectors than the rank.
+        Seeds the sparse SVD start vectors and the random columns of a factor
+        whose unfolding has fewer singular vectors than the rank.
+    n_threads : int or None
+        numba threads for this fit (``None``: numba's current setting).
+    dtype : float32, float64 or None
+        Precision of the returned core and factors (``None``: the tensor's);
+        the fit itself runs in float64.
     callback : callable or None
-        ``callback(sweep, result)`` after every sweep, with ``sweep`` the
-        1-based sweep number and ``result`` the :class:`TuckerResult` so far;
-        returning True stops the fit.
+        Called after every sweep as ``callback(record, model)`` with the
+        :class:`~threefold.cp.SweepRecord` of the sweep and ``model = (core,
+        factors)``, read-only float64 arrays; returning True stops the fit.
 
     Returns
     -------
     TuckerResult
-        Orthonormal factors and the core in the tensor's dtype; history with
-        ``loss = ‖X − X̂‖²`` and ``fit = 1 − ‖X − X̂‖ / ‖X‖``.
+        ``method="hooi"``, orthonormal factors; history with
+        ``loss = ‖X − X̂‖² = ‖X‖² − ‖G‖²`` and ``fit = 1 − ‖X − X̂‖ / ‖X‖``.
+
+    Warns
+    -----
+    ConvergenceWarning
+        When ``tol > 0`` and ``max_sweeps`` sweeps did not reach it.
     """
+    owner = "fit_hooi"
     if not isinstance(tensor, SparseTensor):
-        raise TypeError(f"hooi needs a SparseTensor, got {type(tensor).__name__}.")
-    rank = check_tucker_rank(rank, tensor.shape, "hooi")
-    max_iter = check_int("max_iter", max_iter, low=1, owner="hooi")
-    tol = check_number("tol", tol, low=0.0, owner="hooi")
+        raise TypeError(f"fit_hooi needs a SparseTensor, got {type(tensor).__name__}.")
+    rank = check_tucker_rank(rank, tensor.shape, owner)
+    max_sweeps = check_int("max_sweeps", max_sweeps, low=1, owner=owner)
+    tol = check_number("tol", tol, low=0.0, owner=owner)
+    dtype = tensor.dtype if dtype is None else np.dtype(dtype)
+    check_choice("dtype", np.dtype(dtype), (np.dtype(np.float32), np.dtype(np.float64)), owner=owner)
+    if callback is not None and not callable(callback):
+        raise ValueError(f"The 'callback' parameter of {owner} must be callable or None. Got {callback!r} instead.")
     rng = np.random.default_rng(random_state)
-    values = tensor.preference.astype(np.float64)
-    norm_sq = float(values @ values)
-    factors = _initial_factors(tensor, values, rank, init, rng)
-    trees = [build_fiber_tree(tensor.coords, tensor.shape, n) for n in range(tensor.ndim)]
-    history: list[SweepStats] = []
-    converged = False
-    for sweep in range(1, max_iter + 1):
+    with fit_threads(n_threads, owner):
         start = time.perf_counter()
-        for n, tree in enumerate(trees):
-            y = ttmc(tree, tensor.coords, values, factors, tensor.shape[n])
-            factors[n] = leading_left_vectors(y, rank[n], rng)
+        values = tensor.preference.astype(np.float64)
+        norm_sq = float(values @ values)
+        factors = _initial_factors(tensor, rank, init, rng)
+        trees = [build_fiber_tree(tensor.coords, tensor.shape, n) for n in range(tensor.ndim)]
+        y = ttmc(trees[-1], tensor.coords, values, factors, tensor.shape[-1])
         core = _fold_core(factors[-1].T @ y, trees[-1].levels, rank)
-        loss = max(norm_sq - float(np.sum(core * core)), 0.0)
-        fit = 1.0 - np.sqrt(loss / norm_sq) if norm_sq > 0 else 1.0
-        history.append(SweepStats(sweep, loss, fit, time.perf_counter() - start))
-        if sweep > 1:
-            previous = history[-2].loss
-            converged = abs(previous - loss) <= tol * max(previous, np.finfo(float).tiny)
-        result = TuckerResult(
-            core=core.astype(tensor.dtype),
-            factors=tuple(f.astype(tensor.dtype) for f in factors),
-            history=tuple(history),
-            converged=converged,
-            method="hooi",
-            mode_names=tensor.mode_names,
-        )
-        if converged or (callback is not None and callback(sweep, result)):
-            break
-    if not converged and tol > 0 and len(history) == max_iter:
-        warnings.warn(f"hooi stopped after max_iter={max_iter} sweeps before reaching tol={tol:g}.", ConvergenceWarning)
-    return result
+        history = [_sweep_record(0, norm_sq, core, time.perf_counter() - start)]
+        stop_reason = "max_sweeps"
+        for sweep in range(1, max_sweeps + 1):
+            start = time.perf_counter()
+            for n, tree in enumerate(trees):
+                y = ttmc(tree, tensor.coords, values, factors, tensor.shape[n])
+                factors[n] = leading_vectors(y, rank[n], rng)
+            core = _fold_core(factors[-1].T @ y, trees[-1].levels, rank)
+            record = _sweep_record(sweep, norm_sq, core, time.perf_counter() - start)
+            history.append(record)
+            if callback is not None and callback(record, read_only_model(core, factors)):
+                stop_reason = "callback"
+                break
+            change = abs(history[-2].loss - record.loss) / max(history[-2].loss, 1e-12 * norm_sq, np.finfo(float).tiny)
+            if tol > 0 and change < tol:
+                stop_reason = "converged"
+                break
+    if stop_reason == "max_sweeps" and tol > 0:
+        warnings.warn(f"fit_hooi stopped after max_sweeps={max_sweeps} sweeps before the relative loss change fell "
+                      f"below tol={tol:g}; raise max_sweeps or tol.", ConvergenceWarning, stacklevel=2)
+    return TuckerResult(
+        core=core.astype(dtype), factors=tuple(f.astype(dtype) for f in factors), mode_names=tensor.mode_names,
+        vocabularies=tensor.vocabularies, history=tuple(history), stop_reason=stop_reason, method="hooi",
+    )
 
 
 def hooi_fold_in(result: TuckerResult, tensor: SparseTensor, mode: int | str) -> np.ndarray:
@@ -153,68 +218,67 @@ def hooi_fold_in(result: TuckerResult, tensor: SparseTensor, mode: int | str) ->
 
     The least-squares projection of each new slice onto the fitted model:
     ``u = y G_(n)⁺`` with ``y = x_slice ×_{m≠n} U_mᵀ`` (the slice's row of
-    ``Y_(n)``) and ``G_(n)⁺`` the pseudo-inverse of the core's unfolding, which
+    ``Y_(n)``) and ``G_(n)⁺`` the pseudo-inverse of the core's unfolding. It
     minimizes ``‖x_slice − u G_(n) (⊗_{m≠n} U_m)ᵀ‖`` because the other factors
-    are orthonormal. A slice with no cells gets the zero row.
+    are orthonormal, and for a row of the training tensor it gives back that
+    row's HOOI factor when the other factors are those of its last update. A
+    slice with no cells gets the zero row.
 
     Parameters
     ----------
     result : TuckerResult
     tensor : SparseTensor
-        Cells of the new indices: ``shape[mode]`` counts the new rows, every other
-        mode has the fitted size.
+        Cells of the new indices: mode ``mode`` indexes the new rows
+        ``0 .. n_new - 1``; every other mode has the model's size and names.
     mode : int or str
 
     Returns
     -------
-    ndarray of shape (tensor.shape[mode], R_mode), float64
+    ndarray of shape (n_new, R_mode), the model's dtype
     """
-    n = tensor.mode_index(mode)
-    expected = tuple(s if m != n else tensor.shape[n] for m, s in enumerate(result.shape))
-    if tensor.shape != expected:
-        raise ValueError(f"Fold-in cells must have shape {expected} (new rows in mode {n}), got {tensor.shape}.")
+    n = check_fold_in(result, tensor, mode)
     factors = [np.asarray(f, dtype=np.float64) for f in result.factors]
     factors[n] = np.zeros((tensor.shape[n], result.rank[n]))
     tree = build_fiber_tree(tensor.coords, tensor.shape, n)
     y = ttmc(tree, tensor.coords, tensor.preference.astype(np.float64), factors, tensor.shape[n])
     core_unfolded = np.transpose(np.asarray(result.core, np.float64), tree.levels).reshape(result.rank[n], -1)
-    return y @ np.linalg.pinv(core_unfolded)
+    return (y @ np.linalg.pinv(core_unfolded)).astype(result.core.dtype)
 
 
-class HOOIModel(TuckerScorer):
-    """Tucker model fitted by HOOI; scores through the shared scoring interface.
-
-    Parameters
-    ----------
-    rank : int or tuple of int, default=8
-    max_iter : int, default=50
-    tol : float, default=1e-8
-    random_state : int or None, default=None
+class HOOIModel(TuckerEstimator):
+    """Estimator around :func:`fit_hooi`; parameters as there, fitted state ending in ``_``.
 
     Attributes
     ----------
     result_ : TuckerResult
     core_ : ndarray of shape (R_1, ..., R_N)
     factors_ : tuple of ndarray of shape (I_n, R_n)
-    n_iter_ : int
+    history_ : tuple of SweepRecord
+    n_sweeps_ : int
+    converged_ : bool
     """
 
-    def __init__(self, *, rank: int | Sequence[int] = 8, max_iter: int = 50, tol: float = 1e-8,
-                 random_state: int | None = None) -> None:
+    def __init__(self, *, rank=8, init="hosvd", max_sweeps=50, tol=1e-8, random_state=None, n_threads=None,
+                 dtype=None, callback=None):
         self.rank = rank
-        self.max_iter = max_iter
+        self.init = init
+        self.max_sweeps = max_sweeps
         self.tol = tol
         self.random_state = random_state
+        self.n_threads = n_threads
+        self.dtype = dtype
+        self.callback = callback
 
-    def fit(self, tensor: SparseTensor, *, callback: Callback | None = None) -> "HOOIModel":
-        """Fit to ``tensor``; ``callback(sweep, result)`` as in :func:`hooi`. Returns self."""
-        self.result_ = hooi(tensor, self.rank, max_iter=self.max_iter, tol=self.tol,
-                            random_state=self.random_state, callback=callback)
-        self.core_ = self.result_.core
-        self.factors_ = self.result_.factors
-        self.n_iter_ = self.result_.n_iter
+    def get_params(self) -> dict:
+        """The constructor parameters, by name (the names configs and the command line use)."""
+        names = ("rank", "init", "max_sweeps", "tol", "random_state", "n_threads", "dtype", "callback")
+        return {name: getattr(self, name) for name in names}
+
+    def fit(self, tensor: SparseTensor) -> "HOOIModel":
+        """Fit to a tensor; returns self."""
+        self._set_result(fit_hooi(tensor, **self.get_params()))
         return self
 
     def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
-        """Rows of new indices of ``mode`` from their cells; see :func:`hooi_fold_in`."""
+        """Rows for new users, items or context levels; see :func:`hooi_fold_in`."""
         return hooi_fold_in(self._fitted(), tensor, mode)

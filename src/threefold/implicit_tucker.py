@@ -35,18 +35,28 @@ from __future__ import annotations
 
 import time
 import warnings
+from dataclasses import replace
 from typing import Callable, Sequence
 
 import numpy as np
 import scipy.linalg
 
 from threefold._checks import check_choice, check_int, check_number
+from threefold.cp import SweepRecord
 from threefold.exceptions import ConvergenceWarning
 from threefold.tensor import SparseTensor
-from threefold.tucker import SweepStats, TuckerResult, TuckerScorer, check_tucker_rank, hosvd_factors
+from threefold.tucker import (
+    TuckerEstimator,
+    TuckerResult,
+    check_fold_in,
+    check_tucker_rank,
+    hosvd_factors,
+    read_only_model,
+    fit_threads,
+)
 from threefold.tucker_kernels import FiberTree, build_fiber_tree, evaluate, implicit_rows, ttmc
 
-__all__ = ["implicit_tucker", "update_rows", "update_core", "implicit_loss", "implicit_tucker_fold_in",
+__all__ = ["fit_implicit_tucker", "update_rows", "update_core", "implicit_loss", "implicit_tucker_fold_in",
            "ImplicitTuckerModel"]
 
 #: The exact core solve is used only up to this many core entries ...
@@ -54,7 +64,7 @@ CORE_EXACT_ENTRIES = 2000
 #: ... and while forming its stored-cell part costs at most this many multiply-adds (nnz · P²).
 CORE_EXACT_WORK = 2e10
 
-Callback = Callable[[int, TuckerResult], "bool | None"]
+Callback = Callable[[SweepRecord, tuple], "bool | None"]
 
 
 def _multi_mode(core: np.ndarray, matrices: Sequence[np.ndarray | None]) -> np.ndarray:
@@ -242,170 +252,211 @@ def implicit_loss(tensor: SparseTensor, core: np.ndarray, factors: Sequence[np.n
 
 
 def _initial_model(tensor: SparseTensor, rank: tuple[int, ...], init, rng, trees) -> tuple[np.ndarray, list]:
+    owner = "fit_implicit_tucker"
     if isinstance(init, str):
-        check_choice("init", init, ("hosvd", "random"), owner="implicit_tucker")
-        if init == "random":
-            factors = [rng.random((size, r)) / np.sqrt(r) for size, r in zip(tensor.shape, rank)]
+        check_choice("init", init, ("hosvd", "random"), owner=owner)
+        if init == "random":  # uniform factors as tensorly's random init (common practice), a small random core
+            factors = [rng.random((size, r)) for size, r in zip(tensor.shape, rank)]
             return 0.1 * rng.standard_normal(rank), factors
+        factors = hosvd_factors(tensor, rank, rng)
         values = tensor.preference.astype(np.float64)
-        factors = hosvd_factors(tensor.coords, values, tensor.shape, rank, rng)
         return _scatter(_tree(tensor, _core_mode(tensor.shape, rank), trees), tensor, values, factors, rank), factors
+    if not isinstance(init, TuckerResult) and not (isinstance(init, (tuple, list)) and len(init) == 2):
+        raise ValueError(f"The 'init' parameter of {owner} must be 'hosvd', 'random', a TuckerResult or "
+                         f"(core, factors). Got {type(init).__name__} instead.")
     core, given = init
     core = np.asarray(core, dtype=np.float64)
     if core.shape != rank or len(given) != tensor.ndim:
-        raise ValueError(f"init must be (core of shape {rank}, {tensor.ndim} factors), got a core of shape {core.shape}.")
+        raise ValueError(f"The 'init' parameter of {owner} needs a core of shape {rank} and {tensor.ndim} factors, "
+                         f"got a core of shape {core.shape} and {len(given)} factors.")
     factors = []
     for n, f in enumerate(given):
         f = np.asarray(f, dtype=np.float64)
         if f.ndim != 2 or f.shape[1] != rank[n] or f.shape[0] > tensor.shape[n]:
-            raise ValueError(f"init factor {n} must have {rank[n]} columns and at most {tensor.shape[n]} rows, "
-                             f"got {f.shape}.")
-        factors.append(np.vstack([f, np.zeros((tensor.shape[n] - f.shape[0], rank[n]))]))  # new indices start at 0
+            raise ValueError(f"Initial factor of mode {tensor.mode_names[n]!r} must have shape "
+                             f"(at most {tensor.shape[n]}, {rank[n]}), got {f.shape}.")
+        factors.append(np.vstack([f, np.zeros((tensor.shape[n] - f.shape[0], rank[n]))]))  # appended rows start at 0
     return core, factors
 
 
-def implicit_tucker(
+def fit_implicit_tucker(
     tensor: SparseTensor,
-    rank: int | Sequence[int],
     *,
+    rank: int | Sequence[int] = 8,
     reg: float = 0.1,
-    max_iter: int = 20,
-    tol: float = 1e-4,
     init="hosvd",
+    max_sweeps: int = 30,
+    tol: float = 1e-4,
     core_solver: str = "auto",
     core_cg_steps: int = 10,
     random_state: int | np.random.Generator | None = None,
+    n_threads: int | None = None,
+    dtype: np.dtype | type | None = None,
     callback: Callback | None = None,
 ) -> TuckerResult:
-    """Fit an implicit-weighted Tucker model by ALS (rows of every mode, then the core).
+    """Fit an implicit-weighted Tucker model by ALS (the rows of every mode, then the core).
 
     Parameters
     ----------
     tensor : SparseTensor
         Preference, confidence and ``w0`` from its feedback weighting.
-    rank : int or sequence of int
-        Core size per mode; each at most its mode's size.
+    rank : int or sequence of int, default=8
+        Core size per mode (one int for all modes); each at most its mode's size.
     reg : float, default=0.1
-        Ridge penalty on every factor and on the core.
-    max_iter : int, default=20
+        Ridge weight on every factor entry and every core entry.
+    init : {"hosvd", "random"}, TuckerResult or (core, factors), default="hosvd"
+        HOSVD factors of the preference tensor with the projected core
+        ``X ×_n U_nᵀ``; uniform random factors with a small random core; or a
+        previous model (modes may have grown: appended rows start at zero and
+        the first sweep solves them from their own cells).
+    max_sweeps : int, default=30
     tol : float, default=1e-4
-        Stop when the relative loss change between sweeps is below ``tol``.
-    init : {"hosvd", "random"} or (core, factors), default="hosvd"
-        HOSVD factors of the preference tensor with the projected core; random;
-        or a previous model's core and factors, whose factors may have fewer
-        rows than the tensor (indices added since start as zero rows).
+        Stop when the relative loss change of a sweep falls below ``tol``; with
+        ``tol = 0`` exactly ``max_sweeps`` sweeps run and no warning is given.
     core_solver : {"auto", "exact", "cg"}, default="auto"
         See :func:`update_core`.
     core_cg_steps : int, default=10
+        Preconditioned CG steps per core update when the core is solved by CG.
     random_state : int, numpy.random.Generator or None
+    n_threads : int or None
+        numba threads for this fit (``None``: numba's current setting).
+    dtype : float32, float64 or None
+        Precision of the returned core and factors (``None``: the tensor's);
+        factors, core and row systems are computed in float64.
     callback : callable or None
-        ``callback(sweep, result)`` after every sweep (``sweep`` 1-based,
-        ``result`` the :class:`TuckerResult` so far); returning True stops the fit.
+        Called after every sweep as ``callback(record, model)`` with the
+        :class:`~threefold.cp.SweepRecord` of the sweep and ``model = (core,
+        factors)``, read-only float64 arrays; returning True stops the fit.
 
     Returns
     -------
     TuckerResult
-        ``method="implicit"``; history with the loss :func:`implicit_loss` and the weighted fit.
+        ``method="implicit"``; history with the loss of :func:`implicit_loss`
+        and the weighted fit ``1 − sqrt(Σ w (p − x̂)² / Σ w p²)``.
+
+    Warns
+    -----
+    ConvergenceWarning
+        When ``tol > 0`` and ``max_sweeps`` sweeps did not reach it.
     """
-    owner = "implicit_tucker"
+    owner = "fit_implicit_tucker"
     if not isinstance(tensor, SparseTensor):
-        raise TypeError(f"implicit_tucker needs a SparseTensor, got {type(tensor).__name__}.")
+        raise TypeError(f"fit_implicit_tucker needs a SparseTensor, got {type(tensor).__name__}.")
     rank = check_tucker_rank(rank, tensor.shape, owner)
     reg = check_number("reg", reg, low=0.0, owner=owner)
-    max_iter = check_int("max_iter", max_iter, low=1, owner=owner)
+    max_sweeps = check_int("max_sweeps", max_sweeps, low=1, owner=owner)
     tol = check_number("tol", tol, low=0.0, owner=owner)
     core_solver = check_choice("core_solver", core_solver, ("auto", "exact", "cg"), owner=owner)
     core_cg_steps = check_int("core_cg_steps", core_cg_steps, low=1, owner=owner)
+    dtype = tensor.dtype if dtype is None else np.dtype(dtype)
+    check_choice("dtype", np.dtype(dtype), (np.dtype(np.float32), np.dtype(np.float64)), owner=owner)
+    if callback is not None and not callable(callback):
+        raise ValueError(f"The 'callback' parameter of {owner} must be callable or None. Got {callback!r} instead.")
+    if tensor.evidence is not None:  # weigh the evidence once, not in every block update
+        preference, confidence = tensor.weights()
+        tensor = replace(tensor, evidence=None, stored_preference=preference, stored_confidence=confidence)
     rng = np.random.default_rng(random_state)
-    trees: dict[int, FiberTree] = {}
-    core, factors = _initial_model(tensor, rank, init, rng, trees)
-    history: list[SweepStats] = []
-    converged = False
-    for sweep in range(1, max_iter + 1):
+    with fit_threads(n_threads, owner):
         start = time.perf_counter()
-        for n in range(tensor.ndim):
-            factors[n] = update_rows(tensor, n, core, factors, reg, trees=trees)
-        core = update_core(tensor, core, factors, reg, solver=core_solver, cg_steps=core_cg_steps, trees=trees)
-        loss, fit = implicit_loss(tensor, core, factors, reg, trees=trees)
-        history.append(SweepStats(sweep, loss, fit, time.perf_counter() - start))
-        if sweep > 1:
-            previous = history[-2].loss
-            converged = abs(previous - loss) <= tol * max(abs(previous), np.finfo(float).tiny)
-        result = TuckerResult(core=core.astype(tensor.dtype), factors=tuple(f.astype(tensor.dtype) for f in factors),
-                              history=tuple(history), converged=converged, method="implicit",
-                              mode_names=tensor.mode_names)
-        if converged or (callback is not None and callback(sweep, result)):
-            break
-    if not converged and tol > 0 and len(history) == max_iter:
-        warnings.warn(f"implicit_tucker stopped after max_iter={max_iter} sweeps before reaching tol={tol:g}.",
-                      ConvergenceWarning)
-    return result
+        trees: dict[int, FiberTree] = {}
+        core, factors = _initial_model(tensor, rank, init, rng, trees)
+        history = [SweepRecord(0, *implicit_loss(tensor, core, factors, reg, trees=trees), time.perf_counter() - start)]
+        stop_reason = "max_sweeps"
+        for sweep in range(1, max_sweeps + 1):
+            start = time.perf_counter()
+            for n in range(tensor.ndim):
+                factors[n] = update_rows(tensor, n, core, factors, reg, trees=trees)
+            core = update_core(tensor, core, factors, reg, solver=core_solver, cg_steps=core_cg_steps, trees=trees)
+            record = SweepRecord(sweep, *implicit_loss(tensor, core, factors, reg, trees=trees),
+                                 time.perf_counter() - start)
+            history.append(record)
+            if callback is not None and callback(record, read_only_model(core, factors)):
+                stop_reason = "callback"
+                break
+            change = abs(history[-2].loss - record.loss) / max(abs(history[-2].loss), np.finfo(float).tiny)
+            if tol > 0 and change < tol:
+                stop_reason = "converged"
+                break
+    if stop_reason == "max_sweeps" and tol > 0:
+        warnings.warn(f"fit_implicit_tucker stopped after max_sweeps={max_sweeps} sweeps before the relative loss "
+                      f"change fell below tol={tol:g}; raise max_sweeps or tol.", ConvergenceWarning, stacklevel=2)
+    return TuckerResult(
+        core=core.astype(dtype), factors=tuple(f.astype(dtype) for f in factors), mode_names=tensor.mode_names,
+        vocabularies=tensor.vocabularies, history=tuple(history), stop_reason=stop_reason, method="implicit",
+        w0=tensor.w0, reg=reg,
+    )
 
 
-def implicit_tucker_fold_in(result: TuckerResult, tensor: SparseTensor, mode: int | str, reg: float) -> np.ndarray:
+def implicit_tucker_fold_in(result: TuckerResult, tensor: SparseTensor, mode: int | str) -> np.ndarray:
     """Rows for new indices of one mode from their own cells, everything else fixed.
 
-    The weighted row system of :func:`update_rows` with the fitted core and
-    factors (Hu, Koren & Volinsky, ICDM 2008, generalized to Tucker); an index
-    with no cells gets the zero row.
+    Each row is the exact solution of its weighted row system (:func:`update_rows`)
+    with the fitted core and factors, the model's ``reg`` and the tensor's
+    weighting (Hu, Koren & Volinsky, ICDM 2008, generalized to Tucker). All rows
+    are solved in one parallel batch; a row with no cells gets the zero row.
 
     Parameters
     ----------
     result : TuckerResult
+        Fitted with ``method="implicit"``.
     tensor : SparseTensor
-        Cells of the new indices: ``shape[mode]`` counts them, every other mode
-        has the fitted size; its weighting should be the training one.
+        Cells of the new indices: mode ``mode`` indexes the new rows
+        ``0 .. n_new - 1``; every other mode has the model's size and names, and
+        ``w0`` is the model's.
     mode : int or str
-    reg : float
-        The regularization the model was fitted with.
 
     Returns
     -------
-    ndarray of shape (tensor.shape[mode], R_mode), float64
+    ndarray of shape (n_new, R_mode), the model's dtype
     """
-    n = tensor.mode_index(mode)
-    expected = tuple(s if m != n else tensor.shape[n] for m, s in enumerate(result.shape))
-    if tensor.shape != expected:
-        raise ValueError(f"Fold-in cells must have shape {expected} (new rows in mode {n}), got {tensor.shape}.")
+    n = check_fold_in(result, tensor, mode)
+    if result.method != "implicit":
+        raise ValueError(f"implicit_tucker_fold_in needs an implicit Tucker model, got method={result.method!r}.")
+    if tensor.w0 != result.w0:
+        raise ValueError(f"fold_in: the tensor's w0={tensor.w0:g} differs from the model's w0={result.w0:g}.")
     factors = [np.asarray(f, dtype=np.float64) for f in result.factors]
-    return update_rows(tensor, n, np.asarray(result.core, dtype=np.float64), factors, reg)
+    rows = update_rows(tensor, n, np.asarray(result.core, dtype=np.float64), factors, result.reg)
+    return rows.astype(result.core.dtype)
 
 
-class ImplicitTuckerModel(TuckerScorer):
-    """Implicit-weighted Tucker model; scores through the shared scoring interface.
-
-    Parameters are those of :func:`implicit_tucker`.
+class ImplicitTuckerModel(TuckerEstimator):
+    """Estimator around :func:`fit_implicit_tucker`; parameters as there, fitted state ending in ``_``.
 
     Attributes
     ----------
     result_ : TuckerResult
     core_ : ndarray of shape (R_1, ..., R_N)
     factors_ : tuple of ndarray of shape (I_n, R_n)
-    n_iter_ : int
+    history_ : tuple of SweepRecord
+    n_sweeps_ : int
+    converged_ : bool
     """
 
-    def __init__(self, *, rank: int | Sequence[int] = 8, reg: float = 0.1, max_iter: int = 20, tol: float = 1e-4,
-                 init="hosvd", core_solver: str = "auto", core_cg_steps: int = 10,
-                 random_state: int | None = None) -> None:
+    def __init__(self, *, rank=8, reg=0.1, init="hosvd", max_sweeps=30, tol=1e-4, core_solver="auto",
+                 core_cg_steps=10, random_state=None, n_threads=None, dtype=None, callback=None):
         self.rank = rank
         self.reg = reg
-        self.max_iter = max_iter
-        self.tol = tol
         self.init = init
+        self.max_sweeps = max_sweeps
+        self.tol = tol
         self.core_solver = core_solver
         self.core_cg_steps = core_cg_steps
         self.random_state = random_state
+        self.n_threads = n_threads
+        self.dtype = dtype
+        self.callback = callback
 
-    def fit(self, tensor: SparseTensor, *, callback: Callback | None = None) -> "ImplicitTuckerModel":
-        """Fit to ``tensor``; ``callback(sweep, result)`` as in :func:`implicit_tucker`. Returns self."""
-        self.result_ = implicit_tucker(tensor, self.rank, reg=self.reg, max_iter=self.max_iter, tol=self.tol,
-                                       init=self.init, core_solver=self.core_solver, core_cg_steps=self.core_cg_steps,
-                                       random_state=self.random_state, callback=callback)
-        self.core_ = self.result_.core
-        self.factors_ = self.result_.factors
-        self.n_iter_ = self.result_.n_iter
+    def get_params(self) -> dict:
+        """The constructor parameters, by name (the names configs and the command line use)."""
+        names = ("rank", "reg", "init", "max_sweeps", "tol", "core_solver", "core_cg_steps", "random_state",
+                 "n_threads", "dtype", "callback")
+        return {name: getattr(self, name) for name in names}
+
+    def fit(self, tensor: SparseTensor) -> "ImplicitTuckerModel":
+        """Fit to a tensor; returns self."""
+        self._set_result(fit_implicit_tucker(tensor, **self.get_params()))
         return self
 
     def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
-        """Rows of new indices of ``mode``; see :func:`implicit_tucker_fold_in`."""
-        return implicit_tucker_fold_in(self._fitted(), tensor, mode, self.reg)
+        """Rows for new users, items or context levels; see :func:`implicit_tucker_fold_in`."""
+        return implicit_tucker_fold_in(self._fitted(), tensor, mode)

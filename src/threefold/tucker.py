@@ -9,117 +9,105 @@ recommendation with Tucker models: Karatzoglou, Amatriain, Baltrunas & Oliver,
 "Multiverse recommendation", RecSys 2010.
 
 Two fits share the :class:`TuckerResult` of this module:
-:func:`threefold.hooi.hooi` (orthonormal factors, unweighted least squares on the
-zero-filled preference tensor) and :func:`threefold.implicit_tucker.implicit_tucker`
+:func:`threefold.hooi.fit_hooi` (orthonormal factors, unweighted least squares on the
+zero-filled preference tensor) and :func:`threefold.implicit_tucker.fit_implicit_tucker`
 (confidence-weighted least squares over all cells). ``docs/tucker.md`` explains
 how to read the core.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-from typing import NamedTuple, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, replace
+from typing import Sequence
 
 import numpy as np
-import scipy.linalg
-import scipy.sparse as sp
-import scipy.sparse.linalg
+from threadpoolctl import threadpool_limits
 
-from threefold._checks import check_int
+from threefold import kernels
+from threefold._checks import check_choice, check_int
+from threefold.cp import STOP_REASONS, SweepRecord
+from threefold.cp import _mode_position as mode_position
+from threefold.initialize import leading_left_vectors
 from threefold.scoring import Scorer, ScoreTerms, check_queries
+from threefold.tensor import SparseTensor
+from threefold.vocabulary import Vocabulary
 
 __all__ = [
-    "SweepStats",
     "TuckerResult",
-    "TuckerScorer",
+    "TuckerEstimator",
     "core_contributions",
     "core_slice",
     "check_tucker_rank",
-    "leading_left_vectors",
     "hosvd_factors",
 ]
 
-#: Modes whose unfolding has at most this many rows or columns use the small Gram matrix.
-SMALL_GRAM = 512
-
-
-class SweepStats(NamedTuple):
-    """Figures of one sweep.
-
-    Attributes
-    ----------
-    sweep : int
-        1-based sweep number.
-    loss : float
-        The objective after the sweep: ``‖X − X̂‖²`` for HOOI, the weighted
-        regularized loss for implicit Tucker.
-    fit : float
-        ``1 − ‖X − X̂‖ / ‖X‖`` (HOOI) or its weighted analogue (implicit Tucker).
-    seconds : float
-        Wall time of the sweep.
-    """
-
-    sweep: int
-    loss: float
-    fit: float
-    seconds: float
-
 
 @dataclass(frozen=True, eq=False)
-class TuckerResult:
-    """A fitted Tucker model: core, factors and the per-sweep history.
+class TuckerResult(Scorer):
+    """A fitted Tucker model ``x̂ = G ×_1 F_1 ... ×_N F_N``; validated at construction.
 
-    Unpacks like a tuple: ``core, factors = result``.
+    Unpacks like a tuple: ``core, factors = result``. Scores through the shared
+    interface: ``Q`` is the core contracted with each query's user row and
+    context rows, shape ``(q, R_item)``; ``V`` is the item factor; one score term
+    per core entry.
 
     Parameters
     ----------
     core : ndarray of shape (R_1, ..., R_N), float32 or float64
     factors : tuple of ndarray of shape (I_n, R_n), same dtype as ``core``
-    history : tuple of SweepStats
-        One record per sweep, in order.
-    converged : bool
-        Whether the relative loss change fell below the tolerance.
-    method : str
-        ``"hooi"`` or ``"implicit"``.
     mode_names : tuple of str
+    vocabularies : tuple of Vocabulary or None
+    history : tuple of SweepRecord
+        Sweep 0 (the initial state) first.
+    stop_reason : {"converged", "max_sweeps", "callback"}
+    method : {"hooi", "implicit"}
+    w0, reg : float
+        The weight of cells not stored and the regularization of the fit
+        (``w0 = 1`` and ``reg = 0`` for HOOI, which is unweighted).
     """
 
     core: np.ndarray
     factors: tuple[np.ndarray, ...]
-    history: tuple[SweepStats, ...] = ()
-    converged: bool = False
-    method: str = "hooi"
-    mode_names: tuple[str, ...] | None = None
+    mode_names: tuple[str, ...]
+    vocabularies: tuple[Vocabulary | None, ...]
+    history: tuple[SweepRecord, ...]
+    stop_reason: str
+    method: str
+    w0: float = 1.0
+    reg: float = 0.0
 
     def __post_init__(self) -> None:
         core = np.asarray(self.core)
-        if core.dtype not in (np.float32, np.float64):
-            raise ValueError(f"TuckerResult core must be float32 or float64, got {core.dtype}.")
+        if core.dtype not in (np.float32, np.float64) or core.ndim < 2:
+            raise ValueError(f"TuckerResult core must be a float32 or float64 array of at least 2 modes, "
+                             f"got {core.dtype} {core.shape}.")
         factors = tuple(np.asarray(f) for f in self.factors)
-        if len(factors) != core.ndim:
-            raise ValueError(f"TuckerResult has {len(factors)} factors for a core of {core.ndim} modes.")
-        for n, f in enumerate(factors):
-            if f.ndim != 2 or f.shape[1] != core.shape[n]:
-                raise ValueError(
-                    f"Factor {n} must have shape (I_{n}, {core.shape[n]}) to match the core of shape "
-                    f"{core.shape}, got {f.shape}."
-                )
-            if f.dtype != core.dtype:
-                raise ValueError(f"Factor {n} has dtype {f.dtype}, the core {core.dtype}.")
-        names = tuple(self.mode_names) if self.mode_names is not None else tuple(f"mode{n}" for n in range(core.ndim))
-        if len(names) != core.ndim:
-            raise ValueError(f"Got {len(names)} mode names for a core of {core.ndim} modes.")
+        if len(factors) != core.ndim or len(self.mode_names) != core.ndim or len(self.vocabularies) != core.ndim:
+            raise ValueError(f"TuckerResult needs one factor, mode name and vocabulary per core mode ({core.ndim}); "
+                             f"got {len(factors)}, {len(self.mode_names)} and {len(self.vocabularies)}.")
+        for n, (name, f) in enumerate(zip(self.mode_names, factors)):
+            if f.ndim != 2 or f.shape[1] != core.shape[n] or f.dtype != core.dtype:
+                raise ValueError(f"Factor of mode {name!r} must be a {core.dtype} array of shape (I, {core.shape[n]}) "
+                                 f"to match the core of shape {core.shape}, got {f.dtype} {f.shape}.")
+            vocab = self.vocabularies[n]
+            if vocab is not None and len(vocab) != f.shape[0]:
+                raise ValueError(f"Factor of mode {name!r} has {f.shape[0]} rows but its vocabulary {len(vocab)} labels.")
+        if not all(isinstance(h, SweepRecord) for h in self.history):
+            raise ValueError("TuckerResult history must hold SweepRecord entries.")
+        check_choice("stop_reason", self.stop_reason, STOP_REASONS, owner="TuckerResult")
+        check_choice("method", self.method, ("hooi", "implicit"), owner="TuckerResult")
         object.__setattr__(self, "core", core)
         object.__setattr__(self, "factors", factors)
-        object.__setattr__(self, "history", tuple(SweepStats(*h) for h in self.history))
-        object.__setattr__(self, "mode_names", names)
+        object.__setattr__(self, "history", tuple(self.history))
 
     def __iter__(self):
         return iter((self.core, self.factors))
 
+    # ------------------------------------------------------------------ summary
     @property
     def shape(self) -> tuple[int, ...]:
-        """Mode sizes ``(I_1, ..., I_N)``."""
+        """Mode sizes (user, item, context...)."""
         return tuple(f.shape[0] for f in self.factors)
 
     @property
@@ -128,26 +116,115 @@ class TuckerResult:
         return tuple(self.core.shape)
 
     @property
-    def n_iter(self) -> int:
-        """Number of sweeps run."""
-        return len(self.history)
+    def n_sweeps(self) -> int:
+        """Sweeps run (the initial state not counted)."""
+        return len(self.history) - 1
+
+    @property
+    def converged(self) -> bool:
+        """True when the relative loss change fell below ``tol``."""
+        return self.stop_reason == "converged"
+
+    @property
+    def loss(self) -> float:
+        """Final loss."""
+        return self.history[-1].loss
+
+    @property
+    def fit(self) -> float:
+        """Final relative fit."""
+        return self.history[-1].fit
 
     def to_dense(self, max_cells: int = 50_000_000) -> np.ndarray:
-        """Dense reconstruction ``G ×_1 F_1 ... ×_N F_N`` (small shapes only)."""
+        """Dense reconstruction ``G ×_1 F_1 ... ×_N F_N``, float64 (small shapes only)."""
         cells = int(np.prod(self.shape, dtype=object))
         if cells > max_cells:
             raise MemoryError(f"A dense reconstruction of shape {self.shape} has {cells:,} cells, above {max_cells:,}.")
-        out = self.core
+        out = np.asarray(self.core, dtype=np.float64)
         for n, f in enumerate(self.factors):
-            out = np.moveaxis(np.tensordot(f, out, axes=(1, n)), 0, n)
+            out = np.moveaxis(np.tensordot(np.asarray(f, dtype=np.float64), out, axes=(1, n)), 0, n)
         return out
+
+    def predict(self, coords: np.ndarray) -> np.ndarray:
+        """Model values at given cells.
+
+        Parameters
+        ----------
+        coords : array-like of shape (ndim, n), int
+
+        Returns
+        -------
+        ndarray of shape (n,), float64
+        """
+        coords = np.asarray(coords, dtype=np.int64).reshape(self.core.ndim, -1)
+        return core_contributions(self.core, self.factors, coords.T).reshape(coords.shape[1], -1).sum(axis=1)
+
+    # ------------------------------------------------------------------ scoring interface
+    def query_matrix(self, users: np.ndarray, contexts: np.ndarray | None = None) -> np.ndarray:
+        """ndarray of shape (q, R_item), float64: the core times each query's user and context rows."""
+        users, contexts = check_queries(users, contexts, self.shape)
+        core = np.asarray(self.core, dtype=np.float64)
+        q = np.tensordot(np.asarray(self.factors[0], dtype=np.float64)[users], core, axes=(1, 0))
+        for j in range(contexts.shape[1]):  # q has shape (q, R_item, R_context_j, ...)
+            q = np.einsum("qic...,qc->qi...", q, np.asarray(self.factors[2 + j], dtype=np.float64)[contexts[:, j]])
+        return q
+
+    def item_matrix(self) -> np.ndarray:
+        """ndarray of shape (n_items, R_item): the item factor."""
+        return self.factors[1]
+
+    def score_terms(self, user: int, context, item: int) -> ScoreTerms:
+        """One term per core entry (labels ``"core (r_user, r_item, r_context...)"``), summing to the score."""
+        context = np.asarray(context, dtype=np.int64).reshape(1, -1)
+        users, contexts = check_queries(np.array([user]), context if context.size else None, self.shape)
+        if not 0 <= item < self.shape[1]:
+            raise IndexError(f"item index must lie in [0, {self.shape[1]}), got {item}.")
+        cell = np.concatenate([users, [item], contexts[0]])[None]
+        values = core_contributions(self.core, self.factors, cell)[0]
+        labels = tuple(f"core {idx}" for idx in np.ndindex(*self.core.shape))
+        return ScoreTerms(labels=labels, values=values.ravel())
+
+    def with_rows(self, mode: int | str, rows: np.ndarray, labels: Sequence[str] | None = None) -> "TuckerResult":
+        """The model with rows appended to one mode (e.g. folded-in newcomers).
+
+        Parameters
+        ----------
+        mode : int or str
+        rows : ndarray of shape (n_new, R_mode)
+        labels : sequence of str, optional
+            Their labels; required when the mode has a vocabulary.
+        """
+        n = mode_position(self.mode_names, mode)
+        factors = list(self.factors)
+        factors[n] = np.concatenate([factors[n], np.asarray(rows, dtype=factors[n].dtype)], axis=0)
+        vocabularies = list(self.vocabularies)
+        if vocabularies[n] is not None:
+            if labels is None or len(labels) != len(rows):
+                raise ValueError(f"Mode {self.mode_names[n]!r} has a vocabulary: give one label per new row.")
+            vocabularies[n] = Vocabulary(vocabularies[n].labels + tuple(labels), name=vocabularies[n].name)
+        return replace(self, factors=tuple(factors), vocabularies=tuple(vocabularies))
+
+
+def check_fold_in(result: TuckerResult, tensor: SparseTensor, mode: int | str) -> int:
+    """Check a fold-in tensor against a model: same modes, same sizes but in ``mode``."""
+    n = mode_position(result.mode_names, mode)
+    if tensor.mode_names != result.mode_names:
+        raise ValueError(f"fold_in: the tensor's modes {tensor.mode_names} differ from the model's {result.mode_names}.")
+    for m, name in enumerate(result.mode_names):
+        if m != n and tensor.shape[m] != result.shape[m]:
+            raise ValueError(
+                f"fold_in: mode {name!r} has {tensor.shape[m]} rows in the tensor but {result.shape[m]} in the model."
+            )
+    return n
 
 
 def core_contributions(core: np.ndarray, factors: Sequence[np.ndarray], cells: np.ndarray) -> np.ndarray:
     """Per-core-entry contributions to the model value of each cell.
 
     ``out[c, r_1, ..., r_N] = G[r_1, ..., r_N] · Π_n F_n[cells[c, n], r_n]``, so
-    ``out[c].sum()`` is the score of cell ``c``. Memory: ``len(cells) · prod(R)``.
+    ``out[c].sum()`` is the score of cell ``c``: the additive explanation of a
+    score by the (user group, item group, context group...) interactions.
+    Memory ``n_cells · Π R_n``; pass cells in batches for large requests.
 
     Parameters
     ----------
@@ -202,48 +279,34 @@ def core_slice(result: TuckerResult, levels: dict[int, int]) -> np.ndarray:
     return out
 
 
-class TuckerScorer(Scorer):
-    """The shared scoring interface for a fitted :class:`TuckerResult` in ``result_``.
+class TuckerEstimator(Scorer):
+    """Shared plumbing of the Tucker estimators: fitted state and scoring by delegation."""
 
-    ``Q`` is the core contracted with each query's user row and context rows,
-    shape ``(q, R_item)``; ``V`` is the item factor. ``score_terms`` labels one
-    term per core entry.
-    """
-
-    result_: TuckerResult
+    def _set_result(self, result: TuckerResult) -> None:
+        self.result_ = result
+        self.core_ = result.core
+        self.factors_ = result.factors
+        self.history_ = result.history
+        self.n_sweeps_ = result.n_sweeps
+        self.converged_ = result.converged
 
     def _fitted(self) -> TuckerResult:
-        result = getattr(self, "result_", None)
-        if result is None:
-            raise AttributeError(f"This {type(self).__name__} is not fitted yet; call fit first.")
-        return result
+        if not hasattr(self, "result_"):
+            raise RuntimeError(f"This {type(self).__name__} is not fitted yet; call fit(tensor) first.")
+        return self.result_
 
     @property
     def shape(self) -> tuple[int, ...]:
         return self._fitted().shape
 
-    def query_matrix(self, users: np.ndarray, contexts: np.ndarray | None = None) -> np.ndarray:
-        result = self._fitted()
-        users, contexts = check_queries(users, contexts, result.shape)
-        core = np.asarray(result.core, dtype=np.float64)
-        q = np.tensordot(np.asarray(result.factors[0], dtype=np.float64)[users], core, axes=(1, 0))
-        for j in range(contexts.shape[1]):  # q has shape (q, R_item, R_ctx_j, ...)
-            rows = np.asarray(result.factors[2 + j], dtype=np.float64)[contexts[:, j]]
-            q = np.einsum("qic...,qc->qi...", q, rows)
-        return q
+    def query_matrix(self, users, contexts=None) -> np.ndarray:
+        return self._fitted().query_matrix(users, contexts)
 
     def item_matrix(self) -> np.ndarray:
-        return np.asarray(self._fitted().factors[1], dtype=np.float64)
+        return self._fitted().item_matrix()
 
-    def score_terms(self, user: int, context, item: int) -> ScoreTerms:
-        result = self._fitted()
-        users, contexts = check_queries(np.array([user]), np.asarray(context).reshape(1, -1), result.shape)
-        if not 0 <= int(item) < result.shape[1]:
-            raise IndexError(f"item index must lie in [0, {result.shape[1]}).")
-        cell = np.concatenate([users, [int(item)], contexts[0]])[None]
-        values = core_contributions(result.core, result.factors, cell)[0]
-        labels = tuple(f"core {idx}" for idx in np.ndindex(*result.core.shape))
-        return ScoreTerms(labels=labels, values=values.ravel())
+    def score_terms(self, user, context, item) -> ScoreTerms:
+        return self._fitted().score_terms(user, context, item)
 
 
 def check_tucker_rank(rank: int | Sequence[int], shape: tuple[int, ...], owner: str) -> tuple[int, ...]:
@@ -263,102 +326,50 @@ def check_tucker_rank(rank: int | Sequence[int], shape: tuple[int, ...], owner: 
     return tuple(out)
 
 
-def _sign_fix(u: np.ndarray) -> np.ndarray:
-    """Make the entry of largest magnitude of each column positive (a deterministic sign)."""
-    pick = np.abs(u).argmax(axis=0)
-    signs = np.sign(u[pick, np.arange(u.shape[1])])
-    signs[signs == 0] = 1.0
-    return u * signs
-
-
-def _complete(u: np.ndarray, rank: int, rng: np.random.Generator) -> np.ndarray:
-    """Pad ``u`` with random orthonormal columns orthogonal to it (as many as missing)."""
-    missing = rank - u.shape[1]
-    if missing <= 0:
-        return u[:, :rank]
-    extra = rng.random((u.shape[0], missing))
-    extra -= u @ (u.T @ extra)
-    q, _ = np.linalg.qr(extra)
-    return np.hstack([u, q])
-
-
-def leading_left_vectors(matrix, rank: int, rng: np.random.Generator) -> np.ndarray:
-    """Leading ``rank`` left singular vectors of a dense or sparse matrix.
-
-    When both sides exceed :data:`SMALL_GRAM` and ``rank`` is below half the
-    smaller side, a truncated sparse SVD (``scipy.sparse.linalg.svds``, ARPACK,
-    start vector from ``rng``). Otherwise the eigendecomposition of the smaller
-    Gram matrix: ``M Mᵀ`` when ``M`` has fewer rows than columns, else ``Mᵀ M``
-    with ``U = orth(M V)``; the Gram is computed sparsely for sparse input. When
-    the matrix has fewer than ``rank`` singular vectors, random orthonormal
-    columns complete the basis.
-
-    Parameters
-    ----------
-    matrix : ndarray or scipy.sparse matrix of shape (I, J)
-    rank : int
-    rng : numpy.random.Generator
-
-    Returns
-    -------
-    ndarray of shape (I, rank), float64, orthonormal columns, sorted by singular value
-    """
-    n_rows, n_cols = matrix.shape
-    small = min(n_rows, n_cols)
-    if small > SMALL_GRAM and rank < small // 2 and sp.issparse(matrix):
-        m = matrix.astype(np.float64)
-        u, s, _ = scipy.sparse.linalg.svds(m, k=rank, v0=rng.standard_normal(small), random_state=rng)
-        u = u[:, np.argsort(s)[::-1]]
-        return _sign_fix(u)
-    if sp.issparse(matrix):
-        m = matrix.astype(np.float64).tocsr()
-        gram = (m @ m.T if n_rows <= n_cols else m.T @ m).toarray()
-    else:
-        m = np.asarray(matrix, dtype=np.float64)
-        gram = m @ m.T if n_rows <= n_cols else m.T @ m
-    keep = min(rank, small)
-    _, vectors = scipy.linalg.eigh(gram, subset_by_index=(gram.shape[0] - keep, gram.shape[0] - 1))
-    vectors = vectors[:, ::-1]
-    if n_rows <= n_cols:
-        u = vectors
-    else:
-        u, r = np.linalg.qr(np.asarray(m @ vectors))
-        u = u * np.where(np.diag(r) < 0, -1.0, 1.0)
-    return _complete(_sign_fix(u), rank, rng)
-
-
-def compressed_unfolding(coords: np.ndarray, values: np.ndarray, shape: tuple[int, ...], mode: int) -> sp.csr_matrix:
-    """Mode-n unfolding restricted to its nonzero columns (same left singular vectors).
-
-    Returns
-    -------
-    scipy.sparse.csr_matrix of shape (I_n, n_used_columns), float64
-    """
-    others = [m for m in range(len(shape)) if m != mode]
-    if np.prod([float(shape[m]) for m in others]) >= 2.0**62:
-        raise ValueError(f"The unfolding of mode {mode} has too many columns to index; shape {shape}.")
-    key = np.zeros(coords.shape[1], dtype=np.int64)
-    stride = 1
-    for m in others:
-        key += coords[m].astype(np.int64) * stride
-        stride *= shape[m]
-    used, column = np.unique(key, return_inverse=True)
-    return sp.csr_matrix((values.astype(np.float64), (coords[mode], column)), shape=(shape[mode], used.size))
-
-
-def hosvd_factors(coords: np.ndarray, values: np.ndarray, shape: tuple[int, ...], rank: tuple[int, ...],
-                  rng: np.random.Generator) -> list[np.ndarray]:
+def hosvd_factors(tensor: SparseTensor, rank: tuple[int, ...], rng: np.random.Generator) -> list[np.ndarray]:
     """Truncated HOSVD factors from the sparse unfoldings, never a dense one.
 
     Factor ``n`` holds the leading ``rank[n]`` left singular vectors of the
-    mode-n unfolding (De Lathauwer, De Moor & Vandewalle, SIAM J. Matrix Anal.
-    Appl. 21(4), 2000), computed by :func:`leading_left_vectors`.
+    mode-n unfolding of the preference values (De Lathauwer, De Moor &
+    Vandewalle, SIAM J. Matrix Anal. Appl. 21(4), 2000), from
+    :func:`threefold.initialize.leading_left_vectors`: the eigendecomposition
+    of the small Gram matrix ``X_(n) X_(n)ᵀ`` for modes of at most 512 rows,
+    ``scipy.sparse.linalg.svds`` otherwise. Columns an unfolding cannot give
+    are random, made orthonormal to the others here.
 
     Returns
     -------
-    list of ndarray of shape (I_n, R_n), float64
+    list of ndarray of shape (I_n, R_n), float64, orthonormal columns
     """
-    return [
-        leading_left_vectors(compressed_unfolding(coords, values, shape, n), rank[n], rng)
-        for n in range(len(shape))
-    ]
+    factors = []
+    for n in range(tensor.ndim):
+        u = leading_left_vectors(tensor, n, rank[n], rng)
+        q, r = np.linalg.qr(u)
+        factors.append(q * np.where(np.diag(r) < 0, -1.0, 1.0))  # keeps the leading vectors and their signs
+    return factors
+
+
+@contextmanager
+def fit_threads(n_threads: int | None, owner: str):
+    """Run a fit with ``n_threads`` numba threads and single-threaded BLAS (as the CP engine).
+
+    The parallel work is in the numba kernels; BLAS calls between them are
+    small, and a multithreaded BLAS next to numba's threads only oversubscribes
+    the cores.
+    """
+    if n_threads is not None:
+        check_int("n_threads", n_threads, low=1, owner=owner)
+    previous = kernels.set_threads(n_threads)
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            yield
+    finally:
+        kernels.set_threads(previous)
+
+
+def read_only_model(core: np.ndarray, factors: Sequence[np.ndarray]) -> tuple[np.ndarray, tuple[np.ndarray, ...]]:
+    """``(core, factors)`` as read-only views, for fit callbacks."""
+    views = [core.view()] + [f.view() for f in factors]
+    for view in views:
+        view.flags.writeable = False
+    return views[0], tuple(views[1:])

@@ -240,7 +240,7 @@ def ttmc(tree: FiberTree, coords: np.ndarray, values: np.ndarray, factors, n_row
         return out
     edge = np.zeros((n_chunks, 2, int(sizes[0])), dtype=dtype)
     edge_rows = np.zeros((n_chunks, 2), dtype=np.int64)
-    _ttmc_kernel(coords, values, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, out, edge, edge_rows)
+    _run(_ttmc_kernel, tree, coords, values, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, out, edge, edge_rows)
     np.add.at(out, edge_rows[:, 0], edge[:, 0])
     np.add.at(out, edge_rows[:, 1], edge[:, 1])
     return out
@@ -344,7 +344,7 @@ def evaluate(tree: FiberTree, coords: np.ndarray, core: np.ndarray, factors) -> 
     sizes = _level_sizes(tree.levels, ranks)
     core_p = np.ascontiguousarray(np.transpose(core, tree.levels).reshape(core.shape[tree.root], -1))
     out = np.zeros(coords.shape[1], dtype=dtype)
-    _evaluate_kernel(coords, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, core_p, out)
+    _run(_evaluate_kernel, tree, coords, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, core_p, out)
     return out
 
 
@@ -441,7 +441,7 @@ def implicit_rows(tree: FiberTree, coords: np.ndarray, preference: np.ndarray, c
     edge_a = np.zeros((n_chunks, 2, r_root, r_root))
     edge_b = np.zeros((n_chunks, 2, r_root))
     edge_rows = np.zeros((n_chunks, 2), dtype=np.int64)
-    _rows_kernel(coords, preference, confidence, float(w0), tree.perm, tree.breaks, tree.levels, flat, offsets, ranks,
+    _run(_rows_kernel, tree, coords, preference, confidence, float(w0), tree.perm, tree.breaks, tree.levels, flat, offsets, ranks,
                  sizes, tree.chunks, core_p, np.ascontiguousarray(base_matrix, dtype=np.float64), out, edge_a, edge_b,
                  edge_rows)
     rows, inverse = np.unique(edge_rows.ravel(), return_inverse=True)
@@ -451,3 +451,17 @@ def implicit_rows(tree: FiberTree, coords: np.ndarray, preference: np.ndarray, c
     np.add.at(acc_b, inverse, edge_b.reshape(-1, r_root))
     out[rows] = np.linalg.solve(base_matrix[None] + acc_a, acc_b[..., None])[..., 0]
     return out
+
+
+
+def _run(kernel, tree: FiberTree, *args) -> None:
+    """Run a parallel kernel; a single chunk runs on the calling thread (no pool wake-up)."""
+    if tree.chunks.shape[0] > 2:
+        kernel(*args)
+        return
+    previous = numba.get_num_threads()
+    numba.set_num_threads(1)
+    try:
+        kernel(*args)
+    finally:
+        numba.set_num_threads(previous)
