@@ -66,7 +66,7 @@ def text_missing(values: pa.Array, markers: bool = True) -> np.ndarray:
         hit = pc.is_in(pc.utf8_lower(trimmed), value_set=pa.array(_MISSING_MARKERS))
     else:
         hit = pc.equal(trimmed, "")
-    return hit.fill_null(True).to_numpy(zero_copy_only=False)
+    return pc.or_(hit.fill_null(True), pc.is_null(values)).to_numpy(zero_copy_only=False)
 
 
 def parse_numbers(values: pa.Array) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

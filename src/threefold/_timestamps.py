@@ -165,7 +165,9 @@ def _parse_strings(values: pa.Array) -> tuple[np.ndarray, np.ndarray]:
         form[epoch] = 1
     for mask, utc, code in ((aware, True, 1), (naive, False, 2)):
         if mask.any():
-            text = values.filter(pa.array(mask)).to_pandas()
+            # Digits beyond microseconds cannot change the floored second; dropping
+            # them keeps pandas at microsecond resolution (years 1..9999).
+            text = pc.replace_substring_regex(values.filter(pa.array(mask)), r"(\.\d{6})\d+", r"\1").to_pandas()
             parsed = pd.to_datetime(text, format="ISO8601", utc=utc, errors="coerce")
             sec, missing = _datetimes_to_seconds(parsed)
             seconds[mask] = sec

@@ -259,10 +259,11 @@ def load_events(
         unknown = [c for c in context_columns if c not in source.columns]
         if unknown:
             raise ValueError(f"{source.path}: no context column(s) {unknown}; the file has {source.columns}.")
+    refused = [k for k in _LOAD_ERRORS if zone is None or k[0] != "naive_timestamp"]
     frames, tally = [], ProblemTally(keep_rows=5)
     dropped = np.zeros(len(DROP_REASONS) + 1, dtype=np.int64)
     for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows):
-        tally.add_flags({k: m for k, m in chunk.flags.items() if k in _LOAD_ERRORS}, chunk.rows)
+        tally.add_flags({k: m for k, m in chunk.flags.items() if k in refused}, chunk.rows)
         dropped += np.bincount(chunk.drop, minlength=dropped.size)
         frames.append(_frame(chunk, key, context_columns))
     counts = tally.counts
