@@ -1,0 +1,219 @@
+"""The ``threefold`` command: a thin layer over the Python API.
+
+Flags carry the Python parameter names, with ``-`` for ``_`` (``--w-skip`` is
+``w_skip``). Every command exits 0 on success, 1 when the data has errors, and
+2 on a usage error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+import warnings
+from pathlib import Path
+from typing import Sequence
+
+__all__ = ["main"]
+
+
+def _add_weighting_flags(parser: argparse.ArgumentParser) -> None:
+    group = parser.add_argument_group("feedback weighting (docs/feedback.md)")
+    group.add_argument("--alpha", type=float, default=10.0, help="click confidence scale (default 10)")
+    group.add_argument("--transform", choices=("log1p", "linear", "none"), default="log1p")
+    group.add_argument("--signal", choices=("clicks", "dwell"), default="clicks")
+    group.add_argument("--w-skip", dest="w_skip", type=float, default=2.0, help="confidence of each skip (default 2)")
+    group.add_argument("--w0", type=float, default=1.0, help="weight of cells never shown (default 1)")
+    group.add_argument("--half-life-hours", dest="half_life_hours", type=float, default=None)
+    group.add_argument("--negatives", choices=("skip_above", "all_exposures", "none"), default="skip_above")
+
+
+def _weighting(args: argparse.Namespace):
+    from threefold.feedback import FeedbackWeighting
+
+    return FeedbackWeighting(
+        alpha=args.alpha, transform=args.transform, signal=args.signal,
+        w_skip=args.w_skip, w0=args.w0, half_life_hours=args.half_life_hours,
+    )
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="threefold",
+        description="Context-aware recommendation from implicit feedback: logs to tensors, models, evaluation.",
+    )
+    parser.add_argument("--version", action="version", version=f"threefold {_version()}")
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    validate = commands.add_parser("validate", help="check an event log (and items catalog) against the data contract")
+    validate.add_argument("events", help="CSV file, Parquet file or folder of Parquet files")
+    validate.add_argument("--items", help="items catalog to check and to check the log against")
+    validate.add_argument("--timezone", help="IANA zone of timestamps written without a UTC offset")
+    validate.add_argument("--chunk-rows", dest="chunk_rows", type=int, default=1_000_000)
+    validate.add_argument("--strict", action="store_true", help="treat data-quality warnings as errors")
+    validate.add_argument("--json", action="store_true", help="print the report as JSON")
+
+    simulate = commands.add_parser("simulate", help="write the event log of an invented demo site")
+    simulate.add_argument("out", help="output folder")
+    simulate.add_argument("--events", dest="n_events", type=int, default=100_000, help="log rows (default 100,000)")
+    simulate.add_argument("--seed", type=int, default=None, help="random seed (default: the scenario's)")
+    simulate.add_argument("--format", dest="file_format", choices=("parquet", "csv"), default="parquet")
+
+    build = commands.add_parser("build", help="build and save the exposure-aware sparse tensor of a log")
+    build.add_argument("events")
+    build.add_argument("out", help="tensor folder to write (a new version each time)")
+    build.add_argument("--context", action="append", default=[], metavar="MODE",
+                       help="context mode: 'daypart', 'week_part', a column, or columns crossed with '*' (repeatable)")
+    build.add_argument("--timezone", default="UTC", help="IANA zone for dayparts (and zone-less timestamps)")
+    build.add_argument("--daypart-starts", dest="daypart_starts", default=None,
+                       help="comma-separated local start hours, e.g. 5,9,12,17,21")
+    build.add_argument("--daypart-labels", dest="daypart_labels", default=None, help="comma-separated labels")
+    build.add_argument("--hash-user-ids-salt", dest="hash_user_ids_salt", default=None,
+                       help="replace user ids by salted hashes as they are read")
+    build.add_argument("--position-propensity", dest="position_propensity", action="store_true",
+                       help="estimate position propensities and weight clicks by their clipped inverse")
+    _add_weighting_flags(build)
+
+    demo = commands.add_parser("demo", help="run the main job end to end on an invented demo site")
+    demo.add_argument("--out", default="threefold-demo", help="working folder (default ./threefold-demo)")
+    demo.add_argument("--events", dest="n_events", type=int, default=60_000)
+    demo.add_argument("--seed", type=int, default=7)
+    return parser
+
+
+def _version() -> str:
+    from threefold import __version__
+
+    return __version__
+
+
+def _print_warnings(caught: list) -> None:
+    for w in caught:
+        print(f"warning: {w.message}", file=sys.stderr)
+
+
+def cmd_validate(args: argparse.Namespace) -> int:
+    from threefold.validate import validate_events
+
+    report = validate_events(args.events, items=args.items, timezone=args.timezone,
+                             chunk_rows=args.chunk_rows, strict=args.strict)
+    print(json.dumps(report.to_dict(), indent=2) if args.json else report.to_text())
+    return 0 if report.ok else 1
+
+
+def cmd_simulate(args: argparse.Namespace) -> int:
+    from threefold.simulate import simulate_site, write_site
+
+    started = time.perf_counter()
+    site = simulate_site(n_events=args.n_events, random_state=args.seed)
+    out = write_site(site, args.out, file_format=args.file_format)
+    clicks = int((site.events["event"] == "click").sum())
+    print(f"{site.params.site_name}: {len(site.events):,} events ({clicks:,} clicks), "
+          f"{site.params.n_users:,} users, {len(site.items):,} items, seed {site.params.seed}")
+    print(f"written to {out} in {time.perf_counter() - started:.1f} s")
+    return 0
+
+
+def _contexts(names: Sequence[str], timezone: str, starts: str | None, labels: str | None):
+    from threefold.context import DEFAULT_DAYPART_LABELS, DEFAULT_DAYPART_STARTS, parse_context
+
+    day_starts = tuple(float(x) for x in starts.split(",")) if starts else DEFAULT_DAYPART_STARTS
+    day_labels = tuple(x.strip() for x in labels.split(",")) if labels else DEFAULT_DAYPART_LABELS
+    return [parse_context(n, timezone=timezone, daypart_starts=day_starts, daypart_labels=day_labels) for n in names]
+
+
+def build_from_log(events_path, contexts, weighting, *, negatives, timezone, salt=None, position_propensity=False):
+    """Load a log, optionally estimate propensities, and build its tensor (shared by ``build`` and ``demo``)."""
+    from threefold.build import build_tensor
+    from threefold.events import load_events
+    from threefold.propensity import estimate_position_propensity
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        events = load_events(events_path, timezone=timezone, hash_user_ids_salt=salt, errors="drop")
+        propensity = None
+        if position_propensity or {"position", "request_id", "event"} <= set(events.columns):
+            if {"position", "request_id", "event"} <= set(events.columns):
+                propensity = estimate_position_propensity(events)
+        tensor, report = build_tensor(
+            events, contexts, weighting=weighting, negatives=negatives,
+            click_propensity=propensity.ratios if (position_propensity and propensity is not None) else None,
+        )
+    _print_warnings(caught)
+    return events, tensor, report, propensity
+
+
+def _print_tensor_summary(tensor, report, propensity) -> None:
+    print(f"tensor: {tensor}  ({tensor.nbytes / max(tensor.nnz, 1):.0f} bytes per stored cell)")
+    print(f"  rows in {report.rows_in:,}; clicks {report.clicks:,}; impressions {report.impressions:,}; "
+          f"skips {report.negatives:,}; dropped {report.dropped or 'none'}")
+    for name, vocab in zip(tensor.mode_names[2:], tensor.vocabularies[2:]):
+        print(f"  context mode {name}: {', '.join(vocab.labels)}")
+    if propensity is not None:
+        ratios = ", ".join(f"{r:.2f}" for r in propensity.ratios)
+        print(f"  examination by position relative to position 1: {ratios}")
+
+
+def cmd_build(args: argparse.Namespace) -> int:
+    from threefold.tensor_io import save_tensor
+
+    contexts = _contexts(args.context, args.timezone, args.daypart_starts, args.daypart_labels)
+    _, tensor, report, propensity = build_from_log(
+        args.events, contexts, _weighting(args), negatives=args.negatives, timezone=args.timezone,
+        salt=args.hash_user_ids_salt, position_propensity=args.position_propensity,
+    )
+    folder = save_tensor(tensor, args.out, extra={"build_report": report.to_dict(),
+                                                  "propensity": None if propensity is None else propensity.to_dict()})
+    _print_tensor_summary(tensor, report, propensity)
+    print(f"saved to {folder}")
+    return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from threefold.context import Daypart, ColumnContext
+    from threefold.feedback import FeedbackWeighting
+    from threefold.simulate import simulate_site, write_site
+    from threefold.tensor_io import save_tensor
+    from threefold.validate import validate_events
+
+    out = Path(args.out)
+    print(f"== 1. simulate an invented site ({args.n_events:,} log rows, seed {args.seed})")
+    site = simulate_site(n_events=args.n_events, random_state=args.seed)
+    log_dir = write_site(site, out / "site")
+    print(f"   {site.params.site_name}: {site.params.n_users:,} users, {len(site.items):,} items -> {log_dir}")
+
+    print("== 2. validate the log against the data contract")
+    report = validate_events(log_dir / "events.parquet", items=log_dir / "items.parquet")
+    print("   " + report.to_text().replace("\n", "\n   "))
+    if not report.ok:
+        return 1
+
+    print("== 3. build the exposure-aware user x item x context tensor")
+    p = site.params
+    contexts = [Daypart(timezone=p.timezone, starts=tuple(float(s) for s in p.daypart_starts), labels=p.daypart_labels),
+                ColumnContext("device"), ColumnContext("page_tone")]
+    _, tensor, build_report, propensity = build_from_log(
+        log_dir / "events.parquet", contexts, FeedbackWeighting(), negatives="skip_above", timezone=p.timezone)
+    _print_tensor_summary(tensor, build_report, propensity)
+    planted = ", ".join(f"{r:.2f}" for r in site.examination / site.examination[0])
+    print(f"  planted examination (the simulator's truth):            {planted}")
+    folder = save_tensor(tensor, out / "tensor", extra={"build_report": build_report.to_dict()})
+    print(f"   saved to {folder}")
+    return 0
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``threefold`` console command."""
+    args = _parser().parse_args(argv)
+    handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo}
+    try:
+        return handlers[args.command](args)
+    except (ValueError, KeyError, FileNotFoundError, MemoryError) as error:
+        message = error.args[0] if isinstance(error, KeyError) and error.args else error
+        print(f"threefold {args.command}: error: {message}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
