@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass, replace
-from datetime import datetime, timezone as _tz
 from typing import Literal
+
+import numpy as np
 
 __all__ = ["Problem", "ValidationReport", "describe", "iso_utc"]
 
@@ -39,10 +40,10 @@ _MATCH_RULE = {
 
 
 def iso_utc(seconds: int | None) -> str | None:
-    """``2024-03-10T07:30:00Z`` for epoch seconds, or None."""
+    """``2024-03-10T07:30:00Z`` for epoch seconds (years beyond 9999 too), or None."""
     if seconds is None:
         return None
-    return datetime.fromtimestamp(int(seconds), _tz.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    return str(np.datetime_as_string(np.datetime64(int(seconds), "s"), unit="s")) + "Z"  # any year
 
 
 @dataclass(frozen=True)
@@ -159,7 +160,7 @@ class ValidationReport:
             lines += _summary_lines(s, max_positions)
         lines.append("Problems" if self.problems else "Problems: none")
         for p in self.problems:
-            what = "users" if p.code == "activity_outlier" else "rows"
+            what = ("user" if p.code == "activity_outlier" else "row") + ("" if p.count == 1 else "s")
             lines.append(f"  {p.severity.upper():<8}{p.source:<7}{p.column:<16}{p.code:<26}{p.count:>10,} {what}")
             lines.append(f"          {p.message}")
             if p.rows:
@@ -190,8 +191,8 @@ def _summary_lines(s: dict, max_positions: int) -> list[str]:
     out += [
         f"  time range      {s['time_min']} .. {s['time_max']}" + (f" (local times read in {s['timezone']})" if s["timezone"] else ""),
         f"  events          {events}",
-        f"  activity        more than {s['activity_outliers']['threshold']:,.0f} events per user flags an outlier: "
-        f"{s['activity_outliers'].get('users', 0):,} user(s), {s['activity_outliers'].get('events', 0):,} events",
+        f"  outliers        {s['activity_outliers'].get('users', 0):,} user(s) with more than "
+        f"{s['activity_outliers']['threshold']:,.0f} events ({s['activity_outliers'].get('events', 0):,} events in all)",
         "",
     ]
     if s["by_position"]:
