@@ -114,7 +114,7 @@ def test_bootstrap_is_reproducible_and_rejects_bad_input():
         bootstrap_interval(values, confidence_level=1.0)
     with pytest.raises(ValueError, match="values must be finite"):
         bootstrap_interval(np.array([1.0, np.nan]))
-    with pytest.raises(ValueError, match="denominators must have shape"):
+    with pytest.raises(ValueError, match="values and denominators must have the same shape"):
         bootstrap_interval(values, denominators=np.ones(3))
 
 
@@ -152,5 +152,5 @@ def test_paired_comparison_of_identical_models():
     result = paired_comparison(values, values)
     assert (result.p_value, result.effect_size, result.n_nonzero) == (1.0, 0.0, 0)
     assert result.interval.low == result.interval.high == 0.0
-    with pytest.raises(ValueError, match="same users"):
+    with pytest.raises(ValueError, match="model and baseline must have the same shape"):
         paired_comparison(values, values[:5])

@@ -68,39 +68,35 @@ def run_threefold(args, queue) -> None:
     })
 
 
-def run_numpy(args, queue) -> None:
+def _numpy_blocks(args, select: bool) -> dict:
+    """The same blocks of ``Q @ V.T``, with or without a bare argpartition top-K."""
     query, items, _ = make_data(args.queries, args.items, args.rank, args.seed)
     item_t = np.ascontiguousarray(items.T)
-    out = np.empty((args.queries, args.k), dtype=np.int64)
+    out = np.zeros((args.queries, args.k), dtype=np.int64)
     t0 = time.perf_counter()
     for start in range(0, args.queries, args.block):
         scores = query[start:start + args.block] @ item_t
-        out[start:start + args.block] = np.argpartition(-scores, args.k - 1, axis=1)[:, : args.k]
-    t1 = time.perf_counter()
-    queue.put({
-        "name": "numpy reference: same blocks of Q @ V.T + argpartition",
-        "seconds": t1 - t0,
-        "detail": "unsorted top-K, no tie rule, no metrics",
+        if select:
+            out[start:start + args.block] = np.argpartition(-scores, args.k - 1, axis=1)[:, : args.k]
+    seconds = time.perf_counter() - t0
+    return {
+        "seconds": seconds,
         "rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
         "sample": out[:: max(1, args.queries // 2000)],
+    }
+
+
+def run_numpy(args, queue) -> None:
+    result = _numpy_blocks(args, select=True)
+    queue.put(result | {
+        "name": "numpy reference: same blocks of Q @ V.T + argpartition",
+        "detail": "unsorted top-K, no tie rule, no metrics",
     })
 
 
 def run_matmul(args, queue) -> None:
-    query, items, _ = make_data(args.queries, args.items, args.rank, args.seed)
-    item_t = np.ascontiguousarray(items.T)
-    checksum = 0.0
-    t0 = time.perf_counter()
-    for start in range(0, args.queries, args.block):
-        scores = query[start:start + args.block] @ item_t
-        checksum += float(scores[0, 0])
-    t1 = time.perf_counter()
-    queue.put({
-        "name": "numpy floor: same blocks of Q @ V.T only",
-        "seconds": t1 - t0,
-        "detail": "no selection at all",
-        "rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
-    })
+    result = _numpy_blocks(args, select=False)
+    queue.put(result | {"name": "numpy floor: same blocks of Q @ V.T only", "detail": "no selection at all"})
 
 
 def in_child(target, args) -> dict:

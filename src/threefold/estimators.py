@@ -75,6 +75,13 @@ def _finite_vector(name: str, values: np.ndarray) -> np.ndarray:
     return x
 
 
+def _paired_vectors(names: tuple[str, str], first: np.ndarray, second: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    x, y = _finite_vector(names[0], first), _finite_vector(names[1], second)
+    if x.shape != y.shape:
+        raise ValueError(f"{names[0]} and {names[1]} must have the same shape, got {x.shape} and {y.shape}.")
+    return x, y
+
+
 @dataclass(frozen=True)
 class ClickEstimates:
     """Naive, IPS and SNIPS estimates of one click metric.
@@ -113,10 +120,7 @@ def click_estimates(rewards: np.ndarray, weights: np.ndarray, *, max_weight: flo
     -------
     ClickEstimates
     """
-    y = _finite_vector("rewards", rewards)
-    w = _finite_vector("weights", weights)
-    if w.shape != y.shape:
-        raise ValueError(f"rewards and weights must have the same shape, got {y.shape} and {w.shape}.")
+    y, w = _paired_vectors(("rewards", "weights"), rewards, weights)
     if w.min() <= 0:
         raise ValueError("weights must be positive (inverse propensities).")
     n_clipped = 0
@@ -204,9 +208,7 @@ def bootstrap_interval(
                          owner="bootstrap_interval")
     den = None
     if denominators is not None:
-        den = _finite_vector("denominators", denominators)
-        if den.shape != x.shape:
-            raise ValueError(f"denominators must have shape {x.shape}, got {den.shape}.")
+        x, den = _paired_vectors(("values", "denominators"), x, denominators)
     n = x.size
     if batch is None:
         batch = max(1, _RESAMPLE_CELLS // n)
@@ -288,10 +290,7 @@ def paired_comparison(
     -------
     PairedComparison
     """
-    a = _finite_vector("model", model)
-    b = _finite_vector("baseline", baseline)
-    if a.shape != b.shape:
-        raise ValueError(f"model and baseline must hold the same users, got shapes {a.shape} and {b.shape}.")
+    a, b = _paired_vectors(("model", "baseline"), model, baseline)
     diff = a - b
     interval = bootstrap_interval(diff, n_resamples=n_resamples, confidence_level=confidence_level,
                                   random_state=random_state)
