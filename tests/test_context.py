@@ -46,7 +46,7 @@ def test_missing_values_map_to_unknown_and_crosses_keep_parts():
     frame = derive_contexts(events, [ColumnContext("device"), CrossedContext((ColumnContext("device"), ColumnContext("page_tone")))])
     assert list(frame["device"]) == ["mobile", "unknown", "unknown", "desktop"]
     assert list(frame["device*page_tone"]) == ["mobile|calm", "unknown|calm", "unknown|unknown", "desktop|urgent"]
-    assert context_levels(ColumnContext("device"), frame["device"]) == ("desktop", "mobile", "unknown")
+    assert context_levels(ColumnContext("device"), frame["device"].unique()) == ("desktop", "mobile", "unknown")
 
 
 def test_parse_context_forms():

@@ -33,7 +33,7 @@ import numpy as np
 import pandas as pd
 
 from threefold._checks import check_choice, check_number
-from threefold.context import ContextSpec, context_levels, derive_contexts, spec_name
+from threefold.context import ContextSpec, context_levels, spec_name
 from threefold.feedback import CellEvidence, FeedbackWeighting
 from threefold.tensor import SparseTensor
 from threefold.vocabulary import UNKNOWN, UnseenPolicy, Vocabulary
@@ -89,7 +89,25 @@ def select_window(events: pd.DataFrame, start: int | None = None, end: int | Non
     return events.loc[keep]
 
 
-def mark_negatives(events: pd.DataFrame, negatives: Negatives) -> tuple[np.ndarray, np.ndarray]:
+def _duplicated_rows(events: pd.DataFrame) -> np.ndarray:
+    """Exact duplicate rows (all but the first of each group), via 64-bit row hashes verified exactly."""
+    hashes = pd.util.hash_pandas_object(events, index=False).to_numpy()
+    candidates = pd.Series(hashes).duplicated(keep=False).to_numpy()
+    out = np.zeros(len(events), dtype=bool)
+    if candidates.any():
+        out[np.flatnonzero(candidates)] = events.loc[candidates].duplicated().to_numpy()
+    return out
+
+
+def spec_codes(spec: ContextSpec, events: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """Row codes and labels of one context mode (see ``codes_for`` of the context specifications)."""
+    codes, labels = spec.codes_for(events)
+    return codes, np.asarray(labels, dtype=object)
+
+
+def mark_negatives(
+    events: pd.DataFrame, negatives: Negatives, *, item_codes: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
     """Which rows are clicks and which impressions count as skips.
 
     Parameters
@@ -109,9 +127,8 @@ def mark_negatives(events: pd.DataFrame, negatives: Negatives) -> tuple[np.ndarr
     check_choice("negatives", negatives, ("skip_above", "all_exposures", "none"), owner="build_tensor")
     if "event" not in events.columns:
         return np.ones(len(events), dtype=bool), np.zeros(len(events), dtype=bool)
-    event = events["event"].to_numpy(dtype=object)
-    is_click = event == "click"
-    is_impression = event == "impression"
+    is_click = (events["event"] == "click").fillna(False).to_numpy(dtype=bool)
+    is_impression = (events["event"] == "impression").fillna(False).to_numpy(dtype=bool)
     if negatives == "none" or not is_impression.any():
         return is_click, np.zeros(len(events), dtype=bool)
     has_request = "request_id" in events.columns
@@ -124,8 +141,8 @@ def mark_negatives(events: pd.DataFrame, negatives: Negatives) -> tuple[np.ndarr
             )
     if not has_request:
         return is_click, is_impression
-    request = pd.factorize(events["request_id"].astype(object))[0].astype(np.int64)
-    item = pd.factorize(events["item_id"].astype(object))[0].astype(np.int64)
+    request = pd.factorize(events["request_id"])[0].astype(np.int64)
+    item = (pd.factorize(events["item_id"])[0] if item_codes is None else item_codes).astype(np.int64)
     key = request * (int(item.max(initial=0)) + 1) + item
     clicked_keys = np.unique(key[is_click])
     impression_clicked = is_impression & np.isin(key, clicked_keys)
@@ -190,8 +207,9 @@ def build_tensor(
         if column not in events.columns:
             raise KeyError(f"build_tensor needs the column {column!r}; the events have {list(events.columns)}.")
     report = BuildReport(rows_in=len(events))
-    if drop_duplicates:
-        dup = events.duplicated().to_numpy()
+    # load_events already dropped and counted exact duplicates; other frames are checked here.
+    if drop_duplicates and "threefold_load" not in events.attrs:
+        dup = _duplicated_rows(events)
         if dup.any():
             report.dropped["duplicate"] = int(dup.sum())
             events = events.loc[~dup]
@@ -199,8 +217,8 @@ def build_tensor(
 
     missing_id = np.zeros(len(events), dtype=bool)
     for column in ("user_id", "item_id"):
-        values = events[column].astype(object)
-        bad = values.isna().to_numpy() | (values.astype(str).str.strip() == "").to_numpy()
+        values = events[column]
+        bad = values.isna().to_numpy() | (values.astype("str").str.strip() == "").fillna(True).to_numpy(dtype=bool)
         if bad.any():
             report.dropped[f"missing {column}"] = int((bad & ~missing_id).sum())
         missing_id |= bad
@@ -208,21 +226,26 @@ def build_tensor(
         events = events.loc[~missing_id].reset_index(drop=True)
 
     if "event" in events.columns:
-        event = events["event"].to_numpy(dtype=object)
-        is_impression = event == "impression"
-        known_event = is_impression | (event == "click")
+        is_impression = (events["event"] == "impression").fillna(False).to_numpy(dtype=bool)
+        known_event = is_impression | (events["event"] == "click").fillna(False).to_numpy(dtype=bool)
         if not known_event.all():
             report.dropped["unknown event value"] = int((~known_event).sum())
             events = events.loc[known_event].reset_index(drop=True)
         report.impressions = int(is_impression[known_event].sum())
-    is_click, is_skip = mark_negatives(events, negatives)
+    user_codes, user_uniques = pd.factorize(events["user_id"])
+    item_codes, item_uniques = pd.factorize(events["item_id"])
+    is_click, is_skip = mark_negatives(events, negatives, item_codes=item_codes)
     unresolved_skips = negatives == "all_exposures" and "request_id" not in events.columns
-    context_frame = derive_contexts(events, contexts)
+
+    factorized = [(user_codes, np.asarray(user_uniques, dtype=object)), (item_codes, np.asarray(item_uniques, dtype=object))]
+    factorized += [spec_codes(s, events) for s in contexts]
     names = ("user", "item") + tuple(spec_name(s) for s in contexts)
-    label_columns = [events["user_id"], events["item_id"]] + [context_frame[c] for c in context_frame.columns]
+    if len(set(names)) != len(names):
+        raise ValueError(f"Mode names must be unique, got {names}.")
     if vocabularies is None:
-        vocabs = [Vocabulary.from_values(events["user_id"], name="user"), Vocabulary.from_values(events["item_id"], name="item")]
-        vocabs += [Vocabulary(context_levels(s, context_frame[spec_name(s)]), name=spec_name(s)) for s in contexts]
+        vocabs = [Vocabulary(tuple(sorted(map(str, factorized[0][1]))), name="user"),
+                  Vocabulary(tuple(sorted(map(str, factorized[1][1]))), name="item")]
+        vocabs += [Vocabulary(context_levels(s, labels), name=spec_name(s)) for s, (_, labels) in zip(contexts, factorized[2:])]
     else:
         vocabs = list(vocabularies)
         if len(vocabs) != len(names):
@@ -232,13 +255,13 @@ def build_tensor(
     relevant = is_click | is_skip
     keep = relevant.copy()
     codes = []
-    for n, (name, vocab, labels) in enumerate(zip(names, vocabs, label_columns)):
+    for n, (name, vocab, (row_codes, uniques)) in enumerate(zip(names, vocabs, factorized)):
         policy = unseen_ids if n < 2 else unseen_context
-        encoded = vocab.encode(labels, policy=policy)
+        encoded = vocab.encode_codes(row_codes, uniques, policy=policy)
         if policy == "drop" and encoded.n_unseen:
             column = "user_id" if n == 0 else "item_id" if n == 1 else name
-            report.dropped[f"unseen {column}"] = int(((encoded.codes < 0) & keep).sum())
             # rows dropped here are counted once, under the first mode that rejects them
+            report.dropped[f"unseen {column}"] = int(((encoded.codes < 0) & keep).sum())
             keep &= encoded.codes >= 0
         codes.append(encoded.codes)
     shape = tuple(len(v) for v in vocabs)

@@ -31,6 +31,7 @@ __all__ = [
     "derive_contexts",
     "context_levels",
     "parse_context",
+    "factorize_labels",
     "DEFAULT_DAYPART_STARTS",
     "DEFAULT_DAYPART_LABELS",
 ]
@@ -94,12 +95,17 @@ class Daypart:
         """Labels in bin order, then ``unknown``."""
         return self.labels + (UNKNOWN,)
 
-    def labels_for(self, events: pd.DataFrame) -> pd.Series:
-        """One daypart label per event row (``timestamp`` in int64 epoch seconds)."""
+    def codes_for(self, events: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
+        """Daypart code of every event row (``timestamp`` in int64 epoch seconds) and the labels they index."""
         local = _local_times(events["timestamp"], self.timezone)
         hours = (local.dt.hour + local.dt.minute / 60.0 + local.dt.second / 3600.0).to_numpy()
-        bins = np.searchsorted(np.asarray(self.starts), hours, side="right") - 1  # -1 wraps to last
-        return pd.Series(np.asarray(self.labels, dtype=object)[bins], index=events.index, dtype=object)
+        bins = np.searchsorted(np.asarray(self.starts), hours, side="right") - 1
+        bins[bins < 0] = len(self.labels) - 1  # before the first start: the last bin, wrapping past midnight
+        return bins.astype(np.int32), self.labels
+
+    def labels_for(self, events: pd.DataFrame) -> pd.Series:
+        """One daypart label per event row."""
+        return _labels_from_codes(*self.codes_for(events), events.index)
 
 
 @dataclass(frozen=True)
@@ -131,13 +137,15 @@ class WeekPart:
             return ("weekday", "weekend", UNKNOWN)
         return ("monday", "tuesday", "wednesday", "thursday", "friday", "saturday", "sunday", UNKNOWN)
 
-    def labels_for(self, events: pd.DataFrame) -> pd.Series:
+    def codes_for(self, events: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
+        """Code of every event row and the labels they index."""
         dow = _local_times(events["timestamp"], self.timezone).dt.day_of_week.to_numpy()
         if self.levels_kind == "weekday_weekend":
-            out = np.where(dow >= 5, "weekend", "weekday").astype(object)
-        else:
-            out = np.asarray(self.levels[:7], dtype=object)[dow]
-        return pd.Series(out, index=events.index, dtype=object)
+            return (dow >= 5).astype(np.int32), ("weekday", "weekend")
+        return dow.astype(np.int32), self.levels[:7]
+
+    def labels_for(self, events: pd.DataFrame) -> pd.Series:
+        return _labels_from_codes(*self.codes_for(events), events.index)
 
 
 @dataclass(frozen=True)
@@ -151,10 +159,14 @@ class ColumnContext:
     def mode_name(self) -> str:
         return self.name or self.column
 
-    def labels_for(self, events: pd.DataFrame) -> pd.Series:
+    def codes_for(self, events: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
+        """Code of every event row and the labels they index (missing or blank values: ``unknown``)."""
         if self.column not in events.columns:
             raise KeyError(f"Context column {self.column!r} is not in the events; columns are {list(events.columns)}.")
-        return _with_unknown(events[self.column])
+        return factorize_labels(events[self.column])
+
+    def labels_for(self, events: pd.DataFrame) -> pd.Series:
+        return _labels_from_codes(*self.codes_for(events), events.index)
 
 
 @dataclass(frozen=True)
@@ -172,12 +184,24 @@ class CrossedContext:
     def mode_name(self) -> str:
         return self.name or "*".join(spec_name(p) for p in self.parts)
 
+    def codes_for(self, events: pd.DataFrame) -> tuple[np.ndarray, tuple[str, ...]]:
+        """Code of every event row and the crossed labels (``"mobile|evening"``) they index."""
+        combined = np.zeros(len(events), dtype=np.int64)
+        part_labels = []
+        for part in self.parts:
+            codes, labels = part.codes_for(events)
+            combined = combined * len(labels) + codes
+            part_labels.append(labels)
+        codes, uniques = pd.factorize(combined)
+        pieces = []
+        for labels in reversed(part_labels):
+            pieces.append(np.asarray(labels, dtype=object)[uniques % len(labels)])
+            uniques = uniques // len(labels)
+        crossed = tuple(_CROSS_SEPARATOR.join(parts) for parts in zip(*reversed(pieces)))
+        return codes.astype(np.int32), crossed
+
     def labels_for(self, events: pd.DataFrame) -> pd.Series:
-        pieces = [p.labels_for(events).astype(str) for p in self.parts]
-        out = pieces[0]
-        for piece in pieces[1:]:
-            out = out + _CROSS_SEPARATOR + piece
-        return out.astype(object)
+        return _labels_from_codes(*self.codes_for(events), events.index)
 
 
 ContextSpec = Union[Daypart, WeekPart, ColumnContext, CrossedContext]
@@ -188,13 +212,29 @@ def spec_name(spec: ContextSpec) -> str:
     return spec.name if isinstance(spec, (Daypart, WeekPart)) else spec.mode_name
 
 
-def _with_unknown(values: pd.Series) -> pd.Series:
-    """Strings with NaN/None/blank mapped to ``unknown``."""
-    as_obj = values.astype(object)
-    missing = as_obj.isna().to_numpy() | (as_obj.astype(str).str.strip() == "").to_numpy()
-    out = as_obj.astype(str).to_numpy(dtype=object)
-    out[missing] = UNKNOWN
-    return pd.Series(out, index=values.index, dtype=object)
+def factorize_labels(values: pd.Series) -> tuple[np.ndarray, tuple[str, ...]]:
+    """Codes and distinct labels of a column, with missing or blank values as ``unknown``.
+
+    Returns
+    -------
+    codes : ndarray of shape (n,), int32
+    labels : tuple of str
+        Distinct labels in order of first appearance; ``unknown`` is included
+        only when some value was missing or blank (or literally ``unknown``).
+    """
+    codes, uniques = pd.factorize(values, use_na_sentinel=True)
+    labels = [str(u).strip() for u in uniques]
+    labels = [UNKNOWN if label == "" else label for label in labels]
+    if (codes < 0).any():
+        labels.append(UNKNOWN)
+        codes = np.where(codes < 0, len(labels) - 1, codes)
+    # blank values and literal 'unknown' collapse onto one level
+    distinct, remap = np.unique(np.asarray(labels, dtype=object), return_inverse=True)
+    return remap[codes].astype(np.int32), tuple(str(x) for x in distinct)
+
+
+def _labels_from_codes(codes: np.ndarray, labels: tuple[str, ...], index: pd.Index) -> pd.Series:
+    return pd.Series(np.asarray(labels, dtype=object)[codes], index=index, dtype=object)
 
 
 def derive_contexts(events: pd.DataFrame, specs: Sequence[ContextSpec]) -> pd.DataFrame:
@@ -218,11 +258,11 @@ def derive_contexts(events: pd.DataFrame, specs: Sequence[ContextSpec]) -> pd.Da
     return pd.DataFrame({name: spec.labels_for(events) for name, spec in zip(names, specs)}, index=events.index)
 
 
-def context_levels(spec: ContextSpec, observed: pd.Series) -> tuple[str, ...]:
+def context_levels(spec: ContextSpec, observed: Sequence[str]) -> tuple[str, ...]:
     """Level order of a context mode: declared levels for time bins, sorted observed labels otherwise; ``unknown`` last."""
     if isinstance(spec, (Daypart, WeekPart)):
         return spec.levels
-    seen = sorted(str(v) for v in pd.unique(observed) if v != UNKNOWN)
+    seen = sorted({str(v) for v in observed} - {UNKNOWN})
     return tuple(seen) + (UNKNOWN,)
 
 

@@ -111,22 +111,43 @@ class Vocabulary:
         -------
         EncodedLabels
         """
-        series = pd.Series(values, dtype=object) if not isinstance(values, pd.Series) else values.astype(object)
-        codes = pd.Index(self.labels, dtype=object).get_indexer(series.to_numpy()).astype(np.int32)
-        unseen = np.flatnonzero(codes < 0)
+        codes, uniques = pd.factorize(pd.Series(values) if not isinstance(values, pd.Series) else values)
+        if (codes < 0).any():
+            uniques = pd.Index(list(uniques) + [None], dtype=object)
+            codes = np.where(codes < 0, len(uniques) - 1, codes)
+        return self.encode_codes(codes, np.asarray(uniques, dtype=object), policy=policy)
+
+    def encode_codes(self, codes: np.ndarray, uniques: np.ndarray | tuple, policy: UnseenPolicy = "error") -> EncodedLabels:
+        """Map factorized labels to indices (the fast path for large columns).
+
+        Parameters
+        ----------
+        codes : ndarray of shape (n,), int
+            Index of each row's label in ``uniques`` (e.g. from ``pandas.factorize``).
+        uniques : array-like of shape (k,), str
+        policy : {"error", "drop", "unknown"}
+            See :meth:`encode`.
+
+        Returns
+        -------
+        EncodedLabels
+        """
+        table = pd.Index(self.labels, dtype=object).get_indexer(pd.Index(np.asarray(uniques, dtype=object)))
+        mapped = table[np.asarray(codes)].astype(np.int32)
+        unseen = np.flatnonzero(mapped < 0)
         first = [int(i) for i in unseen[:10]]
         if unseen.size and policy == "error":
             raise KeyError(
                 f"{unseen.size} label(s) are not in the {self.name or 'mode'} vocabulary, "
-                f"e.g. {series.iloc[first[0]]!r} at row {first[0]}."
+                f"e.g. {uniques[codes[first[0]]]!r} at row {first[0]}."
             )
         if unseen.size and policy == "unknown":
             if UNKNOWN not in self._index:
                 raise KeyError(
                     f"Policy 'unknown' needs an {UNKNOWN!r} level in the {self.name or 'mode'} vocabulary."
                 )
-            codes[unseen] = self._index[UNKNOWN]
-        return EncodedLabels(codes=codes, n_unseen=int(unseen.size), first_unseen_rows=first)
+            mapped[unseen] = self._index[UNKNOWN]
+        return EncodedLabels(codes=mapped, n_unseen=int(unseen.size), first_unseen_rows=first)
 
     def to_json(self) -> dict:
         """A JSON-serializable dict (``name`` and ``labels``)."""
