@@ -304,3 +304,21 @@ def test_default_scenario_covers_every_context_level_and_the_time_window(site):
         site.params.timezone)
     assert window.iloc[0] >= pd.Timestamp("2026-03-23", tz=site.params.timezone)
     assert window.iloc[1] < pd.Timestamp("2026-04-06 00:10", tz=site.params.timezone)
+
+
+def test_top_k_kernel_matches_a_stable_argsort():
+    from threefold._scenario import _top_k_rows
+
+    rng = np.random.default_rng(3)
+    scores = rng.standard_normal((50, 40)).astype(np.float32)
+    scores[:, 5] = scores[:, 9]  # ties go to the lower column, as in a stable sort of -scores
+    for k in (1, 10, 40):
+        assert_array_equal(_top_k_rows(scores, k), np.argsort(-scores, axis=1, kind="stable")[:, :k])
+
+
+def test_packed_sort_key_orders_rows_like_lexsort():
+    from threefold._scenario import _packed_key
+
+    rng = np.random.default_rng(4)
+    keys = [rng.integers(0, hi, 5_000) for hi in (1_000_000, 40_000, 2, 11)]
+    assert_array_equal(np.argsort(_packed_key(*keys), kind="stable"), np.lexsort(keys[::-1]))

@@ -13,8 +13,10 @@ import zoneinfo
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+from numba import njit
 
 from threefold._checks import check_choice, check_int, check_number
+from threefold.context import Daypart
 
 #: Item kinds of the event-log contract, in code order.
 KINDS = ("article", "clip", "audio")
@@ -43,14 +45,45 @@ def local_to_epoch(local_seconds: np.ndarray, timezone: str) -> np.ndarray:
     return aware.tz_convert("UTC").as_unit("s").asi8.astype(np.int64)
 
 
-def daypart_codes(epoch_seconds: np.ndarray, timezone: str, starts: tuple[int, ...]) -> np.ndarray:
-    """Daypart index of each epoch second: the last start hour at or before the local hour.
+def daypart_codes(epoch_seconds: np.ndarray, timezone: str, starts, labels) -> np.ndarray:
+    """Daypart index of each epoch second, int64, binned exactly as :class:`threefold.context.Daypart` bins it.
 
-    Hours before the first start belong to the last daypart (it wraps past midnight).
+    The local hour in ``timezone`` falls in the last daypart whose start hour is
+    at or before it; hours before the first start belong to the last daypart.
     """
-    utc = pd.to_datetime(np.asarray(epoch_seconds, dtype="int64"), unit="s", utc=True)
-    hour = np.asarray(utc.tz_convert(timezone).hour, dtype=np.int64)
-    return ((np.searchsorted(np.asarray(starts), hour, side="right") - 1) % len(starts)).astype(np.int8)
+    spec = Daypart(timezone=timezone, starts=tuple(float(h) for h in starts), labels=tuple(labels))
+    found = spec.labels_for(pd.DataFrame({"timestamp": np.asarray(epoch_seconds, dtype=np.int64)}))
+    return pd.Index(spec.labels).get_indexer(found.to_numpy()).astype(np.int64)
+
+
+@njit(cache=True, nogil=True)
+def _top_k_rows(scores: np.ndarray, k: int) -> np.ndarray:
+    """Column indices of the ``k`` largest entries of each row, largest first (ties: lower index first).
+
+    Equivalent to ``np.argsort(-scores, axis=1, kind="stable")[:, :k]``, in one
+    pass per row with an insertion buffer of size ``k``.
+    """
+    n, c = scores.shape
+    out = np.empty((n, k), dtype=np.int64)
+    best = np.empty(k, dtype=scores.dtype)
+    for r in range(n):
+        filled = 0
+        for j in range(c):
+            s = scores[r, j]
+            if filled < k:
+                p = filled
+                filled += 1
+            elif s > best[k - 1]:
+                p = k - 1
+            else:
+                continue
+            while p > 0 and best[p - 1] < s:
+                best[p] = best[p - 1]
+                out[r, p] = out[r, p - 1]
+                p -= 1
+            best[p] = s
+            out[r, p] = j
+    return out
 
 
 def _sample_rows(probs: np.ndarray, rng: np.random.Generator) -> np.ndarray:
@@ -141,7 +174,7 @@ def draw_world(params, rng: np.random.Generator) -> tuple[dict, dict]:
         "device": _dirichlet_rows(n_u, params.device_shares, params.habit_concentration, rng),
         "device_by_daypart": device_by_daypart,
         "page_tone": _dirichlet_rows(n_u, params.tone_shares, params.habit_concentration, rng),
-        "policy_taste": user_taste + params.policy_taste_noise * rng.standard_normal((n_u, n_t)),
+        "policy_taste": (user_taste + params.policy_taste_noise * rng.standard_normal((n_u, n_t))).astype(np.float32),
     }
     return truth, habits
 
@@ -207,11 +240,13 @@ def _show_lists(params, truth, habits, requests, pools, window, rng) -> np.ndarr
         slot_start = window[0] + s * SLOT_SECONDS
         age_days = (slot_start - truth.published_at[pool]) / 86_400
         base = params.policy_popularity_weight * truth.item_quality[pool] - params.policy_freshness_per_day * age_days
-        taste = habits["policy_taste"][requests["user"][rows]][:, truth.item_topic[pool]]
-        scores = base + params.policy_taste_weight * taste + params.policy_noise * rng.gumbel(size=taste.shape)
+        scores = habits["policy_taste"][requests["user"][rows]][:, truth.item_topic[pool]]
+        scores *= np.float32(params.policy_taste_weight)
+        scores += base.astype(np.float32)
+        uniform = np.maximum(rng.random(scores.shape, dtype=np.float32), np.float32(1e-30))
+        scores -= np.float32(params.policy_noise) * np.log(-np.log(uniform))  # Gumbel(0, policy_noise) noise
         k = min(n_pos, pool.size)
-        top = np.argpartition(-scores, k - 1, axis=1)[:, :k]
-        top = np.take_along_axis(top, np.argsort(-np.take_along_axis(scores, top, axis=1), axis=1), axis=1)
+        top = _top_k_rows(scores, k)
         if k > 1:
             swapped = np.flatnonzero(rng.random(rows.size) < params.swap_probability)
             other = rng.integers(1, k, size=swapped.size)
@@ -253,7 +288,7 @@ def generate_log(params, truth, habits: dict, window: tuple[int, int]) -> dict:
         shown = _show_lists(params, truth, habits, req, pools, window, rng)
         row, col = np.nonzero(shown >= 0)
         item = shown[row, col]
-        d = daypart_codes(req["timestamp"], params.timezone, params.daypart_starts).astype(np.int64)
+        d = daypart_codes(req["timestamp"], params.timezone, params.daypart_starts, params.daypart_labels)
         gamma = 1.0 / (1.0 + np.exp(-relevance_logit(
             truth, req["user"][row], item, d[row], req["device"][row], req["page_tone"][row])))
         clicked = rng.random(item.size) < truth.examination[col] * gamma
@@ -306,10 +341,24 @@ def items_frame(truth) -> pd.DataFrame:
     }).to_pandas()
 
 
+def _packed_key(*keys: np.ndarray) -> np.ndarray:
+    """One int64 per row that sorts like ``keys`` (non-negative ints, most significant first).
+
+    Same order as ``np.lexsort(keys[::-1])``, about three times faster.
+    """
+    packed, shift = np.zeros(keys[0].size, dtype=np.int64), 0
+    for key in reversed(keys):
+        packed |= key.astype(np.int64) << shift
+        shift += max(int(key.max(initial=0)), 1).bit_length()
+    if shift > 63:
+        raise OverflowError(f"The log's sort key needs {shift} bits; at most 63 fit (fewer days or events).")
+    return packed
+
+
 def events_frame(log: dict, truth) -> pd.DataFrame:
     """Impression and click rows in time order; requests numbered chronologically."""
     request = log["request"]
-    used = np.unique(request)
+    used = np.flatnonzero(np.bincount(request, minlength=log["timestamp"].size))
     chronological = used[np.argsort(log["timestamp"][used], kind="stable")]
     number = np.zeros(log["timestamp"].size, dtype=np.int64)
     number[chronological] = np.arange(chronological.size)
@@ -318,7 +367,7 @@ def events_frame(log: dict, truth) -> pd.DataFrame:
     req = request[source]
     timestamp = log["timestamp"][req] + is_click * log["click_delay"][source]
     position = log["position"][source].astype(np.int64)
-    order = np.lexsort((position, is_click, number[req], timestamp))
+    order = np.argsort(_packed_key(timestamp - timestamp.min(), number[req], is_click, position), kind="stable")
     source, is_click, req = source[order], is_click[order], req[order]
     request_labels = id_labels("r", chronological.size, 7)
     return pa.table({

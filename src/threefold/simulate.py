@@ -49,6 +49,7 @@ from typing import Literal, Mapping
 
 import numpy as np
 import pandas as pd
+
 from threefold import _scenario
 from threefold import _scenario_files as _files
 from threefold._checks import check_choice, check_int
@@ -80,11 +81,65 @@ def _default_examination(n_positions: int = 10) -> tuple[float, ...]:
 class ScenarioParameters:
     """Every knob of the demo scenario (JSON-serializable, immutable).
 
-    Shares are relative weights (normalized on use). Tuples indexed by kind
-    follow ``("article", "clip", "audio")``. The planted effects refer to the
-    daypart labels ``"morning"`` and ``"evening"`` and the device ``"mobile"``,
-    which must be among the labels. Use :meth:`scaled` for user and item counts
-    that grow with ``n_events``.
+    Shares are relative weights (normalized on use); tuples indexed by kind
+    follow ``("article", "clip", "audio")``. The defaults equal
+    ``ScenarioParameters.scaled(100_000)``.
+
+    Parameters
+    ----------
+    site_name : str
+        The invented site's name (metadata only).
+    seed : int
+        Seed of every random draw; the same parameters give the same log.
+    n_events : int
+        Target number of log rows (impressions plus clicks).
+    n_users, n_items : int
+        Readers and catalog size (items published over ``prelaunch_days + days``).
+    start : str
+        Local wall time (ISO-8601, no offset) in ``timezone`` at which the log starts.
+    days : int
+        Length of the log in local days.
+    timezone : str
+        IANA zone of the site (a technical setting; the site and its town are invented).
+    prelaunch_days : int
+        Days of publishing before the log starts, so the first lists have items.
+    topics, tones, devices : tuple of str
+        Sections, item / page tones and device levels.
+    tone_shares, device_shares, daypart_shares, kind_shares : tuple of float
+        Site-wide shares; user habits are Dirichlet(``habit_concentration`` · share).
+    long_form_shares : tuple of 3 float
+        Probability that an item of each kind is long-form.
+    lifetime_hours : tuple of 3 float
+        Median lifetime per kind; lifetimes are log-normal with ``lifetime_sigma``.
+    commute_mobile_factor : float
+        How much more likely mobile is in the ``"morning"`` daypart.
+    daypart_labels, daypart_starts : tuple
+        Daypart names and their local start hours (strictly increasing; the last
+        daypart wraps past midnight). Must include ``"morning"`` and ``"evening"``.
+    weekend_activity : float
+        Relative request volume on Saturdays and Sundays.
+    activity_sigma : float
+        Log-normal spread of user activity.
+    n_positions, examination : int, tuple of float
+        List length and the planted examination probability θ_k of each position.
+    swap_probability : float
+        Share of lists whose position 1 is swapped with a random lower position.
+    intercept, quality_sd, taste_sd, latent_rank, latent_sd : float / int
+        Relevance base log-odds, spread of item quality and user topic taste,
+        rank and spread of the latent user / item vectors.
+    shifter_share, shift_strength : float
+        Share of users with a daypart persona, and the persona's strength.
+    audio_commute_boost, long_clip_evening_boost, tone_match : float
+        Planted context effects (log-odds): audio on mobile in the morning,
+        long-form clips in the evening, item tone equal to the page tone.
+    context_jitter_sd : float
+        Spread of the random part of every context table.
+    policy_popularity_weight, policy_taste_weight, policy_taste_noise, \
+policy_freshness_per_day, policy_noise : float
+        The logging policy's score: weights of item quality, of a noisy copy of
+        the topic taste and of age in days, and the Gumbel noise scale.
+    dwell_median_seconds : tuple of 3 (short, long) pairs
+        Median dwell per kind and format; ``dwell_sigma`` is its log-normal spread.
     """
 
     site_name: str = "Quillfen Courier"
@@ -308,7 +363,7 @@ def daypart_of(timestamps, scenario: ScenarioParameters | SiteTruth) -> np.ndarr
     values = np.asarray(timestamps)
     if values.dtype.kind not in "iu":
         values = pd.DatetimeIndex(pd.to_datetime(values, format="ISO8601", utc=True)).as_unit("s").asi8
-    codes = _scenario.daypart_codes(values, scenario.timezone, scenario.daypart_starts)
+    codes = _scenario.daypart_codes(values, scenario.timezone, scenario.daypart_starts, scenario.daypart_labels)
     return np.asarray(scenario.daypart_labels)[codes]
 
 
@@ -375,7 +430,11 @@ def read_truth(out_dir: str | os.PathLike) -> SiteTruth:
     out = Path(out_dir)
     data = _files.read_json(out / "truth.json")
     labels = {k: tuple(data[k]) if isinstance(data[k], list) else data[k] for k in _TRUTH_JSON}
-    return SiteTruth(**labels, **_files.read_arrays(out / "truth.npz"))
+    arrays = _files.read_arrays(out / "truth.npz")
+    missing = sorted({f.name for f in fields(SiteTruth)} - set(_TRUTH_JSON) - set(arrays))
+    if missing:
+        raise ValueError(f"{out / 'truth.npz'} lacks the array(s) {missing}.")
+    return SiteTruth(**labels, **arrays)
 
 
 def read_site(out_dir: str | os.PathLike) -> SimulatedSite:
