@@ -94,6 +94,12 @@ def _core_mode(shape: tuple[int, ...], rank: tuple[int, ...]) -> int:
     return int(np.argmin([shape[n] * total // rank[n] for n in range(len(shape))]))
 
 
+def _weights64(tensor: SparseTensor) -> tuple[np.ndarray, np.ndarray]:
+    """Preference and confidence in float64 (the kernels are compiled for float64 only)."""
+    preference, confidence = tensor.weights()
+    return preference.astype(np.float64, copy=False), confidence.astype(np.float64, copy=False)
+
+
 def update_rows(tensor: SparseTensor, mode: int, core: np.ndarray, factors: Sequence[np.ndarray], reg: float,
                 *, trees: dict | None = None) -> np.ndarray:
     """Solve every row of one mode's weighted system, the core and other factors fixed.
@@ -116,7 +122,7 @@ def update_rows(tensor: SparseTensor, mode: int, core: np.ndarray, factors: Sequ
     grams = [None if m == mode else f.T @ f for m, f in enumerate(factors)]
     base = tensor.w0 * _unfold(core, mode) @ _unfold(_multi_mode(core, grams), mode).T
     base = 0.5 * (base + base.T) + reg * np.eye(core.shape[mode])
-    preference, confidence = tensor.weights()
+    preference, confidence = _weights64(tensor)
     shaped = list(factors)
     shaped[mode] = np.zeros((tensor.shape[mode], core.shape[mode]))
     return implicit_rows(_tree(tensor, mode, trees), tensor.coords, preference, confidence, tensor.w0, core, shaped,
@@ -165,7 +171,7 @@ def update_core(tensor: SparseTensor, core: np.ndarray, factors: Sequence[np.nda
     rank = core.shape
     size = core.size
     grams = [f.T @ f for f in factors]
-    preference, confidence = tensor.weights()
+    preference, confidence = _weights64(tensor)
     w0 = tensor.w0
     if solver == "auto":
         solver = "exact" if size <= CORE_EXACT_ENTRIES and tensor.nnz * size * size <= CORE_EXACT_WORK else "cg"
@@ -175,8 +181,8 @@ def update_core(tensor: SparseTensor, core: np.ndarray, factors: Sequence[np.nda
                              f"{CORE_EXACT_ENTRIES} core entries.")
         system = w0 * _kron_all(grams) + reg * np.eye(size)
         rhs = np.zeros(size)
-        wp = (confidence * preference).astype(np.float64)
-        c = (confidence - w0).astype(np.float64)
+        wp = confidence * preference
+        c = confidence - w0
         block = max(1, (1 << 22) // size)
         for start in range(0, tensor.nnz, block):
             z = _stored_kron_rows(tensor, factors, start, min(start + block, tensor.nnz))
@@ -184,13 +190,13 @@ def update_core(tensor: SparseTensor, core: np.ndarray, factors: Sequence[np.nda
             rhs += z.T @ wp[start:start + block]
         return scipy.linalg.solve(system, rhs, assume_a="pos").reshape(rank)
     tree = _tree(tensor, _core_mode(tensor.shape, rank), trees)
-    c = (confidence - w0).astype(np.float64)
+    c = confidence - w0
 
     def matvec(x: np.ndarray) -> np.ndarray:
         stored = _scatter(tree, tensor, c * evaluate(tree, tensor.coords, x, factors), factors, rank)
         return w0 * _multi_mode(x, grams) + stored + reg * x
 
-    rhs = _scatter(tree, tensor, (confidence * preference).astype(np.float64), factors, rank)
+    rhs = _scatter(tree, tensor, confidence * preference, factors, rank)
     diag = w0 * _kron_all([np.diag(g)[None, :] for g in grams]).reshape(rank) + reg
     diag = diag + _scatter(tree, tensor, c, [f * f for f in factors], rank)
     return _pcg(matvec, rhs, core.astype(np.float64), diag, cg_steps)
@@ -239,9 +245,7 @@ def implicit_loss(tensor: SparseTensor, core: np.ndarray, factors: Sequence[np.n
     """
     grams = [f.T @ f for f in factors]
     tree = _tree(tensor, _core_mode(tensor.shape, core.shape), trees)
-    preference, confidence = tensor.weights()
-    p = preference.astype(np.float64)
-    w = confidence.astype(np.float64)
+    p, w = _weights64(tensor)
     xhat = evaluate(tree, tensor.coords, core, factors)
     error = tensor.w0 * float(np.sum(core * _multi_mode(core, grams)))
     error += float(np.sum(w * (p - xhat) ** 2 - tensor.w0 * xhat * xhat))
@@ -352,9 +356,9 @@ def fit_implicit_tucker(
     check_choice("dtype", np.dtype(dtype), (np.dtype(np.float32), np.dtype(np.float64)), owner=owner)
     if callback is not None and not callable(callback):
         raise ValueError(f"The 'callback' parameter of {owner} must be callable or None. Got {callback!r} instead.")
-    if tensor.evidence is not None:  # weigh the evidence once, not in every block update
-        preference, confidence = tensor.weights()
-        tensor = replace(tensor, evidence=None, stored_preference=preference, stored_confidence=confidence)
+    preference, confidence = _weights64(tensor)  # weigh the evidence once, not in every block update
+    tensor = replace(tensor, evidence=None, dtype=np.dtype(np.float64), stored_preference=preference,
+                     stored_confidence=confidence)
     rng = np.random.default_rng(random_state)
     with fit_threads(n_threads, owner):
         start = time.perf_counter()
