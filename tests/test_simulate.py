@@ -322,3 +322,9 @@ def test_packed_sort_key_orders_rows_like_lexsort():
     rng = np.random.default_rng(4)
     keys = [rng.integers(0, hi, 5_000) for hi in (1_000_000, 40_000, 2, 11)]
     assert_array_equal(np.argsort(_packed_key(*keys), kind="stable"), np.lexsort(keys[::-1]))
+
+
+def test_a_catalog_that_is_never_live_for_an_hour_is_refused():
+    params = ScenarioParameters.scaled(1_000, lifetime_hours=(0.5, 0.5, 0.5), lifetime_sigma=0.0)
+    with pytest.raises(ValueError, match="No item is live for a whole hour.*'lifetime_hours'"):
+        simulate_site(params)

@@ -278,6 +278,9 @@ def generate_log(params, truth, habits: dict, window: tuple[int, int]) -> dict:
     clicked), ``click_delay`` (seconds).
     """
     pools = live_pools(truth, window)
+    if not any(pool.size for pool in pools):
+        raise ValueError("No item is live for a whole hour of the log (plus the click delay), so no list can be "
+                         "shown: raise 'lifetime_hours' or 'n_items' of ScenarioParameters.")
     n_pos = params.n_positions
     dwell_median = np.asarray(params.dwell_median_seconds, dtype=np.float64)  # (kinds, 2): short, long form
     parts, total, block = [], 0, 0
