@@ -303,17 +303,18 @@ def generate_log(params, truth, habits: dict, window: tuple[int, int]) -> dict:
         cum = total + np.cumsum(rows_per_request)
         keep = n if cum[-1] < params.n_events else int(np.searchsorted(cum, params.n_events)) + 1
         kept = row < keep
-        parts.append({
-            "user": req["user"][:keep], "timestamp": req["timestamp"][:keep],
-            "device": req["device"][:keep], "page_tone": req["page_tone"][:keep],
-            "request": row[kept], "item": item[kept], "position": col[kept] + 1, "clicked": clicked[kept],
-            "dwell": np.where(clicked, np.round(dwell, 1), np.nan)[kept], "click_delay": delay[kept].astype(np.int64),
+        parts.append({  # narrow dtypes: a 10-million-row log holds these arrays at once
+            "user": req["user"][:keep].astype(np.int32), "timestamp": req["timestamp"][:keep],
+            "device": req["device"][:keep].astype(np.int8), "page_tone": req["page_tone"][:keep].astype(np.int8),
+            "request": row[kept], "item": item[kept].astype(np.int32), "position": (col[kept] + 1).astype(np.int16),
+            "clicked": clicked[kept], "dwell": np.where(clicked, np.round(dwell, 1), np.nan)[kept],
+            "click_delay": delay[kept].astype(np.int32),
         })
         total = int(cum[keep - 1])
         block += 1
     offsets = np.cumsum([0] + [p["user"].size for p in parts[:-1]])
     out = {key: np.concatenate([p[key] for p in parts]) for key in parts[0] if key != "request"}
-    out["request"] = np.concatenate([p["request"] + o for p, o in zip(parts, offsets)])
+    out["request"] = np.concatenate([(p["request"] + o).astype(np.int32) for p, o in zip(parts, offsets)])
     return out
 
 
@@ -330,7 +331,7 @@ def item_id_labels(kind: np.ndarray) -> np.ndarray:
 
 
 def _take(labels, codes: np.ndarray) -> pa.Array:
-    return pa.array(np.asarray(labels, dtype=object)).take(pa.array(np.asarray(codes, dtype=np.int64)))
+    return pa.array(np.asarray(labels, dtype=object)).take(pa.array(np.asarray(codes)))
 
 
 def items_frame(truth) -> pd.DataFrame:
@@ -363,27 +364,29 @@ def events_frame(log: dict, truth) -> pd.DataFrame:
     request = log["request"]
     used = np.flatnonzero(np.bincount(request, minlength=log["timestamp"].size))
     chronological = used[np.argsort(log["timestamp"][used], kind="stable")]
-    number = np.zeros(log["timestamp"].size, dtype=np.int64)
+    number = np.zeros(log["timestamp"].size, dtype=np.int32)
     number[chronological] = np.arange(chronological.size)
-    source = np.concatenate([np.arange(request.size), np.flatnonzero(log["clicked"])])
-    is_click = np.repeat(np.array([0, 1], dtype=np.int64), [request.size, source.size - request.size])
+    source = np.concatenate([np.arange(request.size, dtype=np.int32), np.flatnonzero(log["clicked"]).astype(np.int32)])
+    is_click = np.repeat(np.array([0, 1], dtype=np.int8), [request.size, source.size - request.size])
     req = request[source]
     timestamp = log["timestamp"][req] + is_click * log["click_delay"][source]
-    position = log["position"][source].astype(np.int64)
-    order = np.argsort(_packed_key(timestamp - timestamp.min(), number[req], is_click, position), kind="stable")
-    source, is_click, req = source[order], is_click[order], req[order]
-    request_labels = id_labels("r", chronological.size, 7)
-    return pa.table({
-        "request_id": _take(request_labels, number[req]),
-        "timestamp": timestamp[order],
+    key = _packed_key(timestamp - timestamp.min(), number[req], is_click, log["position"][source])
+    order = np.argsort(key, kind="stable")
+    del key
+    source, is_click, req, timestamp = source[order], is_click[order], req[order], timestamp[order]
+    del order
+    table = pa.table({
+        "request_id": _take(id_labels("r", chronological.size, 7), number[req]),
+        "timestamp": timestamp,
         "user_id": _take(truth.user_ids, log["user"][req]),
         "item_id": _take(truth.item_ids, log["item"][source]),
         "event": _take(("impression", "click"), is_click),
-        "position": position[order],
+        "position": log["position"][source].astype(np.int64),
         "dwell_seconds": np.where(is_click == 1, log["dwell"][source], np.nan),
         "device": _take(truth.devices, log["device"][req]),
         "page_tone": _take(truth.tones, log["page_tone"][req]),
-    }).to_pandas()
+    })
+    return table.to_pandas(self_destruct=True, split_blocks=True)
 
 
 def check_parameters(params, owner: str) -> None:
