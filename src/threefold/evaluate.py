@@ -1,0 +1,481 @@
+"""The offline evaluation harness: every model ranks the same candidates of the same queries.
+
+:func:`evaluate` takes fitted models (anything implementing
+:class:`threefold.scoring.Scorer`, or a baseline of :mod:`threefold.baselines`)
+and a :class:`~threefold.queries.QuerySet`, scores blocks of queries (``Q Vᵀ + b``
+for factor models), masks the candidates, takes the top K with the shared
+tie rule (lower item index first) and reports, in a tidy DataFrame:
+
+* accuracy at each K: recall, precision, ndcg, map, mrr, hit_rate (and
+  ``ndcg_true`` against a simulator's true relevance), with percentile
+  bootstrap 95% intervals over users, and a paired comparison (bootstrap and
+  Wilcoxon signed-rank) of each model with a chosen baseline;
+* breakdowns by each context mode's level, by user activity (training clicks;
+  ``cold (<=2)``), by item age at the request and by training status of the
+  clicked user and item (``recall`` per clicked item, and the share of clicks);
+* beyond accuracy: coverage, gini, ild_topic, ild_latent, novelty,
+  context-sensitivity (jaccard, kendall) and temporal_diversity;
+* click-through of each ranking, naive, IPS and SNIPS, from the logged clicks
+  and the position propensities (``click_through_true`` on simulated data).
+
+:func:`evaluate_stage` is the usual entry point: it builds the queries of a
+:class:`~threefold.splits.Stage` against the training vocabulary, fits the
+baselines on the stage's events, and runs the rolling protocol
+(:mod:`threefold.rolling`) or the static one. ``docs/evaluation.md`` defines
+every metric.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable, Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+from threefold import _breakdowns as parts, _evaltables as tables
+from threefold._checks import check_choice, check_int, check_number
+from threefold.context import ContextSpec
+from threefold.metrics import graded_ndcg, ranking_metrics
+from threefold.queries import QuerySet, build_queries
+from threefold.scoring import Scorer
+from threefold.splits import Stage
+from threefold.vocabulary import Vocabulary
+
+__all__ = ["ScorerRanker", "EvaluationResult", "evaluate", "evaluate_stage", "as_ranker", "ACCURACY_METRICS"]
+
+#: Accuracy metrics of :class:`threefold.metrics.RankingMetrics`, by their report name.
+ACCURACY_METRICS = {"recall": "recall", "precision": "precision", "ndcg": "ndcg", "map": "average_precision",
+                    "mrr": "reciprocal_rank", "hit_rate": "hit_rate"}
+_BLOCK_CELLS = 1 << 22
+
+
+class _BoundFactors:
+    """Block scorer of a factor model over a query set: ``Q[rows] @ V.T + b``."""
+
+    def __init__(self, query: np.ndarray, items: np.ndarray, bias: np.ndarray | None):
+        self.query = query
+        self.item_factors = items
+        self._items_t = np.ascontiguousarray(items.T)
+        self._bias = bias
+
+    def __call__(self, rows) -> np.ndarray:
+        scores = self.query[rows] @ self._items_t
+        if self._bias is not None:
+            scores += self._bias
+        return scores
+
+
+def model_vocabularies(scorer: Scorer) -> tuple[Vocabulary, ...] | None:
+    """The vocabularies a model was fitted with (its result's), or None."""
+    vocabs = getattr(scorer, "vocabularies", None)
+    if vocabs is None:
+        vocabs = getattr(getattr(scorer, "result_", None), "vocabularies", None)
+    return None if vocabs is None or any(v is None for v in vocabs) else tuple(vocabs)
+
+
+class ScorerRanker:
+    """A fitted :class:`~threefold.scoring.Scorer` ranking a query set's item universe.
+
+    Users outside the model's user vocabulary get a zero query row and items
+    outside its item vocabulary a zero item row (the fold-in of an entity with
+    no events; methods.md section 8), so every candidate gets a finite score.
+    Context levels outside its vocabularies map to ``unknown``.
+
+    Parameters
+    ----------
+    scorer : Scorer
+    vocabularies : sequence of Vocabulary, optional
+        One per mode, named by mode (as the builder names them); default the model's.
+    """
+
+    def __init__(self, scorer: Scorer, *, vocabularies: Sequence[Vocabulary] | None = None):
+        self.scorer = scorer
+        self.vocabularies = vocabularies
+
+    def bind(self, queries: QuerySet) -> _BoundFactors:
+        vocabs = tuple(self.vocabularies) if self.vocabularies is not None else model_vocabularies(self.scorer)
+        if vocabs is None:
+            raise ValueError("ScorerRanker needs the model's vocabularies; pass vocabularies= (e.g. tensor.vocabularies).")
+        users = vocabs[0].encode(queries.users, policy="drop").codes.astype(np.int64)
+        contexts = np.zeros((len(queries), len(vocabs) - 2), dtype=np.int64)
+        for j, vocab in enumerate(vocabs[2:]):
+            if vocab.name not in queries.contexts.columns:
+                raise ValueError(f"The model has the context mode {vocab.name!r}, the queries only "
+                                 f"{list(queries.contexts.columns)}; build the queries with the same contexts.")
+            contexts[:, j] = vocab.encode(queries.contexts[vocab.name], policy="unknown").codes
+        known = users >= 0
+        v = np.asarray(self.scorer.item_matrix())
+        q = np.zeros((len(queries), v.shape[1]), dtype=v.dtype)
+        if known.any():
+            q[known] = self.scorer.query_matrix(users[known], contexts[known] if contexts.shape[1] else None)
+        codes = vocabs[1].encode(np.asarray(queries.items.labels, dtype=object), policy="drop").codes
+        items = np.zeros((queries.n_items, v.shape[1]), dtype=v.dtype)
+        items[codes >= 0] = v[codes[codes >= 0]]
+        bias = self.scorer.item_bias()
+        if bias is not None:
+            aligned = np.zeros(queries.n_items, dtype=v.dtype)
+            aligned[codes >= 0] = np.asarray(bias)[codes[codes >= 0]]
+            bias = aligned
+        return _BoundFactors(q, items, bias)
+
+
+def as_ranker(model: object):
+    """A ranker for the harness: baselines as they are, Scorers wrapped in :class:`ScorerRanker`."""
+    if hasattr(model, "bind"):
+        return model
+    if isinstance(model, Scorer):
+        return ScorerRanker(model)
+    raise TypeError(f"Cannot evaluate a {type(model).__name__}: give a fitted Scorer or a baseline with bind().")
+
+
+@dataclass(frozen=True, eq=False)
+class EvaluationResult:
+    """Everything one evaluation computed.
+
+    Attributes
+    ----------
+    stage : {"validation", "test"}
+    table : DataFrame
+        Tidy rows: model, metric, k, value, low, high, breakdown, level, n_users.
+    comparisons : DataFrame
+        Paired comparison with the baseline: model, baseline, metric, k,
+        mean_difference, low, high, p_value, effect_size, n_users.
+    cold_share : dict
+        Share of the evaluated clicks on users / items unseen at training time.
+    ranked : dict of str to ndarray of shape (q, max(ks)), int64
+        Every model's top-K item indices per query (the query set's universe).
+    report : dict
+    """
+
+    stage: str
+    table: pd.DataFrame
+    comparisons: pd.DataFrame
+    cold_share: dict
+    ranked: dict
+    report: dict = field(default_factory=dict)
+
+    def value(self, model: str, metric: str, k: int | None = None, breakdown: str = "all", level: str = "all") -> float:
+        """One value of the table."""
+        t = self.table
+        sel = (t["model"] == model) & (t["metric"] == metric) & (t["breakdown"] == breakdown) & (t["level"] == level)
+        sel &= t["k"].isna() if k is None else (t["k"] == k)
+        if sel.sum() != 1:
+            raise KeyError(f"No single row for model={model!r}, metric={metric!r}, k={k}, {breakdown}={level!r}.")
+        return float(t.loc[sel, "value"].iloc[0])
+
+    def to_text(self) -> str:
+        """A readable summary: overall accuracy with intervals, the comparisons, the cold share."""
+        lines = [f"stage: {self.stage}   queries: {self.report.get('queries')}   users: {self.report.get('users')}",
+                 tables.text_table(self.table)]
+        if not self.comparisons.empty:
+            c = self.comparisons
+            lines.append("paired comparison with " + str(c["baseline"].iloc[0]) + " (per-user means):")
+            lines.append(c.to_string(index=False, float_format=lambda x: f"{x:.4g}"))
+        if self.cold_share:
+            lines.append("clicks unseen at training: " + ", ".join(f"{k} {v:.1%}" if isinstance(v, float) else f"{k} {v}"
+                                                                   for k, v in self.cold_share.items()))
+        return "\n".join(lines)
+
+
+def _check_schedule(schedule, n_queries: int, names: set) -> list:
+    seen = np.zeros(n_queries, dtype=np.int64)
+    for rows, rankers in schedule:
+        if set(rankers) != names:
+            raise ValueError(f"Every schedule step must rank the same models {sorted(names)}, got {sorted(rankers)}.")
+        np.add.at(seen, np.asarray(rows, dtype=np.int64), 1)
+    if not np.all(seen == 1):
+        raise ValueError("The schedule must cover every query exactly once.")
+    return [(np.asarray(rows, dtype=np.int64), {n: as_ranker(m) for n, m in rankers.items()}) for rows, rankers in schedule]
+
+
+def _binder(schedule, queries: QuerySet):
+    """Bind each step's rankers: shared rankers once to all queries, others to their step's queries."""
+    uses: dict[int, int] = {}
+    for _, rankers in schedule:
+        for r in rankers.values():
+            uses[id(r)] = uses.get(id(r), 0) + 1
+    cache: dict[int, object] = {}
+
+    def bound(rows: np.ndarray, ranker) -> tuple[object, np.ndarray | None]:
+        if uses[id(ranker)] > 1:
+            if id(ranker) not in cache:
+                cache[id(ranker)] = ranker.bind(queries)
+            return cache[id(ranker)], None
+        return ranker.bind(queries.take(rows)), rows
+
+    return bound
+
+
+def _truth_block(true_relevance: Callable, queries: QuerySet, rows: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """Dense (b, n_items) true relevance of every candidate of the block; 0 elsewhere."""
+    b, item = np.nonzero(mask)
+    requests = queries.requests.iloc[rows[b]].reset_index(drop=True)
+    labels = np.asarray(queries.items.labels, dtype=object)[item]
+    out = np.zeros(mask.shape)
+    out[b, item] = np.asarray(true_relevance(requests, labels), dtype=np.float64)
+    return out
+
+
+def _true_gain(ranked: np.ndarray, gamma: np.ndarray, ratios: np.ndarray, ks: tuple[int, ...]) -> np.ndarray:
+    """Σ_{r <= K} γ(ranked item r) · θ̃_r per query, shape (b, len(ks))."""
+    kmax = ranked.shape[1]
+    g = np.where(ranked >= 0, np.take_along_axis(gamma, np.maximum(ranked, 0), axis=1), 0.0)
+    g = g * tables.ratio_at(ratios, np.arange(1, kmax + 1))
+    return np.cumsum(g, axis=1)[:, np.asarray(ks) - 1]
+
+
+def evaluate(
+    models: Mapping[str, object],
+    queries: QuerySet,
+    *,
+    stage: str = "test",
+    ks: Sequence[int] | int = (3, 5, 10),
+    baseline: str | None = None,
+    training_events: pd.DataFrame | None = None,
+    catalog: pd.DataFrame | None = None,
+    propensity=None,
+    propensity_clip: float = 10.0,
+    true_relevance: Callable[[pd.DataFrame, np.ndarray], np.ndarray] | None = None,
+    schedule: Sequence[tuple[np.ndarray, Mapping[str, object]]] | None = None,
+    activity_bins: Sequence[float] = (2, 20),
+    age_bins_hours: Sequence[float] = (1, 6, 24),
+    similarity_model: str | None = None,
+    sensitivity_users: int = 200,
+    n_resamples: int = 1000,
+    random_state: int = 0,
+) -> EvaluationResult:
+    """Rank the queries with every model and compute the metrics, intervals and comparisons.
+
+    Parameters
+    ----------
+    models : mapping of str to fitted Scorer or baseline
+    queries : QuerySet
+    stage : {"validation", "test"}, default="test"
+        Recorded on the result; model selection accepts validation results only.
+    ks : int or sequence of int, default=(3, 5, 10)
+        List lengths (the sizes of typical media modules; common practice).
+    baseline : str or None
+        Name of the model every other model is compared with (paired, per user).
+    training_events : DataFrame or None
+        The stage's training events: user activity, novelty, training status.
+    catalog : DataFrame or None
+        Items catalog: ``topic`` (intra-list diversity by topic), ``published_at`` (item age).
+    propensity : PositionPropensity or ndarray of shape (n_positions,) or None
+        Examination ratios θ_k/θ_1 (from the training events) for the click estimates.
+    propensity_clip : float, default=10.0
+        Largest inverse-propensity weight.
+    true_relevance : callable or None
+        ``f(requests, item_ids) -> γ``, shape (n,): the true relevance of each
+        (request row, item) pair on simulated data (e.g. :func:`simulator_relevance`).
+    schedule : sequence of (rows, models) or None
+        Which models rank which queries (the rolling protocol's steps); default
+        every model ranks every query.
+    activity_bins : sequence of float, default=(2, 20)
+        Upper edges of the user-activity levels in training clicks (the first is "cold").
+    age_bins_hours : sequence of float, default=(1, 6, 24)
+        Upper edges of the item-age levels.
+    similarity_model : str or None
+        Factor model whose item vectors define ``ild_latent`` (default: the first factor model).
+    sensitivity_users : int, default=200
+        Users sampled for context sensitivity (their first query, every level of each mode).
+    n_resamples : int, default=1000
+    random_state : int, default=0
+
+    Returns
+    -------
+    EvaluationResult
+    """
+    check_choice("stage", stage, ("validation", "test"), owner="evaluate")
+    ks = tuple(sorted({check_int("k", k, low=1, owner="evaluate") for k in ((ks,) if np.isscalar(ks) else ks)}))
+    clip = check_number("propensity_clip", propensity_clip, low=1.0, owner="evaluate")
+    rankers = {str(name): as_ranker(m) for name, m in models.items()}
+    if not rankers or (baseline is not None and baseline not in rankers):
+        raise ValueError(f"Give at least one model; the baseline must be one of them (got {baseline!r}, {list(rankers)}).")
+    if len(queries) == 0:
+        raise ValueError("The query set is empty: no request of the window has a clicked candidate.")
+    q, kmax, n_items = len(queries), max(ks), queries.n_items
+    schedule = _check_schedule(schedule or [(np.arange(q), rankers)], q, set(rankers))
+    ratios = None if propensity is None else np.asarray(getattr(propensity, "ratios", propensity), dtype=np.float64)
+    sim_name = similarity_model or next((n for n, r in rankers.items() if isinstance(r, ScorerRanker)), None)
+    ranked = {n: np.full((q, kmax), -1, dtype=np.int64) for n in rankers}
+    truth_ndcg = {n: np.full((q, len(ks)), np.nan) for n in rankers} if true_relevance else None
+    true_gain = {n: np.zeros((q, len(ks))) for n in rankers}
+    true_mass = np.zeros(q)
+    ever = np.zeros(n_items, dtype=bool)
+    sim_factors = None
+    bound = _binder(schedule, queries)
+    block = max(1, _BLOCK_CELLS // max(n_items, 1))
+    for rows, step_rankers in schedule:
+        fns = {n: bound(rows, r) for n, r in step_rankers.items()}
+        for start in range(0, rows.size, block):
+            sel = rows[start:start + block]
+            mask = queries.candidates.mask(sel)
+            ever |= mask.any(axis=0)
+            gamma = _truth_block(true_relevance, queries, sel, mask) if true_relevance else None
+            if gamma is not None:
+                true_mass[sel] = gamma.sum(axis=1)
+            for name, (fn, own_rows) in fns.items():
+                local = sel if own_rows is None else np.arange(start, start + sel.size)
+                ranked[name][sel] = result = parts.rank_block(fn, local, mask, kmax, name)
+                if gamma is not None:
+                    truth_ndcg[name][sel] = graded_ndcg(result, gamma, ks)
+                    if ratios is not None:
+                        true_gain[name][sel] = _true_gain(result, gamma, ratios, ks)
+        factors = getattr(fns[sim_name][0], "item_factors", None) if sim_name else None
+        if factors is not None:
+            sim_factors = factors.copy() if sim_factors is None else np.where(np.any(factors != 0, axis=1)[:, None], factors, sim_factors)
+
+    users, _ = pd.factorize(queries.users)
+    users = users.astype(np.int64)
+    n_users = int(users.max()) + 1
+    opts = {"n_resamples": n_resamples, "random_state": random_state}
+    groups = parts.query_groups(queries, training_events, activity_bins)
+    pair_groups, cold_share = parts.pair_groups(queries, training_events, catalog, age_bins_hours)
+    pair_query, pair_item = tables.relevant_pairs(queries)
+    context_rows = parts.sensitivity_rows(schedule, queries, ks, users, n_users, sensitivity_users, opts)
+    rows_out: list[dict] = []
+    per_query: dict[str, dict[str, np.ndarray]] = {}
+    for name in rankers:
+        metrics = ranking_metrics(ranked[name], queries.relevant, ks)
+        arrays = {m: getattr(metrics, attr) for m, attr in ACCURACY_METRICS.items()}
+        if truth_ndcg is not None:
+            arrays["ndcg_true"] = truth_ndcg[name]
+        per_query[name] = arrays
+        for breakdown, level, mask in groups:
+            for metric, values in arrays.items():
+                for j, k in enumerate(ks):
+                    v = values[:, j] if mask is None else np.where(mask, values[:, j], np.nan)
+                    rows_out.append(tables.row(name, metric, k, tables.interval(v, users, n_users, **opts), breakdown, level))
+        rank = tables.rank_of(ranked[name], pair_query, pair_item)
+        for breakdown, level, mask in pair_groups:
+            for k in ks:
+                hit = np.where(mask, ((rank >= 1) & (rank <= k)).astype(np.float64), np.nan)
+                rows_out.append(tables.row(name, "recall", k, tables.interval(hit, users[pair_query], n_users, **opts),
+                                           breakdown, level))
+        rows_out += parts.beyond_rows(name, ranked[name], queries, ks, users, n_users, ever, catalog, training_events,
+                                 sim_factors, opts)
+        if ratios is not None:
+            rows_out += tables.click_rows(name, ranked[name], queries, users, n_users, ratios, ks, clip, **opts)
+            if true_relevance is not None and queries.candidates.kind == "shown":
+                for j, k in enumerate(ks):
+                    stats = tables.interval(true_gain[name][:, j], users, n_users, denominators=true_mass, **opts)
+                    rows_out.append(tables.row(name, "click_through_true", k, stats))
+        rows_out += [r for r in context_rows if r["model"] == name]
+    if cold_share:
+        for level in ("new_user", "new_item", "new_user_or_item"):
+            stats = (cold_share[level], np.nan, np.nan, n_users)
+            rows_out += [tables.row(n, "click_share", None, stats, "training_status", level) for n in rankers]
+    comparisons = []
+    if baseline is not None:
+        for name in rankers:
+            if name == baseline:
+                continue
+            for metric, values in per_query[name].items():
+                for j, k in enumerate(ks):
+                    result = tables.compare(values[:, j], per_query[baseline][metric][:, j], users, n_users, **opts)
+                    if result is not None:
+                        comparisons.append({"model": name, "baseline": baseline, "metric": metric, "k": k, **result})
+    table = pd.DataFrame(rows_out, columns=tables.ROW_COLUMNS)
+    table["k"] = table["k"].astype("Int64")
+    report = {**queries.report, "queries": q, "users": n_users, "steps": len(schedule),
+              "candidate_items": int(ever.sum())}
+    return EvaluationResult(stage=stage, table=table, comparisons=pd.DataFrame(comparisons, columns=tables.COMPARISON_COLUMNS),
+                            cold_share=cold_share, ranked=ranked, report=report)
+
+
+def simulator_relevance(truth) -> Callable[[pd.DataFrame, np.ndarray], np.ndarray]:
+    """True relevance of a simulated site as the harness's ``true_relevance`` callable.
+
+    Parameters
+    ----------
+    truth : threefold.simulate.SiteTruth
+
+    Returns
+    -------
+    callable
+        ``f(requests, item_ids)``: the daypart from each request's timestamp in
+        the scenario's timezone, ``device`` and ``page_tone`` from its columns.
+    """
+    from threefold.simulate import daypart_of, true_relevance
+
+    def relevance(requests: pd.DataFrame, item_ids: np.ndarray) -> np.ndarray:
+        contexts = {"daypart": daypart_of(requests["timestamp"].to_numpy(dtype=np.int64), truth),
+                    "device": requests["device"].to_numpy(dtype=object),
+                    "page_tone": requests["page_tone"].to_numpy(dtype=object)}
+        return true_relevance(truth, requests["user_id"].to_numpy(dtype=object), item_ids, contexts)
+
+    return relevance
+
+
+def evaluate_stage(
+    stage: Stage,
+    models: Mapping[str, object],
+    contexts: Sequence[ContextSpec] = (),
+    *,
+    candidates: str = "eligible",
+    catalog: pd.DataFrame | None = None,
+    protocol: str = "rolling",
+    step: int | str = "1h",
+    build_options: Mapping | None = None,
+    propensity="estimate",
+    **options,
+) -> EvaluationResult:
+    """Evaluate fitted models on one stage of a split.
+
+    Builds the stage's queries against the training item vocabulary, fits the
+    baselines (objects with ``fit`` and ``bind``) on the stage's events (each
+    request counts only earlier clicks), estimates the position propensities
+    from the training events, and runs :func:`evaluate` under the chosen protocol.
+
+    Parameters
+    ----------
+    stage : Stage
+        From :meth:`EventSplit.selection_stage` or :meth:`EventSplit.final_stage`.
+    models : mapping of str to model
+        Factor models fitted on ``stage.train_tensor(contexts, **build_options)``, and baselines.
+    contexts : sequence of ContextSpec
+        The context modes of the models' tensors.
+    candidates : {"eligible", "shown"}, default="eligible"
+    catalog : DataFrame or None
+    protocol : {"rolling", "static"}, default="rolling"
+        ``"rolling"`` folds in new users and items before each step
+        (:mod:`threefold.rolling`); ``"static"`` ranks with the trained models only.
+    step : int or str, default="1h"
+        Step of the rolling protocol.
+    build_options : mapping or None
+        Options the training tensor was built with (its weighting is needed for fold-in).
+    propensity : "estimate", PositionPropensity, ndarray or None, default="estimate"
+        ``"estimate"``: from the training events when they hold positions and
+        request ids (else no click estimates).
+    **options
+        Passed to :func:`evaluate` (``ks``, ``baseline``, ``true_relevance``, ...).
+
+    Returns
+    -------
+    EvaluationResult
+    """
+    from threefold.propensity import estimate_position_propensity
+    from threefold.rolling import rolling_schedule
+
+    check_choice("protocol", protocol, ("rolling", "static"), owner="evaluate_stage")
+    items = Vocabulary.from_values(stage.train["item_id"].dropna().astype(str), name="item")
+    queries = build_queries(stage.evaluate, contexts, candidates=candidates, catalog=catalog, item_vocabulary=items,
+                            history=stage.train)
+    history = pd.concat([stage.train, stage.evaluate], ignore_index=True)
+    for model in models.values():
+        if hasattr(model, "bind") and hasattr(model, "fit") and not isinstance(model, Scorer):
+            model.fit(history, contexts)
+    if isinstance(propensity, str):
+        check_choice("propensity", propensity, ("estimate",), owner="evaluate_stage")
+        needed = {"event", "position", "request_id"}
+        propensity = estimate_position_propensity(stage.train) if needed <= set(stage.train.columns) else None
+    schedule, extra = None, {"protocol": protocol}
+    if protocol == "rolling":
+        schedule, rolling_report = rolling_schedule(stage, queries, models, contexts, step=step,
+                                                    build_options=build_options)
+        extra.update(rolling_report)
+    result = evaluate(models, queries, stage=stage.name, training_events=stage.train, catalog=catalog,
+                      propensity=propensity, schedule=schedule, **options)
+    result.report.update(extra, dropped_straddling_requests=stage.dropped_requests)
+    return result
