@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
@@ -295,3 +296,34 @@ def test_text_report_names_columns_and_rows(tmp_path):
         validate_events(tmp_path / "e.csv", chunk_rows=0)
     with pytest.raises(FileNotFoundError, match="No such file or folder"):
         validate_events(tmp_path / "absent.csv")
+
+
+def test_hash_tables_match_python_sets_and_dicts():
+    # Slow reference: Python's set and dict over the same keys, through several
+    # table growths and with the reserved key 0 (stored as 1).
+    from threefold._hashing import HashCounter, HashSet
+
+    rng = np.random.default_rng(5)
+    table, counter, seen, counts, minima = HashSet(), HashCounter(), set(), {}, {}
+    for start in range(0, 6000, 1500):
+        keys = rng.integers(2, 3000, 1500).astype(np.uint64)
+        keys[:3] = [0, 0, 7]
+        values = np.arange(start, start + 1500)
+        repeats = table.mark_repeats(keys)
+        expected = []
+        for k, v in zip(keys.tolist(), values.tolist()):
+            k = k or 1
+            expected.append(k in seen)
+            seen.add(k)
+            counts[k] = counts.get(k, 0) + 1
+            minima[k] = min(minima.get(k, v), v)
+        assert repeats.tolist() == expected
+        counter.add(keys, values)
+    assert len(table) == len(seen) == len(counter)
+    probe = np.arange(0, 3100, dtype=np.uint64)
+    assert table.contains(probe).tolist() == [(k or 1) in seen for k in probe.tolist()]
+    found, low = counter.lookup(probe)
+    assert found.tolist() == [(k or 1) in counts for k in probe.tolist()]
+    assert low[found].tolist() == [minima[k or 1] for k in probe[found].tolist()]
+    got_counts, _ = counter.items()
+    assert sorted(got_counts.tolist()) == sorted(counts.values())

@@ -3,24 +3,29 @@
 The event-log scanners read a log chunk by chunk and must give results that do
 not depend on the chunk size: a duplicate row, a user id or a (request, item)
 key seen in one chunk must be recognized in every later one. They keep 64-bit
-hashes of those values in sorted numpy arrays (8 bytes per distinct key) instead
-of Python sets of the values.
+hashes of those values in open-addressing hash tables (numpy arrays probed by
+numba-compiled loops, linear probing, load factor kept between 0.35 and 0.7:
+12 to 23 bytes per distinct key and per stored 8-byte field) instead of Python
+sets of the values, which would take about 60 bytes per key more.
 
 Hashes are deterministic functions of the values (pandas' ``hash_array`` with
 its fixed key, mixed with the SplitMix64 finalizer), so the same value gets the
 same hash in every chunk, file format and process. Two different values share a
 hash with probability about ``2**-64``; among ``n`` distinct values the chance of
-any collision is about ``n**2 / 2**65`` (3e-6 for ten million values).
+any collision is about ``n**2 / 2**65`` (3e-6 for ten million values). The hash
+0 marks an empty slot, so a key hashing to 0 is stored as 1 (one more collision
+pair of the same negligible probability).
 """
 
 from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from numba import njit
 import pyarrow as pa
 import pyarrow.compute as pc
 
-__all__ = ["encode_strings", "hash_dictionary", "hash_strings", "hash_numbers", "combine", "SortedHashSet", "HashCounter"]
+__all__ = ["encode_strings", "hash_dictionary", "hash_strings", "hash_numbers", "combine", "HashSet", "HashCounter"]
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _M1 = np.uint64(0xBF58476D1CE4E5B9)
@@ -78,99 +83,147 @@ def hash_numbers(values: np.ndarray) -> np.ndarray:
         return _mix(pd.util.hash_array(values, categorize=False))
 
 
-def _sorted_unique(keys: np.ndarray) -> np.ndarray:
-    """Sorted distinct values (sort-based: faster than hashing for many distinct uint64 keys)."""
-    ordered = np.sort(keys)
-    keep = np.ones(ordered.size, dtype=bool)
-    keep[1:] = ordered[1:] != ordered[:-1]
-    return ordered[keep]
+@njit(cache=True, nogil=True)
+def _slot(table: np.ndarray, key: np.uint64) -> int:
+    """Slot holding ``key``, or the empty slot where it would go (linear probing)."""
+    mask = np.uint64(table.size - 1)
+    one = np.uint64(1)
+    j = key & mask
+    while table[j] != 0 and table[j] != key:
+        j = (j + one) & mask
+    return np.int64(j)
 
 
-def _merge_sorted(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Sorted union of two sorted unique uint64 arrays."""
-    if a.size == 0:
-        return b
-    merged = np.concatenate([a, b])
-    merged.sort(kind="stable")  # timsort: two sorted runs merge in linear time
-    keep = np.ones(merged.size, dtype=bool)
-    keep[1:] = merged[1:] != merged[:-1]
-    return merged[keep]
+@njit(cache=True, nogil=True)
+def _insert(table: np.ndarray, keys: np.ndarray, is_new: np.ndarray) -> int:
+    """Insert keys in order; ``is_new[i]`` tells whether key i was absent before. Returns the number added."""
+    added = 0
+    for i in range(keys.size):
+        key = keys[i] if keys[i] != 0 else np.uint64(1)
+        j = _slot(table, key)
+        is_new[i] = table[j] == 0
+        if is_new[i]:
+            table[j] = key
+            added += 1
+    return added
 
 
-class SortedHashSet:
-    """A growing set of uint64 hashes kept as one sorted unique array (8 bytes per key)."""
+@njit(cache=True, nogil=True)
+def _count(table: np.ndarray, counts: np.ndarray, minima: np.ndarray, keys: np.ndarray, values: np.ndarray) -> int:
+    """Count keys and keep the smallest value per key. Returns the number of keys added."""
+    added = 0
+    for i in range(keys.size):
+        key = keys[i] if keys[i] != 0 else np.uint64(1)
+        j = _slot(table, key)
+        if table[j] == 0:
+            table[j] = key
+            counts[j] = 0
+            minima[j] = values[i]
+            added += 1
+        counts[j] += 1
+        if values[i] < minima[j]:
+            minima[j] = values[i]
+    return added
+
+
+@njit(cache=True, nogil=True)
+def _find(table: np.ndarray, keys: np.ndarray, found: np.ndarray, slots: np.ndarray) -> None:
+    for i in range(keys.size):
+        key = keys[i] if keys[i] != 0 else np.uint64(1)
+        j = _slot(table, key)
+        found[i] = table[j] != 0
+        slots[i] = j
+
+
+class HashSet:
+    """A growing set of uint64 hashes (open addressing, about 12-23 bytes per key)."""
 
     def __init__(self) -> None:
-        self.values = np.empty(0, dtype=np.uint64)
+        self.table = np.zeros(1024, dtype=np.uint64)
+        self.size = 0
 
     def __len__(self) -> int:
-        return int(self.values.size)
+        return self.size
+
+    def _fields(self) -> tuple[np.ndarray, ...]:
+        return ()
+
+    def _reserve(self, extra: int) -> None:
+        """Grow (doubling, rehashing every field) so that the load stays at most 0.7."""
+        capacity = self.table.size
+        while (self.size + extra) > 0.7 * capacity:
+            capacity *= 2
+        if capacity == self.table.size:
+            return
+        filled = self.table != 0
+        old = [f[filled] for f in self._fields()]
+        keys = self.table[filled]
+        self.table = np.zeros(capacity, dtype=np.uint64)
+        _insert(self.table, keys, np.empty(keys.size, dtype=np.bool_))
+        if old:
+            found, slots = self._lookup_slots(keys)
+            for name, values in zip(self._field_names(), old):
+                grown = np.zeros(capacity, dtype=values.dtype)
+                grown[slots] = values
+                setattr(self, name, grown)
+
+    def _field_names(self) -> tuple[str, ...]:
+        return ()
+
+    def _lookup_slots(self, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        keys = np.ascontiguousarray(keys, dtype=np.uint64)
+        found = np.empty(keys.size, dtype=np.bool_)
+        slots = np.empty(keys.size, dtype=np.int64)
+        _find(self.table, keys, found, slots)
+        return found, slots
 
     def contains(self, keys: np.ndarray) -> np.ndarray:
-        """Boolean mask of shape (n,): which keys are already in the set."""
-        if self.values.size == 0 or keys.size == 0:
-            return np.zeros(keys.shape, dtype=bool)
-        pos = np.searchsorted(self.values, keys)
-        pos[pos == self.values.size] = 0
-        return self.values[pos] == keys
+        """Boolean mask of shape (n,): which keys are in the set."""
+        return self._lookup_slots(keys)[0]
+
+    def mark_repeats(self, keys: np.ndarray) -> np.ndarray:
+        """Insert keys in order; mask of those seen before (in the set or earlier in ``keys``)."""
+        keys = np.ascontiguousarray(keys, dtype=np.uint64)
+        self._reserve(keys.size)
+        is_new = np.empty(keys.size, dtype=np.bool_)
+        self.size += _insert(self.table, keys, is_new)
+        return ~is_new
 
     def add(self, keys: np.ndarray) -> None:
         """Insert keys (any order, repeats allowed)."""
-        if keys.size:
-            self.values = _merge_sorted(self.values, _sorted_unique(keys))
-
-    def mark_repeats(self, keys: np.ndarray) -> np.ndarray:
-        """Mask of keys seen before (in the set, or earlier in ``keys``); then add them all."""
-        seen = self.contains(keys)
-        seen |= pd.Series(keys).duplicated().to_numpy()
-        self.add(keys[~seen])
-        return seen
+        self.mark_repeats(keys)
 
 
-class HashCounter:
-    """Occurrence count and smallest attached value per uint64 key, merged chunk by chunk.
+class HashCounter(HashSet):
+    """Occurrence count and smallest attached value per uint64 key.
 
-    Attributes
-    ----------
-    keys : ndarray of shape (n_keys,), uint64, sorted
-    counts : ndarray of shape (n_keys,), int64
-    minima : ndarray of shape (n_keys,), int64
-        Smallest value given with each key (e.g. its first row number, or its
-        earliest timestamp).
+    ``counts`` and ``minima`` (int64) are aligned with the slots of ``table``;
+    :meth:`items` returns the filled ones.
     """
 
     def __init__(self) -> None:
-        self.keys = np.empty(0, dtype=np.uint64)
-        self.counts = np.empty(0, dtype=np.int64)
-        self.minima = np.empty(0, dtype=np.int64)
+        super().__init__()
+        self.counts = np.zeros(self.table.size, dtype=np.int64)
+        self.minima = np.zeros(self.table.size, dtype=np.int64)
 
-    def __len__(self) -> int:
-        return int(self.keys.size)
+    def _fields(self) -> tuple[np.ndarray, ...]:
+        return (self.counts, self.minima)
 
-    @staticmethod
-    def _reduce(keys: np.ndarray, counts: np.ndarray, values: np.ndarray, order: np.ndarray):
-        keys = keys[order]
-        starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]])
-        return keys[starts], np.add.reduceat(counts[order], starts), np.minimum.reduceat(values[order], starts)
+    def _field_names(self) -> tuple[str, ...]:
+        return ("counts", "minima")
 
     def add(self, keys: np.ndarray, values: np.ndarray) -> None:
         """Count each occurrence of each key; ``values`` (int, shape (n,)) go into the per-key minimum."""
-        if keys.size == 0:
-            return
-        values = np.asarray(values, dtype=np.int64)
-        ones = np.ones(keys.size, dtype=np.int64)
-        uniq, counts, minima = self._reduce(keys, ones, values, np.argsort(keys, kind="stable"))
-        all_keys = np.concatenate([self.keys, uniq])
-        order = np.argsort(all_keys, kind="stable")  # two sorted runs: linear merge
-        self.keys, self.counts, self.minima = self._reduce(
-            all_keys, np.concatenate([self.counts, counts]), np.concatenate([self.minima, minima]), order
-        )
+        keys = np.ascontiguousarray(keys, dtype=np.uint64)
+        self._reserve(keys.size)
+        self.size += _count(self.table, self.counts, self.minima, keys, np.ascontiguousarray(values, dtype=np.int64))
+
+    def items(self) -> tuple[np.ndarray, np.ndarray]:
+        """Counts and minima of every key (int64 arrays of shape (n_keys,), in slot order)."""
+        filled = self.table != 0
+        return self.counts[filled], self.minima[filled]
 
     def lookup(self, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """For each key: whether it is present (bool) and its minimum (int64, 0 when absent)."""
-        if self.keys.size == 0:
-            return np.zeros(keys.shape, dtype=bool), np.zeros(keys.shape, dtype=np.int64)
-        pos = np.searchsorted(self.keys, keys)
-        pos[pos == self.keys.size] = 0
-        found = self.keys[pos] == keys
-        return found, np.where(found, self.minima[pos], 0)
+        found, slots = self._lookup_slots(keys)
+        return found, np.where(found, self.minima[slots], 0)

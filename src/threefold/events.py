@@ -30,8 +30,8 @@ import pyarrow.compute as pc
 
 from threefold._checks import check_choice, check_int
 from threefold._eventscan import (
-    DROP_REASONS, EVENT_VALUES, ITEM_TIME_COLUMNS, REQUIRED_COLUMNS, EventChunk, ProblemTally, scan_events,
-    scan_items,
+    DROP_REASONS, EVENT_VALUES, ITEM_TIME_COLUMNS, REQUIRED_COLUMNS, RESERVED_COLUMNS, EventChunk, ProblemTally,
+    scan_events, scan_items,
 )
 from threefold._logreader import LogSource, open_source
 from threefold._timestamps import check_timezone
@@ -41,8 +41,8 @@ __all__ = [
     "iter_event_chunks", "load_events", "load_items", "pseudonymize_ids", "activity_outlier_threshold",
 ]
 
-#: Rows per chunk when reading a log (about 100-200 MB of transient memory).
-DEFAULT_CHUNK_ROWS = 1_000_000
+#: Rows per chunk when reading a log (about 100-200 MB of transient memory for a typical log).
+DEFAULT_CHUNK_ROWS = 250_000
 
 #: Problems that make :func:`load_events` refuse a log unless ``errors="drop"``.
 _LOAD_ERRORS = (
@@ -70,7 +70,7 @@ def iter_event_chunks(
     ----------
     path : str or path-like
         A CSV file, a Parquet file, or a folder of Parquet files.
-    chunk_rows : int, default=1_000_000
+    chunk_rows : int, default=250_000
         Rows per chunk (the last chunk may be shorter); memory is bounded by it.
     columns : sequence of str or None
         Columns to read (default: all).
@@ -163,27 +163,33 @@ def activity_outlier_threshold(counts: np.ndarray, min_events: int = 100, n_mads
     return float(max(min_events, 10.0 ** (median + n_mads * scale)))
 
 
-def _frame(chunk: EventChunk, key: bytes | None, context_columns: Sequence[str] | None) -> pd.DataFrame:
+def _schema(source: LogSource, context_columns: Sequence[str] | None) -> pa.Schema:
+    """Columns and Arrow types of the loaded frame, in the documented order."""
+    text, fields = pa.large_string(), [("user_id", pa.large_string()), ("item_id", pa.large_string()),
+                                       ("timestamp", pa.int64()), ("event", pa.large_string())]
+    fields += [(c, pa.float64()) for c in ("dwell_seconds", "position") if c in source.columns]
+    fields += [("request_id", text)] if "request_id" in source.columns else []
+    fields += [(c, text) for c in source.columns if c not in RESERVED_COLUMNS
+               and (context_columns is None or c in context_columns)]
+    return pa.schema(fields)
+
+
+def _table(chunk: EventChunk, key: bytes | None, schema: pa.Schema) -> pa.Table:
+    """The kept rows of a chunk as an Arrow table of the loaded frame's schema."""
     keep = chunk.keep
     take = pa.array(np.flatnonzero(keep))
     user = chunk.user_id.take(take)
-    columns: dict[str, object] = {
-        "user_id": (_pseudonymize(user, key) if key is not None else user).to_pandas(),
-        "item_id": chunk.item_id.take(take).to_pandas(),
+    columns = {
+        "user_id": _pseudonymize(user, key) if key is not None else user,
+        "item_id": chunk.item_id.take(take),
         "timestamp": chunk.timestamp[keep],
-        "event": pa.DictionaryArray.from_arrays(pa.array(chunk.event[keep]), pa.array(EVENT_VALUES))
-        .cast(pa.string()).to_pandas(),
+        "event": pa.DictionaryArray.from_arrays(pa.array(chunk.event[keep]), pa.array(EVENT_VALUES)),
+        "dwell_seconds": None if chunk.dwell is None else chunk.dwell[keep],
+        "position": None if chunk.position is None else chunk.position[keep],
+        "request_id": None if chunk.request_id is None else chunk.request_id.take(take),
     }
-    if chunk.dwell is not None:
-        columns["dwell_seconds"] = chunk.dwell[keep]
-    if chunk.position is not None:
-        columns["position"] = chunk.position[keep]
-    if chunk.request_id is not None:
-        columns["request_id"] = chunk.request_id.take(take).to_pandas()
-    for name, values in chunk.context.items():
-        if context_columns is None or name in context_columns:
-            columns[name] = values.take(take).to_pandas()
-    return pd.DataFrame(columns)
+    arrays = [pa.array(columns[f.name]) if f.name in columns else chunk.context[f.name].take(take) for f in schema]
+    return pa.Table.from_arrays([a.cast(f.type) for a, f in zip(arrays, schema)], schema=schema)
 
 
 def load_events(
@@ -207,7 +213,7 @@ def load_events(
         offset; without it such timestamps are errors. Daylight-saving folds and
         gaps are read with the offset in force before the change (see
         ``docs/data-format.md``).
-    chunk_rows : int, default=1_000_000
+    chunk_rows : int, default=250_000
         Rows parsed at a time; the result does not depend on it.
     hash_user_ids_salt : str, bytes or None
         When given, every ``user_id`` is replaced by
@@ -260,12 +266,13 @@ def load_events(
         if unknown:
             raise ValueError(f"{source.path}: no context column(s) {unknown}; the file has {source.columns}.")
     refused = [k for k in _LOAD_ERRORS if zone is None or k[0] != "naive_timestamp"]
-    frames, tally = [], ProblemTally(keep_rows=5)
+    schema = _schema(source, context_columns)
+    tables, tally = [], ProblemTally(keep_rows=5)
     dropped = np.zeros(len(DROP_REASONS) + 1, dtype=np.int64)
     for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows):
         tally.add_flags({k: m for k, m in chunk.flags.items() if k in refused}, chunk.rows)
         dropped += np.bincount(chunk.drop, minlength=dropped.size)
-        frames.append(_frame(chunk, key, context_columns))
+        tables.append(_table(chunk, key, schema))
     counts = tally.counts
     if counts and errors == "raise":
         code, column = min(counts, key=lambda k: tally.rows[k][0])
@@ -274,7 +281,9 @@ def load_events(
             f"(first rows {tally.rows[(code, column)]}); {len(counts)} kind(s) of problem in all. "
             "Run `threefold validate` for the full report, or pass errors='drop' to drop and count them."
         )
-    frame = pd.concat(frames, ignore_index=True) if frames else _empty_frame(source, context_columns)
+    # One conversion at the end: pandas string columns keep the Arrow chunks (no copy of the text).
+    frame = pa.concat_tables(tables).to_pandas() if tables else schema.empty_table().to_pandas()
+    del tables
     reasons = {r: int(dropped[1 + k]) for k, r in enumerate(DROP_REASONS) if dropped[1 + k]}
     if drop_activity_outliers and len(frame):
         per_user = frame["user_id"].value_counts()
@@ -296,19 +305,6 @@ def load_events(
     return frame
 
 
-def _empty_frame(source: LogSource, context_columns: Sequence[str] | None) -> pd.DataFrame:
-    columns: dict[str, object] = {"user_id": pd.Series([], dtype="str"), "item_id": pd.Series([], dtype="str"),
-                                  "timestamp": np.empty(0, np.int64), "event": pd.Series([], dtype="str")}
-    for name in ("dwell_seconds", "position"):
-        if name in source.columns:
-            columns[name] = np.empty(0, np.float64)
-    for name in source.columns:
-        if name not in columns and name not in REQUIRED_COLUMNS and name != "event":
-            if name == "request_id" or context_columns is None or name in context_columns:
-                columns[name] = pd.Series([], dtype="str")
-    return pd.DataFrame(columns)
-
-
 def load_items(
     path: str | os.PathLike, *, timezone: str | None = None, chunk_rows: int = DEFAULT_CHUNK_ROWS
 ) -> pd.DataFrame:
@@ -320,7 +316,7 @@ def load_items(
         CSV, Parquet file or Parquet folder with an ``item_id`` column.
     timezone : str or None
         Zone of ``published_at`` / ``expires_at`` values written without offset.
-    chunk_rows : int, default=1_000_000
+    chunk_rows : int, default=250_000
 
     Returns
     -------

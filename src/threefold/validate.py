@@ -9,11 +9,12 @@ exactly what :func:`threefold.events.load_events` drops or clears.
 Chunk-size independence. Everything that relates rows to each other is kept
 across chunks as 64-bit hashes (see ``threefold._hashing``): the kept rows
 (duplicates), the users with their event counts and first rows, the items, the
-requests, the (request, item) and (user, item) keys of impressions, and the
-keys of clicks, which are matched against impressions once the whole log has
-been read. The report is the same for any chunk size. Memory grows by about
-8 bytes per kept row, 16 per distinct user, 8 per distinct item or request, 8
-to 24 per impression key and 24 per click, on top of one chunk.
+requests, the (request, item) keys and the (user, item) keys and times of
+impressions, and the keys of clicks, which are matched against impressions once
+the whole log has been read. The report is the same for any chunk size. Memory grows by about
+12-23 bytes per distinct kept row, per distinct item, request and (request,
+item) impression key, 35-70 per distinct user, 16 per impression (its
+(user, item) key and time) and 24 per click, on top of one chunk.
 """
 
 from __future__ import annotations
@@ -30,7 +31,7 @@ from threefold._checks import check_int
 from threefold._eventscan import (
     DROP_REASONS, EVENT_VALUES, REQUIRED_COLUMNS, EventChunk, ProblemTally, scan_events, scan_items,
 )
-from threefold._hashing import HashCounter, SortedHashSet, combine
+from threefold._hashing import HashCounter, HashSet, combine
 from threefold._logreader import open_source
 from threefold._report import Problem, ValidationReport, describe, iso_utc
 from threefold._timestamps import check_timezone
@@ -49,19 +50,20 @@ _CLICK, _IMPRESSION = EVENT_VALUES.index("click"), EVENT_VALUES.index("impressio
 class _EventStats:
     """Summary statistics and cross-row checks accumulated over the chunks of one log."""
 
-    def __init__(self, now: int, catalog: SortedHashSet | None) -> None:
+    def __init__(self, now: int, catalog: HashSet | None) -> None:
         self.now, self.catalog = now, catalog
         self.tally = ProblemTally()
         self.dropped = np.zeros(len(DROP_REASONS) + 1, dtype=np.int64)
         self.events = np.zeros(len(EVENT_VALUES), dtype=np.int64)
         self.time_range = [None, None]
-        self.users, self.items, self.requests = HashCounter(), SortedHashSet(), SortedHashSet()
-        self.missing_items = SortedHashSet()
+        self.users, self.items, self.requests = HashCounter(), HashSet(), HashSet()
+        self.missing_items = HashSet()
         self.positions: dict[int, np.ndarray] = {}
         self.coverage: dict[str, int] = {}
         self.levels: dict[str, set] = {}
         self.unknown_events: dict[str, int] = {}
-        self.shown_in_request, self.shown_to_user = SortedHashSet(), HashCounter()
+        self.shown_in_request = HashSet()
+        self.shown_to_user: list[tuple[np.ndarray, np.ndarray]] = []
         self.clicks_by_request: list[tuple[np.ndarray, np.ndarray]] = []
         self.clicks_by_user: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
         self.has_request = False
@@ -121,7 +123,7 @@ class _EventStats:
             self.shown_in_request.add(request_item[shown & has_request])
             by_request = clicked & has_request
             self.clicks_by_request.append((request_item[by_request], krows[by_request]))
-        self.shown_to_user.add(user_item[shown], ts[shown])
+        self.shown_to_user.append((user_item[shown], ts[shown]))
         by_user = clicked & ~by_request
         self.clicks_by_user.append((user_item[by_user], ts[by_user], krows[by_user]))
 
@@ -131,15 +133,20 @@ class _EventStats:
         if self.clicks_by_request:
             keys = np.concatenate([c[0] for c in self.clicks_by_request])
             rows.append(np.concatenate([c[1] for c in self.clicks_by_request])[~self.shown_in_request.contains(keys)])
-        if self.clicks_by_user:
-            keys = np.concatenate([c[0] for c in self.clicks_by_user])
+        keys = np.concatenate([c[0] for c in self.clicks_by_user])
+        if keys.size:
             when = np.concatenate([c[1] for c in self.clicks_by_user])
-            found, first_shown = self.shown_to_user.lookup(keys)
-            rows.append(np.concatenate([c[2] for c in self.clicks_by_user])[~(found & (first_shown <= when))])
+            wanted, first_shown = HashSet(), HashCounter()
+            wanted.add(keys)
+            for shown, at in self.shown_to_user:  # earliest impression of each clicked (user, item)
+                relevant = wanted.contains(shown)
+                first_shown.add(shown[relevant], at[relevant])
+            found, earliest = first_shown.lookup(keys)
+            rows.append(np.concatenate([c[2] for c in self.clicks_by_user])[~(found & (earliest <= when))])
         return np.sort(np.concatenate(rows)) if rows else np.empty(0, dtype=np.int64)
 
 
-def _catalog(path, zone, chunk_rows: int, problems: list[Problem]) -> tuple[SortedHashSet | None, dict]:
+def _catalog(path, zone, chunk_rows: int, problems: list[Problem]) -> tuple[HashSet | None, dict]:
     """Scan an items catalog; its problems are appended to ``problems``."""
     source = open_source(path)
     summary = {"source": source.path, "format": source.kind, "columns": source.columns}
@@ -148,7 +155,7 @@ def _catalog(path, zone, chunk_rows: int, problems: list[Problem]) -> tuple[Sort
         code = "missing_column" if absent else "bad_id_type"
         problems.append(describe(code, "item_id", 0, (), source="items"))
         return None, summary
-    items, tally, rows = SortedHashSet(), ProblemTally(), 0
+    items, tally, rows = HashSet(), ProblemTally(), 0
     for chunk in scan_items(source, zone=zone, chunk_rows=chunk_rows):
         tally.add_flags(chunk.flags, chunk.first_row + np.arange(chunk.keep.size))
         items.add(chunk.item_hash[chunk.keep])
@@ -181,7 +188,7 @@ def validate_events(
     timezone : str or None
         IANA zone of timestamps written without a UTC offset (they are errors
         without it).
-    chunk_rows : int, default=1_000_000
+    chunk_rows : int, default=250_000
         Rows read at a time; the report does not depend on it.
     strict : bool, default=False
         Turn the data-quality warnings in :data:`STRICT_CODES` into errors.
@@ -233,13 +240,13 @@ def validate_events(
         if unmatched.size:
             event_problems.append(describe("unmatched_click", "event", int(unmatched.size), unmatched[:10].tolist(),
                                            detail="request_id" if stats.has_request else "user_id"))
+    counts, first_rows = stats.users.items()
     threshold = summary["activity_outliers"]["threshold"] if max_user_events is None else max_user_events
-    flagged = stats.users.counts > threshold
-    summary["activity_outliers"].update(threshold=threshold, users=int(flagged.sum()),
-                                        events=int(stats.users.counts[flagged].sum()))
+    flagged = counts > threshold
+    summary["activity_outliers"].update(threshold=threshold, users=int(flagged.sum()), events=int(counts[flagged].sum()))
     if flagged.any():
         event_problems.append(describe("activity_outlier", "user_id", int(flagged.sum()),
-                                       np.sort(stats.users.minima[flagged])[:10].tolist(), detail=threshold))
+                                       np.sort(first_rows[flagged])[:10].tolist(), detail=threshold))
     problems = event_problems + problems
     return ValidationReport(summary=summary, problems=tuple(_promote(problems, strict)))
 
@@ -278,5 +285,5 @@ def _summary(stats: _EventStats, columns: list[str]) -> dict:
         "events": events,
         "clicks_per_impression": (events["click"] / events["impression"]) if events["impression"] else None,
         "by_position": positions, "context": context,
-        "activity_outliers": {"threshold": activity_outlier_threshold(stats.users.counts)},
+        "activity_outliers": {"threshold": activity_outlier_threshold(stats.users.items()[0])},
     }
