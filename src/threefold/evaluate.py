@@ -39,10 +39,11 @@ from threefold.context import ContextSpec
 from threefold.metrics import graded_ndcg, ranking_metrics
 from threefold.queries import QuerySet, build_queries
 from threefold.scoring import Scorer
-from threefold.splits import Stage
+from threefold.splits import Stage, check_selection
 from threefold.vocabulary import Vocabulary
 
-__all__ = ["ScorerRanker", "EvaluationResult", "evaluate", "evaluate_stage", "as_ranker", "ACCURACY_METRICS"]
+__all__ = ["ScorerRanker", "EvaluationResult", "evaluate", "evaluate_stage", "select_best", "simulator_relevance",
+           "as_ranker", "ACCURACY_METRICS"]
 
 #: Accuracy metrics of :class:`threefold.metrics.RankingMetrics`, by their report name.
 ACCURACY_METRICS = {"recall": "recall", "precision": "precision", "ndcg": "ndcg", "map": "average_precision",
@@ -479,3 +480,39 @@ def evaluate_stage(
                       propensity=propensity, schedule=schedule, **options)
     result.report.update(extra, dropped_straddling_requests=stage.dropped_requests)
     return result
+
+
+def select_best(results: "EvaluationResult | Sequence[EvaluationResult]", metric: str = "ndcg", k: int = 10, *,
+                candidates: Sequence[str] | None = None, select_on: str = "validation") -> str:
+    """The model with the highest overall ``metric@k``, chosen on validation results only.
+
+    Parameters
+    ----------
+    results : EvaluationResult or sequence of EvaluationResult
+        Results of the validation stage (e.g. one per sweep trial); model
+        names must be unique across them.
+    metric : str, default="ndcg"
+    k : int, default=10
+    candidates : sequence of str or None
+        The models to choose from (default: every model, baselines included).
+    select_on : str, default="validation"
+        Anything else is refused (:func:`threefold.splits.check_selection`).
+
+    Returns
+    -------
+    str
+        The best model's name; ties go to the first in order.
+    """
+    results = [results] if isinstance(results, EvaluationResult) else list(results)
+    check_selection([r.stage for r in results], select_on=select_on)
+    values: dict[str, float] = {}
+    for result in results:
+        for name in result.ranked:
+            if candidates is None or name in candidates:
+                if name in values:
+                    raise ValueError(f"Model name {name!r} appears in several results; give unique names.")
+                values[name] = result.value(name, metric, k)
+    if not values:
+        raise ValueError(f"No candidate model in the results (candidates={candidates!r}).")
+    order = list(values)
+    return max(order, key=lambda name: (np.nan_to_num(values[name], nan=-np.inf), -order.index(name)))
