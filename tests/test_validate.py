@@ -49,6 +49,12 @@ def test_clean_log_is_ok_and_summarized(tmp_path):
     assert "Result: OK" in text and "page_tone" in text and "50.0%" in text
 
 
+def test_header_only_log_is_ok_and_empty(tmp_path):
+    report = _validate(tmp_path, "user_id,item_id,timestamp,event\n")
+    assert report.ok and report.summary["rows_read"] == 0 and report.summary["time_min"] is None
+    assert "0 read, 0 kept" in report.to_text()
+
+
 def test_missing_required_column(tmp_path):
     report = _validate(tmp_path, "user_id,when\na,2024-03-01T10:00:00Z\n")
     _check(report, "missing_column", "item_id", 0, [], "error")

@@ -6,8 +6,9 @@ references read the same file with pyarrow alone: ``read_csv`` (whole file,
 multithreaded, types inferred) and the streaming ``open_csv`` reader with every
 column as text (what threefold's chunked reader starts from).
 
-The log is invented random data (fictional users, items and requests), written
-once to ``--path`` if the file does not exist.
+The log is invented random data (fictional users, items and requests: lists of
+ten impressions, 8% of them followed by a click row, 0.1% exact duplicates),
+written once to ``--path`` if the file does not exist.
 
 Usage::
 
@@ -48,7 +49,7 @@ CONTENDERS = {
 
 
 def write_log(path: str, rows: int, seed: int = 0, block: int = 1_000_000) -> None:
-    """Invented log: 10 items per request, 8% clicks, 0.1% client-retry duplicates."""
+    """Invented log: lists of 10 impressions, 8% of them followed by a click row, 0.1% client-retry duplicates."""
     import numpy as np
     import pyarrow as pa
     import pyarrow.csv as pcsv
@@ -57,29 +58,41 @@ def write_log(path: str, rows: int, seed: int = 0, block: int = 1_000_000) -> No
     n_users, n_items = max(rows // 40, 10), max(rows // 400, 10)
     names = ("user_id", "item_id", "timestamp", "event", "position", "dwell_seconds", "request_id", "device", "page_tone")
     options = pcsv.WriteOptions(quoting_style="none")
+    written, first_request = 0, 0
     with pcsv.CSVWriter(path, pa.schema([(k, pa.string()) for k in names]), write_options=options) as writer:
-        for start in range(0, rows, block):
-            m = min(block, rows - start)
-            req = (start + np.arange(m)) // 10
-            user = rng.integers(0, n_users, m // 10 + 2)[req - start // 10]
-            ts = 1_700_000_000 + rng.integers(0, 30 * 86400, m // 10 + 2)[req - start // 10]
-            click = rng.random(m) < 0.08
-            dwell = np.where(click, np.round(rng.exponential(40.0, m), 1), np.nan)
-            dup = rng.random(m) < 0.001
-            idx = np.where(dup, np.maximum(np.arange(m) - 1, 0), np.arange(m))
+        while written < rows:
+            n_req = block // 11
+            req = np.repeat(np.arange(first_request, first_request + n_req), 10)
+            first_request += n_req
+            user = np.repeat(rng.integers(0, n_users, n_req), 10)
+            ts = np.repeat(1_700_000_000 + rng.integers(0, 30 * 86400, n_req), 10)
+            item = rng.integers(0, n_items, req.size)
+            position = np.tile(np.arange(1, 11), n_req)
+            clicked = np.flatnonzero(rng.random(req.size) < 0.08)
+            is_click = np.r_[np.zeros(req.size, bool), np.ones(clicked.size, bool)]
+            pick = np.r_[np.arange(req.size), clicked]
+            order = np.lexsort((is_click, req[pick]))
+            pick, is_click = pick[order], is_click[order]
+            dup = np.flatnonzero(rng.random(pick.size) < 0.001)
+            pick, is_click = np.insert(pick, dup + 1, pick[dup]), np.insert(is_click, dup + 1, is_click[dup])
+            m = min(pick.size, rows - written)
+            pick, is_click = pick[:m], is_click[:m]
+            when = ts[pick] + 30 * is_click
+            stamps = np.datetime_as_string(when.astype("datetime64[s]"), unit="s").astype(object) + "+00:00"
+            dwell = np.round(rng.exponential(40.0, m), 1).astype(str).astype(object)
             cols = {
-                "user_id": np.char.add("reader", user.astype(str)),
-                "item_id": np.char.add("story", rng.integers(0, n_items, m).astype(str)),
-                "timestamp": pa.array(ts.astype("datetime64[s]")).cast(pa.string()).to_numpy(zero_copy_only=False),
-                "event": np.where(click, "click", "impression"),
-                "position": ((start + np.arange(m)) % 10 + 1).astype(str),
-                "dwell_seconds": np.where(click, dwell.astype(str), ""),
-                "request_id": np.char.add("q", req.astype(str)),
-                "device": rng.choice(np.array(["phone", "desktop", "tablet"]), m),
+                "user_id": np.char.add("reader", user[pick].astype(str)),
+                "item_id": np.char.add("story", item[pick].astype(str)),
+                "timestamp": stamps,
+                "event": np.where(is_click, "click", "impression"),
+                "position": position[pick].astype(str),
+                "dwell_seconds": np.where(is_click, dwell, ""),
+                "request_id": np.char.add("q", req[pick].astype(str)),
+                "device": np.array(["phone", "desktop", "tablet"])[(user[pick] + req[pick]) % 3],
                 "page_tone": rng.choice(np.array(["calm", "urgent", "playful"]), m),
             }
-            cols["timestamp"] = np.char.add(np.char.replace(cols["timestamp"].astype(str), " ", "T"), "+00:00")
-            writer.write_table(pa.table({k: pa.array(v[idx].astype(str)) for k, v in cols.items()}))
+            writer.write_table(pa.table({k: pa.array(v.astype(str)) for k, v in cols.items()}))
+            written += m
 
 
 def child(name: str, path: str) -> None:

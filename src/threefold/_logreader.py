@@ -21,6 +21,8 @@ every id exactly.
 from __future__ import annotations
 
 import os
+import queue
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator, Sequence
@@ -93,7 +95,7 @@ class LogSource:
                 "(a floating-point id cannot hold every id exactly). Rewrite the column as text."
             )
         first_row = 1
-        for table in _rebatch(self._batches(names, chunk_rows), chunk_rows):
+        for table in _rebatch(_prefetch(self._batches(names, chunk_rows)), chunk_rows):
             yield first_row, _ids_as_text(table)
             first_row += table.num_rows
 
@@ -124,6 +126,51 @@ class LogSource:
 
 def _dataset(path: str) -> pds.Dataset:
     return pds.dataset(path, format="parquet", partitioning="hive", ignore_prefixes=[".", "_"])
+
+
+def _prefetch(batches: Iterator[pa.RecordBatch], depth: int = 2) -> Iterator[pa.RecordBatch]:
+    """Read ahead in a background thread (Arrow parses without the GIL), at most ``depth`` batches ahead.
+
+    Reading then overlaps with the processing of the previous chunk. Errors of
+    the reader are raised in the consuming thread; closing the generator stops
+    the reader.
+    """
+    slots: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    done = object()
+
+    def put(item: object) -> bool:
+        """Hand one item over, unless the consumer has stopped; True when handed."""
+        while not stop.is_set():
+            try:
+                slots.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def produce() -> None:
+        try:
+            for batch in batches:
+                if not put(batch):
+                    return
+            put(done)
+        except BaseException as error:  # handed to the consumer
+            put(error)
+
+    reader = threading.Thread(target=produce, name="threefold-log-reader", daemon=True)
+    reader.start()
+    try:
+        while True:
+            item = slots.get()
+            if item is done:
+                return
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+    finally:
+        stop.set()
+        reader.join()
 
 
 def _rebatch(batches: Iterator[pa.RecordBatch], chunk_rows: int) -> Iterator[pa.Table]:
@@ -182,7 +229,7 @@ def open_source(path: str | os.PathLike) -> LogSource:
         magic = handle.read(4)
     if magic == b"PAR1":
         return LogSource(str(p), "parquet", pq.read_schema(str(p)))
-    reader = pcsv.open_csv(str(p), read_options=pcsv.ReadOptions(block_size=1 << 16))
+    reader = pcsv.open_csv(str(p), read_options=pcsv.ReadOptions(block_size=1 << 20))
     names = reader.schema.names
     schema = pa.schema([pa.field(name, pa.string()) for name in names])
     return LogSource(str(p), "csv", schema)

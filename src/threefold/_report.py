@@ -189,7 +189,8 @@ def _summary_lines(s: dict, max_positions: int) -> list[str]:
     if s["requests"] is not None:
         out.append(f"  requests        {s['requests']:,}")
     out += [
-        f"  time range      {s['time_min']} .. {s['time_max']}" + (f" (local times read in {s['timezone']})" if s["timezone"] else ""),
+        f"  time range      {s['time_min'] or '-'} .. {s['time_max'] or '-'}"
+        + (f" (local times read in {s['timezone']})" if s["timezone"] else ""),
         f"  events          {events}",
         f"  outliers        {s['activity_outliers'].get('users', 0):,} user(s) with more than "
         f"{s['activity_outliers']['threshold']:,.0f} events ({s['activity_outliers'].get('events', 0):,} events in all)",

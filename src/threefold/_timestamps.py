@@ -199,7 +199,7 @@ def _parse_column(values: pa.Array) -> tuple[np.ndarray, np.ndarray]:
         aware = pa.types.is_timestamp(kind) and kind.tz is not None
         if aware:
             values = pc.cast(values, pa.timestamp(kind.unit, tz="UTC"))
-        as_pandas = values.cast(pa.timestamp("us")) if not aware else values
+        as_pandas = values if aware else values.cast(pa.timestamp("us"), safe=False)  # sub-microseconds dropped
         seconds, missing = _datetimes_to_seconds(as_pandas.to_pandas())
         form = np.where(missing, 0, 1 if aware else 2).astype(np.int8)
         return seconds, form
