@@ -126,6 +126,12 @@ def _timezone(key, value, owner):
     return value
 
 
+def _metric(key, value, owner):
+    from threefold.evaluate import ACCURACY_METRICS
+
+    return check_choice(key, value, tuple(ACCURACY_METRICS), owner=owner)
+
+
 _STR = _type(str, "a string")
 _BOOL = _type(bool, "true or false")
 _STR_LIST = _list(_STR, "strings")
@@ -213,11 +219,12 @@ _SECTIONS: dict[str, dict[str, tuple[Rule, object]]] = {
     "split": {"cutoff": (_instant, ...), "validation_window": (_duration, None), "test_window": (_duration, None)},
     "evaluation": {"stage": (_choice("validation", "test"), "test"), "ks": (_list(_int(low=1), "ints", 1), [5, 10]),
                    "baseline": (_STR, None), "candidates": (_choice("eligible", "shown"), "eligible"),
-                   "metrics": (_list(_STR, "metric names", 1), ["recall", "ndcg"]),
+                   "metrics": (_list(_metric, "metric names", 1), ["recall", "ndcg"]),
+                   "protocol": (_choice("rolling", "static"), "rolling"), "step": (_duration, "1h"),
                    "n_resamples": (_int(low=1), 1000), "random_state": (_SEED, 0),
-                   "propensity_clip": (_float(low=1.0), 10.0)},
+                   "propensity_clip": (_float(low=1.0), 10.0), "sensitivity_users": (_int(low=1), 200)},
     "sweep": {"model": (_STR, None), "search": (_choice("grid", "random"), "grid"), "n_trials": (_int(low=1), None),
-              "metric": (_STR, "ndcg"), "k": (_int(low=1), 10), "random_state": (_SEED, 0), "space": (None, {})},
+              "metric": (_metric, "ndcg"), "k": (_int(low=1), 10), "random_state": (_SEED, 0), "space": (None, {})},
 }
 _REQUIRED_SECTIONS = ("data", "split", "models")
 
