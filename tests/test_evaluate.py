@@ -46,15 +46,16 @@ class _ConstantRanker:
     """Gives every item the same score (a ranker with no information)."""
 
     def bind(self, queries):
-        return lambda rows: np.zeros((np.arange(len(queries))[rows].size, queries.n_items))
+        return lambda rows, items=None: np.zeros((np.arange(len(queries))[rows].size,
+                                                  queries.n_items if items is None else len(items)))
 
 
 class _HidesItems:
     """Gives -inf to every item but the first: it does not rank all the candidates."""
 
     def bind(self, queries):
-        def score(rows):
-            out = np.zeros((np.arange(len(queries))[rows].size, queries.n_items))
+        def score(rows, items=None):
+            out = np.zeros((np.arange(len(queries))[rows].size, queries.n_items if items is None else len(items)))
             out[:, 1:] = -np.inf
             return out
         return score

@@ -21,8 +21,22 @@ from threefold.vocabulary import UNKNOWN
 
 
 def rank_block(fn, local: np.ndarray, mask: np.ndarray, k: int, name: str) -> np.ndarray:
-    """Top-k of one block, asserting that the model ranked exactly the candidates."""
-    ranked = top_k(np.asarray(fn(local)), k, mask)
+    """Top-k of one block, asserting that the model ranked exactly the candidates.
+
+    Only the items that are a candidate of some query of the block are scored
+    (``fn(rows, items)``), in increasing index order, so the tie rule (lower
+    item index first) is unchanged; with news catalogs most items are not live.
+    """
+    cols = np.flatnonzero(mask.any(axis=0))
+    if cols.size == mask.shape[1]:
+        sub = mask
+        scores = np.asarray(fn(local, None))
+    else:
+        sub = mask[:, cols]
+        scores = np.asarray(fn(local, cols))
+    ranked = top_k(scores, k, None if sub.all() else sub)
+    if cols.size != mask.shape[1]:
+        ranked = np.where(ranked >= 0, cols[np.maximum(ranked, 0)], -1)
     expected = np.minimum(mask.sum(axis=1), k)
     valid = ranked >= 0
     rows = np.nonzero(valid)[0]

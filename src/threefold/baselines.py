@@ -1,9 +1,9 @@
 """Baselines ranked through the same harness as the factor models.
 
 Every ranker of the evaluation harness (:mod:`threefold.evaluate`) has one
-method, ``bind(queries)``, returning a block scorer: a function of query
-positions ``rows`` giving scores of shape ``(len(rows), n_items)`` over the
-query set's item universe. The harness masks the candidates and takes the
+method, ``bind(queries)``, returning a block scorer ``fn(rows, items=None)``:
+the scores of the queries at positions ``rows`` for the item indices ``items``
+(increasing; None: the whole item universe), shape ``(len(rows), len(items))``. The harness masks the candidates and takes the
 top K, identically for every ranker.
 
 * :class:`RandomBaseline`: a uniform score per (query, item) from a counter-based
@@ -47,16 +47,24 @@ def _splitmix64(x: np.ndarray) -> np.ndarray:
         return x ^ (x >> np.uint64(31))
 
 
-def hash_uniform(seed: int, query_ids: np.ndarray, n_items: int) -> np.ndarray:
+def hash_uniform(seed: int, query_ids: np.ndarray, items: int | np.ndarray) -> np.ndarray:
     """Uniform numbers in [0, 1) from ``(seed, query id, item index)``.
+
+    Parameters
+    ----------
+    seed : int
+    query_ids : ndarray of shape (q,), int
+    items : int or ndarray of shape (n,), int
+        The item indices (an int ``n`` means ``0 .. n - 1``).
 
     Returns
     -------
-    ndarray of shape (len(query_ids), n_items), float64
+    ndarray of shape (q, n), float64
     """
+    items = np.arange(items) if np.isscalar(items) else np.asarray(items)
     with np.errstate(over="ignore"):
         q = _splitmix64(np.uint64(seed) ^ _splitmix64(np.asarray(query_ids, dtype=np.uint64)))
-        x = _splitmix64(q[:, None] ^ np.arange(n_items, dtype=np.uint64)[None, :])
+        x = _splitmix64(q[:, None] ^ items.astype(np.uint64)[None, :])
     return (x >> np.uint64(11)).astype(np.float64) * 2.0**-53
 
 
@@ -78,7 +86,7 @@ class RandomBaseline:
 
     def bind(self, queries: QuerySet) -> BlockScorer:
         seed = self.seed_ if hasattr(self, "seed_") else self.fit().seed_
-        return lambda rows: hash_uniform(seed, queries.index[rows], queries.n_items)
+        return lambda rows, items=None: hash_uniform(seed, queries.index[rows], queries.n_items if items is None else items)
 
 
 def window_counts(
@@ -197,13 +205,17 @@ class PopularityBaseline:
         n_items = queries.n_items
         times, items, by_group = self._events_for(queries.items)
         if not self.modes_:
-            return lambda rows: window_counts(times, items, n_items, queries.times[rows], self.window_).astype(np.float64)
+            def score_all(rows: np.ndarray, columns: np.ndarray | None = None) -> np.ndarray:
+                out = window_counts(times, items, n_items, queries.times[rows], self.window_).astype(np.float64)
+                return out if columns is None else out[:, columns]
+
+            return score_all
         missing = [m for m in self.modes_ if m not in queries.contexts.columns]
         if missing:
             raise ValueError(f"The queries have no context mode(s) {missing}.")
         query_group = pd.Index(self.combinations_).get_indexer(_combination_keys(queries.contexts, self.modes_))
 
-        def score(rows: np.ndarray) -> np.ndarray:
+        def score(rows: np.ndarray, columns: np.ndarray | None = None) -> np.ndarray:
             rows = np.arange(len(queries))[rows]
             out = np.zeros((rows.size, n_items))
             groups = query_group[rows]
@@ -211,7 +223,7 @@ class PopularityBaseline:
                 sel = np.flatnonzero(groups == g)
                 ev = by_group[g]
                 out[sel] = window_counts(times[ev], items[ev], n_items, queries.times[rows[sel]], self.window_)
-            return out
+            return out if columns is None else out[:, columns]
 
         return score
 

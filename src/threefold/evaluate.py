@@ -52,7 +52,7 @@ _BLOCK_CELLS = 1 << 22
 
 
 class _BoundFactors:
-    """Block scorer of a factor model over a query set: ``Q[rows] @ V.T + b``."""
+    """Block scorer of a factor model over a query set: ``Q[rows] @ V[items].T + b[items]``."""
 
     def __init__(self, query: np.ndarray, items: np.ndarray, bias: np.ndarray | None):
         self.query = query
@@ -60,10 +60,15 @@ class _BoundFactors:
         self._items_t = np.ascontiguousarray(items.T)
         self._bias = bias
 
-    def __call__(self, rows) -> np.ndarray:
-        scores = self.query[rows] @ self._items_t
-        if self._bias is not None:
-            scores += self._bias
+    def __call__(self, rows, items: np.ndarray | None = None) -> np.ndarray:
+        if items is None:
+            scores = self.query[rows] @ self._items_t
+            bias = self._bias
+        else:
+            scores = self.query[rows] @ self.item_factors[items].T
+            bias = None if self._bias is None else self._bias[items]
+        if bias is not None:
+            scores += bias
         return scores
 
 
