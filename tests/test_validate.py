@@ -333,3 +333,28 @@ def test_hash_tables_match_python_sets_and_dicts():
     assert low[found].tolist() == [minima[k or 1] for k in probe[found].tolist()]
     got_counts, _ = counter.items()
     assert sorted(got_counts.tolist()) == sorted(counts.values())
+
+
+def test_one_pass_load_equals_validate_plus_load(tmp_path):
+    import warnings
+
+    import pandas as pd
+
+    from threefold.events import EventLogWarning, load_events
+    from threefold.validate import load_validated_events
+
+    frame = invented_log(seed=4)
+    frame.loc[3, "timestamp"] = "soon"
+    frame.loc[5, "position"] = "0"
+    path = write_formats(frame, tmp_path)["csv"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", EventLogWarning)
+        expected = load_events(path, errors="drop", hash_user_ids_salt="s3")
+    loaded, report = load_validated_events(path, now=NOW, chunk_rows=7, hash_user_ids_salt="s3")
+    pd.testing.assert_frame_equal(loaded, expected)
+    assert loaded.attrs == expected.attrs
+    assert report.to_dict() == validate_events(path, now=NOW).to_dict()
+    assert not report.ok and report.problem("unparseable_timestamp").rows == (4,)
+    missing = write_text(tmp_path / "m.csv", "user_id,timestamp\na,1\n")
+    with pytest.raises(ValueError, match="cannot be loaded: item_id: required column is missing"):
+        load_validated_events(missing)

@@ -30,14 +30,14 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from threefold._hashing import SortedHashSet, combine, encode_strings, hash_dictionary, hash_numbers, hash_strings
+from threefold._hashing import HashSet, combine, encode_strings, hash_dictionary, hash_numbers, hash_strings
 from threefold._logreader import LogSource
 from threefold._timestamps import parse_timestamps
 
 __all__ = [
     "REQUIRED_COLUMNS", "RESERVED_COLUMNS", "EVENT_VALUES", "DROP_REASONS",
     "ITEM_TIME_COLUMNS", "EventChunk", "ItemsChunk", "scan_events", "scan_items",
-    "text_missing", "parse_numbers", "as_text", "ProblemTally",
+    "text_missing", "parse_numbers", "as_text", "ProblemTally", "drop_counts", "cleared_counts",
 ]
 
 REQUIRED_COLUMNS = ("user_id", "item_id", "timestamp")
@@ -87,6 +87,20 @@ def parse_numbers(values: pa.Array) -> tuple[np.ndarray, np.ndarray, np.ndarray]
     bad = ~missing & ~np.isfinite(numbers)
     numbers = np.where(bad, np.nan, numbers)
     return numbers, missing, bad
+
+
+def drop_counts(dropped: np.ndarray) -> dict[str, int]:
+    """``{reason: rows}`` from a bincount of ``EventChunk.drop`` codes (reasons with no rows left out)."""
+    return {r: int(dropped[1 + k]) for k, r in enumerate(DROP_REASONS) if dropped[1 + k]}
+
+
+def cleared_counts(counts: dict[tuple[str, str], int]) -> dict[str, int]:
+    """``{column: values cleared}`` from problem counts (non-numeric or negative dwell, bad positions)."""
+    cleared: dict[str, int] = {}
+    for (code, column), n in counts.items():
+        if code in ("bad_dwell", "negative_dwell", "bad_position"):
+            cleared[column] = cleared.get(column, 0) + n
+    return dict(sorted(cleared.items()))
 
 
 class ProblemTally:
@@ -255,7 +269,7 @@ def scan_events(
     (8 bytes per distinct kept row), so the result does not depend on
     ``chunk_rows``.
     """
-    seen = SortedHashSet()
+    seen = HashSet()
     for first_row, table in source.iter_tables(chunk_rows):
         chunk = _normalize(first_row, table, zone)
         index = np.flatnonzero(chunk.keep)
@@ -314,7 +328,7 @@ def _normalize_items(first_row: int, table: pa.Table, zone: ZoneInfo | None) -> 
 
 def scan_items(source: LogSource, *, zone: ZoneInfo | None, chunk_rows: int) -> Iterator[ItemsChunk]:
     """Parse an items catalog chunk by chunk, flagging repeated ``item_id`` values across chunks."""
-    seen = SortedHashSet()
+    seen = HashSet()
     for first_row, table in source.iter_tables(chunk_rows):
         chunk = _normalize_items(first_row, table, zone)
         index = np.flatnonzero(chunk.keep)

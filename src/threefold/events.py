@@ -31,7 +31,7 @@ import pyarrow.compute as pc
 from threefold._checks import check_choice, check_int
 from threefold._eventscan import (
     DROP_REASONS, EVENT_VALUES, ITEM_TIME_COLUMNS, REQUIRED_COLUMNS, RESERVED_COLUMNS, EventChunk, ProblemTally,
-    scan_events, scan_items,
+    cleared_counts, drop_counts, scan_events, scan_items,
 )
 from threefold._logreader import LogSource, open_source
 from threefold._timestamps import check_timezone
@@ -256,23 +256,18 @@ def load_events(
     check_int("chunk_rows", chunk_rows, low=1, owner="load_events")
     check_choice("errors", errors, ("raise", "drop"), owner="load_events")
     zone = check_timezone(timezone)
-    key = None if hash_user_ids_salt is None else _salt_bytes(hash_user_ids_salt)
+    if hash_user_ids_salt is not None:
+        _salt_bytes(hash_user_ids_salt)
     source = open_source(path)
     absent = require_columns(source, REQUIRED_COLUMNS)
     if absent:
         raise ValueError(f"{source.path}: required column(s) {absent} missing; the file has {source.columns}.")
-    if context_columns is not None:
-        unknown = [c for c in context_columns if c not in source.columns]
-        if unknown:
-            raise ValueError(f"{source.path}: no context column(s) {unknown}; the file has {source.columns}.")
     refused = [k for k in _LOAD_ERRORS if zone is None or k[0] != "naive_timestamp"]
-    schema = _schema(source, context_columns)
-    tables, tally = [], ProblemTally(keep_rows=5)
-    dropped = np.zeros(len(DROP_REASONS) + 1, dtype=np.int64)
+    collector = FrameCollector(source, hash_user_ids_salt=hash_user_ids_salt, context_columns=context_columns)
+    tally = ProblemTally(keep_rows=5)
     for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows):
         tally.add_flags({k: m for k, m in chunk.flags.items() if k in refused}, chunk.rows)
-        dropped += np.bincount(chunk.drop, minlength=dropped.size)
-        tables.append(_table(chunk, key, schema))
+        collector.add(chunk)
     counts = tally.counts
     if counts and errors == "raise":
         code, column = min(counts, key=lambda k: tally.rows[k][0])
@@ -281,28 +276,59 @@ def load_events(
             f"(first rows {tally.rows[(code, column)]}); {len(counts)} kind(s) of problem in all. "
             "Run `threefold validate` for the full report, or pass errors='drop' to drop and count them."
         )
-    # One conversion at the end: pandas string columns keep the Arrow chunks (no copy of the text).
-    frame = pa.concat_tables(tables).to_pandas() if tables else schema.empty_table().to_pandas()
-    del tables
-    reasons = {r: int(dropped[1 + k]) for k, r in enumerate(DROP_REASONS) if dropped[1 + k]}
-    if drop_activity_outliers and len(frame):
-        per_user = frame["user_id"].value_counts()
-        bots = per_user.index[per_user.to_numpy() > activity_outlier_threshold(per_user.to_numpy())]
-        outliers = frame["user_id"].isin(bots).to_numpy()
-        if outliers.any():
-            reasons["activity_outlier"] = int(outliers.sum())
-            frame = frame.loc[~outliers].reset_index(drop=True)
-    cleared = {f"{c}:{code}": n for (code, c), n in counts.items() if code in ("bad_dwell", "negative_dwell", "bad_position")}
-    frame.attrs["threefold_load"] = {
-        "rows_read": int(dropped.sum()), "rows_kept": int(len(frame)),
-        "rows_dropped": reasons, "values_cleared": cleared,
-    }
-    if reasons or cleared:
+    frame = collector.frame(cleared_counts(counts), drop_activity_outliers=drop_activity_outliers)
+    load = frame.attrs["threefold_load"]
+    if load["rows_dropped"] or load["values_cleared"]:
         warnings.warn(
-            f"{source.path}: dropped {sum(reasons.values())} row(s) {reasons}, cleared values {cleared}.",
+            f"{source.path}: dropped {sum(load['rows_dropped'].values())} row(s) {load['rows_dropped']}, "
+            f"cleared values {load['values_cleared']}.",
             EventLogWarning, stacklevel=2,
         )
     return frame
+
+
+class FrameCollector:
+    """Gathers the kept rows of scanned chunks into the loaded frame.
+
+    Shared by :func:`load_events` and
+    :func:`threefold.validate.load_validated_events`, so both return the same
+    frame. Parameters as in :func:`load_events`.
+    """
+
+    def __init__(self, source: LogSource, *, hash_user_ids_salt: str | bytes | None,
+                 context_columns: Sequence[str] | None) -> None:
+        if context_columns is not None:
+            unknown = [c for c in context_columns if c not in source.columns]
+            if unknown:
+                raise ValueError(f"{source.path}: no context column(s) {unknown}; the file has {source.columns}.")
+        self.key = None if hash_user_ids_salt is None else _salt_bytes(hash_user_ids_salt)
+        self.schema = _schema(source, context_columns)
+        self.tables: list[pa.Table] = []
+        self.dropped = np.zeros(len(DROP_REASONS) + 1, dtype=np.int64)
+
+    def add(self, chunk: EventChunk) -> None:
+        self.dropped += np.bincount(chunk.drop, minlength=self.dropped.size)
+        self.tables.append(_table(chunk, self.key, self.schema))
+
+    def frame(self, cleared: dict[str, int], *, drop_activity_outliers: bool = False) -> pd.DataFrame:
+        """The frame of every kept row, with ``attrs["threefold_load"]`` (see :func:`load_events`)."""
+        # One conversion at the end: pandas string columns keep the Arrow chunks (no copy of the text).
+        tables, self.tables = self.tables, []
+        frame = pa.concat_tables(tables).to_pandas() if tables else self.schema.empty_table().to_pandas()
+        del tables
+        reasons = drop_counts(self.dropped)
+        if drop_activity_outliers and len(frame):
+            per_user = frame["user_id"].value_counts()
+            bots = per_user.index[per_user.to_numpy() > activity_outlier_threshold(per_user.to_numpy())]
+            outliers = frame["user_id"].isin(bots).to_numpy()
+            if outliers.any():
+                reasons["activity_outlier"] = int(outliers.sum())
+                frame = frame.loc[~outliers].reset_index(drop=True)
+        frame.attrs["threefold_load"] = {
+            "rows_read": int(self.dropped.sum()), "rows_kept": int(len(frame)),
+            "rows_dropped": reasons, "values_cleared": cleared,
+        }
+        return frame
 
 
 def load_items(

@@ -21,23 +21,25 @@ from __future__ import annotations
 
 import os
 import time
-from dataclasses import dataclass
+from typing import Sequence
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from threefold._checks import check_int
 from threefold._eventscan import (
-    DROP_REASONS, EVENT_VALUES, REQUIRED_COLUMNS, EventChunk, ProblemTally, scan_events, scan_items,
+    DROP_REASONS, EVENT_VALUES, REQUIRED_COLUMNS, EventChunk, ProblemTally, cleared_counts, drop_counts, scan_events,
+    scan_items,
 )
 from threefold._hashing import HashCounter, HashSet, combine
 from threefold._logreader import open_source
 from threefold._report import Problem, ValidationReport, describe, iso_utc
 from threefold._timestamps import check_timezone
-from threefold.events import DEFAULT_CHUNK_ROWS, activity_outlier_threshold, require_columns
+from threefold.events import DEFAULT_CHUNK_ROWS, FrameCollector, activity_outlier_threshold, require_columns
 
-__all__ = ["validate_events", "ValidationReport", "Problem", "STRICT_CODES"]
+__all__ = ["validate_events", "load_validated_events", "ValidationReport", "Problem", "STRICT_CODES"]
 
 #: Data-quality warnings that ``strict=True`` turns into errors.
 STRICT_CODES = frozenset(
@@ -206,6 +208,57 @@ def validate_events(
         1-based data rows of the file (row 1 is the first row after a CSV
         header).
     """
+    report, _ = _run(path, items=items, timezone=timezone, chunk_rows=chunk_rows, strict=strict, now=now,
+                     max_user_events=max_user_events, collect=None)
+    return report
+
+
+def load_validated_events(
+    path: str | os.PathLike,
+    *,
+    items: str | os.PathLike | None = None,
+    timezone: str | None = None,
+    chunk_rows: int = DEFAULT_CHUNK_ROWS,
+    strict: bool = False,
+    now: int | None = None,
+    max_user_events: int | None = None,
+    hash_user_ids_salt: str | bytes | None = None,
+    context_columns: Sequence[str] | None = None,
+    drop_activity_outliers: bool = False,
+) -> tuple[pd.DataFrame, ValidationReport]:
+    """Validate and load a log in one pass (half the reading of the two calls apart).
+
+    Parameters are those of :func:`validate_events` and
+    :func:`threefold.events.load_events`.
+
+    Returns
+    -------
+    frame : pandas.DataFrame
+        Exactly ``load_events(path, errors="drop", ...)``: every row the report
+        counts as dropped is dropped, every value it counts as cleared is
+        cleared. Check ``report.ok`` before using it.
+    report : ValidationReport
+        Exactly ``validate_events(path, ...)``.
+
+    Raises
+    ------
+    ValueError
+        When the log cannot be read at all (a required column is missing or an
+        id column is stored as floats); the message lists the problems.
+    """
+    report, collector = _run(path, items=items, timezone=timezone, chunk_rows=chunk_rows, strict=strict, now=now,
+                             max_user_events=max_user_events,
+                             collect={"hash_user_ids_salt": hash_user_ids_salt, "context_columns": context_columns})
+    if collector is None:
+        raise ValueError(f"{report.summary['source']}: the log cannot be loaded: "
+                         + "; ".join(f"{p.column}: {p.message}" for p in report.errors if p.source == "events"))
+    cleared = report.summary["values_cleared"]
+    return collector.frame(cleared, drop_activity_outliers=drop_activity_outliers), report
+
+
+def _run(path, *, items, timezone, chunk_rows, strict, now, max_user_events, collect: dict | None
+         ) -> tuple[ValidationReport, FrameCollector | None]:
+    """The one pass behind :func:`validate_events` and :func:`load_validated_events`."""
     check_int("chunk_rows", chunk_rows, low=1, owner="validate_events")
     if max_user_events is not None:
         check_int("max_user_events", max_user_events, low=1, owner="validate_events")
@@ -224,10 +277,13 @@ def validate_events(
     if absent or bad_types:
         problems[:0] = [describe("missing_column", c, 0, ()) for c in absent]
         problems[:0] = [describe("bad_id_type", c, 0, (), detail=t) for c, t in bad_types]
-        return ValidationReport(summary=summary, problems=tuple(_promote(problems, strict)))
+        return ValidationReport(summary=summary, problems=tuple(_promote(problems, strict))), None
     stats = _EventStats(now, catalog)
+    collector = None if collect is None else FrameCollector(source, **collect)
     for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows):
         stats.add(chunk)
+        if collector is not None:
+            collector.add(chunk)
     summary.update(_summary(stats, source.columns))
     event_problems = []
     for (code, column), count in stats.tally.counts.items():
@@ -248,7 +304,9 @@ def validate_events(
         event_problems.append(describe("activity_outlier", "user_id", int(flagged.sum()),
                                        np.sort(first_rows[flagged])[:10].tolist(), detail=threshold))
     problems = event_problems + problems
-    return ValidationReport(summary=summary, problems=tuple(_promote(problems, strict)))
+    return ValidationReport(summary=summary, problems=tuple(_promote(problems, strict))), collector
+
+
 
 
 def _promote(problems: list[Problem], strict: bool) -> list[Problem]:
@@ -260,11 +318,7 @@ def _promote(problems: list[Problem], strict: bool) -> list[Problem]:
 
 def _summary(stats: _EventStats, columns: list[str]) -> dict:
     kept = int(stats.dropped[0])
-    dropped = {r: int(stats.dropped[1 + i]) for i, r in enumerate(DROP_REASONS) if stats.dropped[1 + i]}
-    cleared = {}
-    for code, column in (("bad_dwell", "dwell_seconds"), ("negative_dwell", "dwell_seconds"), ("bad_position", "position")):
-        if stats.tally.counts.get((code, column)):
-            cleared[column] = cleared.get(column, 0) + stats.tally.counts[(code, column)]
+    dropped, cleared = drop_counts(stats.dropped), cleared_counts(stats.tally.counts)
     positions = [
         {"position": p, "impressions": int(n[_IMPRESSION]), "clicks": int(n[_CLICK]),
          "clicks_per_impression": float(n[_CLICK] / n[_IMPRESSION]) if n[_IMPRESSION] else None}
