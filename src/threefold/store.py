@@ -294,6 +294,24 @@ class RunStore:
         finally:
             _restore_sigterm(previous)
 
+    def create_run(self, experiment_id: str, *, run_name: str, tags: Mapping[str, str] | None = None,
+                   parent_run_id: str | None = None) -> str:
+        """A RUNNING run outside the active-run stack (e.g. a sweep trial logged from a worker's result).
+
+        End it with :meth:`finish`; if this process dies first, :meth:`reap_stale_runs` marks it killed.
+        """
+        tags = {**(tags or {}), **_process_tags()}
+        if parent_run_id is not None:
+            tags["mlflow.parentRunId"] = parent_run_id
+        run = self.call(self.client.create_run, experiment_id, run_name=run_name, tags=tags)
+        return run.info.run_id
+
+    def finish(self, run_id: str, status: str = "FINISHED", error: str | None = None) -> None:
+        """End a run made by :meth:`create_run` as FINISHED, FAILED (with ``error``) or KILLED."""
+        if error is not None:
+            self.call(self.client.set_tag, run_id, TAG_ERROR, error[-4000:])
+        self.call(self.client.set_terminated, run_id, status=status)
+
     def _end(self, run_id: str, status: str, ended_by: str | None) -> None:
         import mlflow
 
