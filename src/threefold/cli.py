@@ -79,7 +79,94 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--out", default="threefold-demo", help="working folder (default ./threefold-demo)")
     demo.add_argument("--events", dest="n_events", type=int, default=60_000)
     demo.add_argument("--seed", type=int, default=7)
+    _add_tracking_commands(commands)
     return parser
+
+
+def _add_store_flag(parser: argparse.ArgumentParser, default=None) -> None:
+    parser.add_argument("--store", default=default, metavar="URI",
+                        help="run store: a folder, sqlite:///FILE or a tracking server URI "
+                             "(default: $MLFLOW_TRACKING_URI, else ./threefold-runs)")
+
+
+def _add_tracking_commands(commands) -> None:
+    """``train``, ``sweep`` and ``runs`` (docs/experiments.md)."""
+    for name, text in (("train", "fit, evaluate and log every model of an experiment config"),
+                       ("sweep", "search settings on Dask workers, selecting on the validation window")):
+        sub = commands.add_parser(name, help=text)
+        sub.add_argument("config", help="experiment config (TOML)")
+        sub.add_argument("--set", dest="overrides", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                         help="override a config value, e.g. --set models.cp.rank=8 (repeatable)")
+        _add_store_flag(sub)
+        if name == "sweep":
+            sub.add_argument("--workers", type=int, default=2, help="local Dask worker processes (default 2)")
+            sub.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                             help="use an existing Dask scheduler instead, e.g. tcp://10.0.0.5:8786")
+    runs = commands.add_parser("runs", help="list logged runs; also: runs compare A B | runs cleanup | runs upgrade")
+    _add_store_flag(runs)
+    runs.add_argument("--experiment", default=None, help="only this experiment")
+    runs.add_argument("--tag", action="append", default=[], metavar="KEY=VALUE", help="only runs with this tag")
+    runs.add_argument("--sort", default=None, metavar="METRIC", help="sort by a metric (highest first)")
+    runs.add_argument("--ascending", action="store_true", help="sort lowest first")
+    runs.add_argument("--metric", action="append", default=[], help="metric column to show (repeatable)")
+    runs.add_argument("--limit", type=int, default=50)
+    runs.add_argument("--json", action="store_true", help="print JSON for machines")
+    actions = runs.add_subparsers(dest="action", metavar="ACTION")
+    compare = actions.add_parser("compare", help="parameter differences and metric deltas of two runs")
+    compare.add_argument("run_a")
+    compare.add_argument("run_b")
+    compare.add_argument("--json", action="store_true", default=argparse.SUPPRESS)
+    _add_store_flag(compare, default=argparse.SUPPRESS)
+    for name, text in (("cleanup", "mark runs whose process is gone as killed"),
+                       ("upgrade", "back up the store's database, then migrate it to this MLflow's schema")):
+        _add_store_flag(actions.add_parser(name, help=text), default=argparse.SUPPRESS)
+
+
+def cmd_train(args: argparse.Namespace) -> int:
+    from threefold.config import load_config, parse_overrides
+    from threefold.experiment import summary_text, train
+    from threefold.store import open_store
+
+    config = load_config(args.config, parse_overrides(args.overrides))
+    print(summary_text(train(config, open_store(args.store))))
+    return 0
+
+
+def cmd_sweep(args: argparse.Namespace) -> int:
+    from threefold.config import load_config, parse_overrides
+    from threefold.store import open_store
+    from threefold.sweep import sweep
+
+    config = load_config(args.config, parse_overrides(args.overrides))
+    report = sweep(config, open_store(args.store), workers=args.workers, scheduler=args.scheduler)
+    print(report.trials.to_string(index=False))
+    print(f"best trial: {report.best_run_id or 'none finished'} (validation {report.metric}); "
+          f"parent run {report.parent_run_id}")
+    return 0
+
+
+def cmd_runs(args: argparse.Namespace) -> int:
+    from threefold import runs as listing
+    from threefold.store import open_store, upgrade_store
+
+    if args.action == "upgrade":
+        backup = upgrade_store(args.store)
+        print("the store is already current" if backup is None else f"backed up to {backup}; store migrated")
+        return 0
+    store = open_store(args.store)
+    for run_id, reason in store.reap_stale_runs():
+        print(f"marked run {run_id} killed ({reason})")
+    if args.action == "cleanup":
+        return 0
+    if args.action == "compare":
+        comparison = listing.compare_runs(store, args.run_a, args.run_b)
+        print(json.dumps(comparison, indent=2) if args.json else listing.format_comparison(comparison))
+        return 0
+    tags = dict(t.split("=", 1) for t in args.tag if "=" in t)
+    found = listing.list_runs(store, experiment=args.experiment, tags=tags, sort=args.sort,
+                              ascending=args.ascending, limit=args.limit)
+    print(json.dumps(found, indent=2) if args.json else listing.format_runs(found, args.metric or None))
+    return 0
 
 
 def _version() -> str:
@@ -206,7 +293,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``threefold`` console command."""
     args = _parser().parse_args(argv)
-    handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo}
+    handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
+                "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs}
     try:
         return handlers[args.command](args)
     except (ValueError, KeyError, FileNotFoundError, MemoryError) as error:
