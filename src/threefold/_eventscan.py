@@ -69,6 +69,12 @@ def text_missing(values: pa.Array, markers: bool = True) -> np.ndarray:
     return pc.or_(hit.fill_null(True), pc.is_null(values)).to_numpy(zero_copy_only=False)
 
 
+def blank_to_null(text: pa.Array) -> pa.Array:
+    """Text with blank (empty or all-space) values replaced by null; other values as written."""
+    blank = text_missing(text, markers=False)
+    return pc.if_else(pa.array(blank), pa.scalar(None, pa.string()), text) if blank.any() else text
+
+
 def parse_numbers(values: pa.Array) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Numbers of a text or numeric column: values (float64, NaN if missing or bad), missing mask, bad mask."""
     if isinstance(values, pa.ChunkedArray):
@@ -214,16 +220,14 @@ def _normalize(first_row: int, table: pa.Table, zone: ZoneInfo | None) -> EventC
     if "position" in names:
         position, _, bad = parse_numbers(table.column("position"))
         with np.errstate(invalid="ignore"):
-            bad |= (position < 1) | (np.floor(position) != position) & ~np.isnan(position)
+            bad |= (position < 1) | ((np.floor(position) != position) & ~np.isnan(position))
         flags[("bad_position", "position")] = bad
         position[bad] = np.nan
 
     context = {}
     for name in names:
         if name not in RESERVED_COLUMNS:
-            text = as_text(table.column(name))
-            blank = text_missing(text, markers=False)
-            context[name] = pc.if_else(pa.array(blank), pa.scalar(None, pa.string()), text) if blank.any() else text
+            context[name] = blank_to_null(as_text(table.column(name)))
 
     return EventChunk(
         first_row=first_row,
@@ -317,9 +321,7 @@ def _normalize_items(first_row: int, table: pa.Table, zone: ZoneInfo | None) -> 
             flags[("naive_timestamp", name)] = ts.naive & ~ts.valid
             times[name] = (ts.seconds, ts.valid)
         else:
-            text = as_text(column)
-            blank = text_missing(text, markers=False)
-            attributes[name] = pc.if_else(pa.array(blank), pa.scalar(None, pa.string()), text) if blank.any() else text
+            attributes[name] = blank_to_null(as_text(column))
     if len(times) == 2:
         (pub, pub_ok), (exp, exp_ok) = times["published_at"], times["expires_at"]
         flags[("expires_before_published", "expires_at")] = pub_ok & exp_ok & (exp < pub)

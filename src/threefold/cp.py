@@ -29,7 +29,6 @@ from dataclasses import dataclass, replace
 from typing import Callable, Sequence
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
 from threefold import als, kernels
 from threefold._checks import check_choice, check_int, check_number
@@ -335,28 +334,24 @@ def fit_cp(
     start = time.perf_counter()
     init = _warm_start_factors(init, tensor, structure) if isinstance(init, CPResult) else _check_init(init, tensor, structure.rank)
     factors = initial_factors(tensor, active, init, dtype=dtype, rng=rng)
-    previous_threads = kernels.set_threads(n_threads)
-    try:
-        with threadpool_limits(limits=1, user_api="blas"):
-            problem = als.make_problem(tensor, factors, active, reg=reg, update_modes=update_modes)
-            history = [SweepRecord(0, *als.loss_and_fit(problem), time.perf_counter() - start)]
-            loss_floor = 1e-12 * max(problem.sum_wp2, np.finfo(float).tiny)  # an exact fit has loss ~ 0
-            stop_reason = "max_sweeps"
-            for sweep in range(1, max_sweeps + 1):
-                start = time.perf_counter()
-                for n in update_modes:
-                    als.update_mode(problem, n, cg_steps if solver == "cg" else 0)
-                record = SweepRecord(sweep, *als.loss_and_fit(problem), time.perf_counter() - start)
-                history.append(record)
-                if callback is not None and callback(record, _read_only_views(problem)):
-                    stop_reason = "callback"
-                    break
-                change = abs(history[-2].loss - record.loss) / max(abs(history[-2].loss), loss_floor)
-                if tol > 0 and change < tol:
-                    stop_reason = "converged"
-                    break
-    finally:
-        kernels.set_threads(previous_threads)
+    with kernels.threads(n_threads):
+        problem = als.make_problem(tensor, factors, active, reg=reg, update_modes=update_modes)
+        history = [SweepRecord(0, *als.loss_and_fit(problem), time.perf_counter() - start)]
+        loss_floor = 1e-12 * max(problem.sum_wp2, np.finfo(float).tiny)  # an exact fit has loss ~ 0
+        stop_reason = "max_sweeps"
+        for sweep in range(1, max_sweeps + 1):
+            start = time.perf_counter()
+            for n in update_modes:
+                als.update_mode(problem, n, cg_steps if solver == "cg" else 0)
+            record = SweepRecord(sweep, *als.loss_and_fit(problem), time.perf_counter() - start)
+            history.append(record)
+            if callback is not None and callback(record, _read_only_views(problem)):
+                stop_reason = "callback"
+                break
+            change = abs(history[-2].loss - record.loss) / max(abs(history[-2].loss), loss_floor)
+            if tol > 0 and change < tol:
+                stop_reason = "converged"
+                break
     if stop_reason == "max_sweeps" and tol > 0:
         warnings.warn(
             f"fit_cp stopped after max_sweeps={max_sweeps} sweeps before the relative loss change fell "
@@ -483,13 +478,9 @@ def fold_in(result: CPResult, tensor: SparseTensor, mode: int | str, *, n_thread
     factors = result.unnormalized_factors()
     factors[n] = np.zeros((tensor.shape[n], result.rank), dtype=dtype)
     active = result.structure.active_mask(result.mode_names)
-    previous_threads = kernels.set_threads(n_threads)
-    try:
-        with threadpool_limits(limits=1, user_api="blas"):
-            problem = als.make_problem(tensor.astype(dtype), factors, active, reg=result.reg, update_modes=(n,))
-            als.update_mode(problem, n, 0)
-    finally:
-        kernels.set_threads(previous_threads)
+    with kernels.threads(n_threads):
+        problem = als.make_problem(tensor.astype(dtype), factors, active, reg=result.reg, update_modes=(n,))
+        als.update_mode(problem, n, 0)
     rows = problem.factor(n).copy()
     cols = np.flatnonzero(active[n])
     norms = result.column_norms[n, cols]

@@ -176,7 +176,8 @@ class EvaluationResult:
                  tables.text_table(self.table)]
         if not self.comparisons.empty:
             c = self.comparisons
-            lines.append("paired comparison with " + str(c["baseline"].iloc[0]) + " (per-user means):")
+            c = c[c["metric"].isin(("recall", "ndcg", "ndcg_true")) & (c["k"] == c["k"].max())]
+            lines.append(f"paired comparison with {c['baseline'].iloc[0]} (per-user means, all K in .comparisons):")
             lines.append(c.to_string(index=False, float_format=lambda x: f"{x:.4g}"))
         if self.cold_share:
             lines.append("clicks unseen at training: " + ", ".join(f"{k} {v:.1%}" if isinstance(v, float) else f"{k} {v}"

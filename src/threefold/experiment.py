@@ -15,7 +15,6 @@ The data and fitting steps (:func:`load_dataset`, :func:`prepare_stage`,
 
 from __future__ import annotations
 
-import tempfile
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -196,35 +195,13 @@ class TrainReport:
 
 
 def log_pyfunc_model(store, result, config: ExperimentConfig, dataset: Dataset, data: StageData, name: str) -> str:
-    """Save ``result`` as a model folder and log it as a pyfunc model of the active run; returns its URI."""
-    import mlflow
-
-    from threefold import __version__
-    from threefold.model_io import save_model
-    from threefold.pyfunc_model import pyfunc_entry_path, signature_for
+    """Log ``result`` as a pyfunc model of the active run, with the live interval of every item; returns its URI."""
+    from threefold.pyfunc_model import log_pyfunc
     from threefold.queries import catalog_times
 
-    serving = serving_metadata(config)
     published, expires = catalog_times(result.vocabularies[1], dataset.items, data.stage.train)
-    requirements = [f"threefold=={__version__}"] + [f"{lib}=={_version(lib)}" for lib in
-                                                    ("mlflow", "numpy", "pandas", "scipy", "numba", "pyarrow")]
-    with tempfile.TemporaryDirectory() as tmp:
-        folder = Path(tmp) / "model"
-        save_model(result, folder, parameters=config.models[name], training_fingerprint=dataset.fingerprint,
-                   extra={"serving": serving, "name": name},
-                   extra_arrays={"published_at": published, "expires_at": expires})
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # MLflow's advice on type hints and input examples
-            info = store.call(mlflow.pyfunc.log_model, name="model", python_model=str(pyfunc_entry_path()),
-                              artifacts={"model": str(folder)}, signature=signature_for(serving),
-                              pip_requirements=requirements)
-    return info.model_uri
-
-
-def _version(lib: str) -> str:
-    import importlib.metadata
-
-    return importlib.metadata.version(lib)
+    return log_pyfunc(store, result, serving_metadata(config), published=published, expires=expires,
+                      parameters=config.models[name], training_fingerprint=dataset.fingerprint)
 
 
 def log_outcome(store, run_id: str, outcome: FitOutcome, config: ExperimentConfig) -> dict:

@@ -28,6 +28,7 @@ from typing import Callable, Sequence
 import numpy as np
 import scipy.linalg
 
+from threefold import kernels
 from threefold._checks import check_choice, check_int, check_number
 from threefold.cp import SweepRecord
 from threefold.exceptions import ConvergenceWarning
@@ -39,7 +40,6 @@ from threefold.tucker import (
     check_tucker_rank,
     hosvd_factors,
     read_only_model,
-    fit_threads,
 )
 from threefold.tucker_kernels import build_fiber_tree, ttmc
 
@@ -179,7 +179,9 @@ def fit_hooi(
     if callback is not None and not callable(callback):
         raise ValueError(f"The 'callback' parameter of {owner} must be callable or None. Got {callback!r} instead.")
     rng = np.random.default_rng(random_state)
-    with fit_threads(n_threads, owner):
+    if n_threads is not None:
+        check_int("n_threads", n_threads, low=1, owner=owner)
+    with kernels.threads(n_threads):
         start = time.perf_counter()
         values = tensor.preference.astype(np.float64)
         norm_sq = float(values @ values)

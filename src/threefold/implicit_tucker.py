@@ -41,6 +41,7 @@ from typing import Callable, Sequence
 import numpy as np
 import scipy.linalg
 
+from threefold import kernels
 from threefold._checks import check_choice, check_int, check_number
 from threefold.cp import SweepRecord
 from threefold.exceptions import ConvergenceWarning
@@ -52,7 +53,6 @@ from threefold.tucker import (
     check_tucker_rank,
     hosvd_factors,
     read_only_model,
-    fit_threads,
 )
 from threefold.tucker_kernels import FiberTree, build_fiber_tree, evaluate, implicit_rows, ttmc
 
@@ -360,7 +360,9 @@ def fit_implicit_tucker(
     tensor = replace(tensor, evidence=None, dtype=np.dtype(np.float64), stored_preference=preference,
                      stored_confidence=confidence)
     rng = np.random.default_rng(random_state)
-    with fit_threads(n_threads, owner):
+    if n_threads is not None:
+        check_int("n_threads", n_threads, low=1, owner=owner)
+    with kernels.threads(n_threads):
         start = time.perf_counter()
         trees: dict[int, FiberTree] = {}
         core, factors = _initial_model(tensor, rank, init, rng, trees)

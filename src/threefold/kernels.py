@@ -25,26 +25,40 @@ Slow reference of the correction terms (what the kernels compute, never formed):
 
 Every kernel takes float32 or float64 factors; systems are accumulated and
 solved in float64. No dense tensor and no Khatri–Rao product is ever formed.
+The kernels call BLAS from their parallel loops: run them with BLAS limited
+to one thread (:func:`threads` does both).
 """
 
 from __future__ import annotations
 
+from contextlib import contextmanager
+
 import numba
 import numpy as np
 from numba import njit, prange
+from threadpoolctl import threadpool_limits
 
-__all__ = ["solve_rows", "block_systems", "solve_systems", "stored_sums", "set_threads"]
+#: Reassociation lets LLVM vectorize the short dot products; results stay
+#: deterministic (same code, same inputs, same order of blocks).
+_FAST = {"reassoc", "contract"}
+
+__all__ = ["solve_rows", "block_systems", "solve_systems", "stored_sums", "threads"]
 
 
-def set_threads(n_threads: int | None) -> int:
-    """Set numba's thread count (``None`` keeps it); return the previous count."""
+@contextmanager
+def threads(n_threads: int | None):
+    """Run a block with ``n_threads`` numba threads (``None``: unchanged) and one BLAS thread."""
     previous = numba.get_num_threads()
     if n_threads is not None:
         numba.set_num_threads(min(int(n_threads), numba.config.NUMBA_NUM_THREADS))
-    return previous
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            yield
+    finally:
+        numba.set_num_threads(previous)
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=_FAST)
 def _gather(F, other, start, n, active, inactive, V, off, v):
     """Fill ``V[:n]`` with the other-mode products of cells ``start .. start+n``."""
     R = F.shape[1]
@@ -65,23 +79,32 @@ def _gather(F, other, start, n, active, inactive, V, off, v):
         off[j] = s
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=_FAST)
 def _accumulate(V, off, c, wp, start, n, Vc, part, M, b):
-    """``M += Σ c_e v_e v_eᵀ`` (one BLAS product) and ``b += Σ (wp_e − c_e off_e) v_e``."""
+    """``M += Σ c_e v_e v_eᵀ`` (one BLAS product ``(c·V)ᵀ V``) and ``b += Σ (wp_e − c_e off_e) v_e``.
+
+    ``M`` and ``b`` are float64; the product is formed in the factor dtype. A
+    group of cells whose weights all equal ``w0`` (``c = 0``) adds nothing to
+    ``M`` and skips the product.
+    """
     k = V.shape[1]
+    any_c = False
     for j in range(n):
         ce = c[start + j]
         coef = wp[start + j] - ce * off[j]
+        any_c = any_c or ce != 0.0
         for a in range(k):
             Vc[j, a] = ce * V[j, a]
             b[a] += coef * V[j, a]
+    if not any_c:
+        return
     np.dot(Vc[:n].T, V[:n], part)
     for a in range(k):
         for d in range(k):
             M[a, d] += part[a, d]
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=_FAST)
 def _cholesky(L):
     """In-place lower Cholesky factor of ``L``; False when not positive definite."""
     k = L.shape[0]
@@ -101,7 +124,7 @@ def _cholesky(L):
     return True
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=_FAST)
 def _solve_spd(M, b, x, L):
     """Solve ``M x = b`` for symmetric positive (semi)definite ``M``; False if hopeless.
 
@@ -135,7 +158,7 @@ def _solve_spd(M, b, x, L):
     return True
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=_FAST)
 def _apply(F, other, c, lo, hi, active, inactive, V, off, v, resident, base, x, out):
     """``out = M x`` without forming ``M``: ``base x + Σ_e c_e (v_eᵀ x) v_e``."""
     k = active.size
@@ -161,7 +184,7 @@ def _apply(F, other, c, lo, hi, active, inactive, V, off, v, resident, base, x, 
                 out[a] += y * V[j, a]
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=_FAST)
 def _conjugate_gradient(F, other, c, lo, hi, active, inactive, V, off, v, resident, base, b, x, steps, work):
     """``steps`` CG iterations on ``M x = b`` from the current ``x`` (Takács et al. 2011)."""
     r = work[0]
@@ -194,7 +217,7 @@ def _conjugate_gradient(F, other, c, lo, hi, active, inactive, V, off, v, reside
         rs = rs_new
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, fastmath=_FAST)
 def solve_rows(F, row_offset, indptr, other, c, wp, active, inactive, base, rhs0, chunk_bounds, cg_steps, buffer_cells):
     """Update the rows of one mode in place, in parallel over chunks of rows.
 
@@ -268,13 +291,13 @@ def solve_rows(F, row_offset, indptr, other, c, wp, active, inactive, base, rhs0
                 F[g, active[a]] = x[a]
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, fastmath=_FAST)
 def block_systems(F, other, c, wp, block_starts, block_stops, active, inactive, grams, rhs):
     """Correction terms of row systems, one block of cells at a time (for modes with few rows).
 
     A mode with few rows and many cells (a context mode) parallelizes badly
-    over rows; instead its cells are cut into blocks and each block's
-    ``Σ c_e v_e v_eᵀ`` is one BLAS matrix product. The caller adds the blocks
+    over rows; instead its cells are cut into blocks, blocks run in parallel,
+    and each block's ``Σ c_e v_e v_eᵀ`` is one BLAS product ``(c·V)ᵀ V``. The caller adds the blocks
     of each row to ``base`` and ``rhs0`` and solves.
 
     Parameters
@@ -303,7 +326,7 @@ def block_systems(F, other, c, wp, block_starts, block_stops, active, inactive, 
         _accumulate(V, off, c, wp, start, n, Vc, part, grams[blk], rhs[blk])
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, fastmath=_FAST)
 def stored_sums(F, coords, offsets, p, w, w0, n_chunks):
     """Per-chunk sums over stored cells needed by the loss.
 
@@ -331,15 +354,20 @@ def stored_sums(F, coords, offsets, p, w, w0, n_chunks):
     for ch in prange(n_chunks):
         lo = ch * nnz // n_chunks
         hi = (ch + 1) * nnz // n_chunks
+        v = np.empty(R)
         s_px = 0.0
         s_err = 0.0
         for e in range(lo, hi):
+            g = offsets[0] + coords[0, e]
+            for r in range(R):
+                v[r] = F[g, r]
+            for m in range(1, ndim):
+                g = offsets[m] + coords[m, e]
+                for r in range(R):
+                    v[r] *= F[g, r]
             xhat = 0.0
             for r in range(R):
-                prod = 1.0
-                for m in range(ndim):
-                    prod *= F[offsets[m] + coords[m, e], r]
-                xhat += prod
+                xhat += v[r]
             s_px += p[e] * xhat
             s_err += (w[e] - w0) * (p[e] - xhat) ** 2
         out[ch, 0] = s_px

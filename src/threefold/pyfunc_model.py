@@ -47,7 +47,7 @@ from threefold.context import ColumnContext, CrossedContext, parse_context, spec
 from threefold.metrics import top_k
 from threefold.model_io import load_model
 
-__all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for", "pyfunc_entry_path"]
+__all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for", "pyfunc_entry_path", "log_pyfunc"]
 
 OUTPUT_COLUMNS = ("request_id", "user_id", "item_id", "rank", "score", "status")
 _FALLBACK_LABEL = "\x00threefold-fallback"
@@ -290,6 +290,50 @@ def _untrained_rows(result, mode: int) -> np.ndarray:
     if not columns.any():
         return np.zeros(factor.shape[0], dtype=bool)
     return np.all(factor[:, columns] == 0, axis=1)
+
+
+def log_pyfunc(store, result, serving: dict, *, published: np.ndarray | None = None, expires: np.ndarray | None = None,
+               parameters: dict | None = None, training_fingerprint: dict | None = None, name: str = "model") -> str:
+    """Save ``result`` as a model folder and log it as a pyfunc model of the active run.
+
+    Parameters
+    ----------
+    store : threefold.store.RunStore
+    result : CPResult or TuckerResult
+    serving : dict
+        ``contexts``, ``timezone``, ``daypart_starts``, ``daypart_labels``: how
+        requests' context levels are derived (as in the config's ``[build]``).
+    published, expires : ndarray of shape (n_items,), int64, or None
+        Live interval of each item (see :class:`Recommender`).
+    parameters, training_fingerprint : dict or None
+        Recorded in the model folder's metadata.
+    name : str, default="model"
+
+    Returns
+    -------
+    str
+        The model URI MLflow returns (``models:/...``).
+    """
+    import importlib.metadata
+    import tempfile
+    import warnings
+
+    from threefold import __version__
+    from threefold.model_io import save_model
+
+    extra_arrays = {k: v for k, v in (("published_at", published), ("expires_at", expires)) if v is not None}
+    requirements = [f"threefold=={__version__}"] + [f"{lib}=={importlib.metadata.version(lib)}" for lib in
+                                                    ("mlflow", "numpy", "pandas", "scipy", "numba", "pyarrow")]
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp) / "model"
+        save_model(result, folder, parameters=parameters, training_fingerprint=training_fingerprint,
+                   extra={"serving": serving, "name": name}, extra_arrays=extra_arrays)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # MLflow's advice on type hints and input examples
+            info = store.call(mlflow.pyfunc.log_model, name=name, python_model=str(pyfunc_entry_path()),
+                              artifacts={"model": str(folder)}, signature=signature_for(serving),
+                              pip_requirements=requirements)
+    return info.model_uri
 
 
 class RecommenderPyfunc(mlflow.pyfunc.PythonModel):

@@ -40,7 +40,7 @@ import numpy as np
 import pandas as pd
 
 from threefold._checks import check_choice, check_int
-from threefold.build import build_tensor
+from threefold.build import BuildReport, build_tensor
 from threefold.context import ContextSpec
 from threefold.tensor import SparseTensor
 from threefold.vocabulary import Vocabulary
@@ -108,7 +108,7 @@ class Stage:
     protocol: str
     dropped_requests: int = 0
 
-    def train_tensor(self, contexts: Sequence[ContextSpec] = (), **build_options) -> tuple[SparseTensor, object]:
+    def train_tensor(self, contexts: Sequence[ContextSpec] = (), **build_options) -> tuple[SparseTensor, BuildReport]:
         """Training tensor of this stage; its vocabularies come from the training events only.
 
         ``build_options`` go to :func:`threefold.build.build_tensor`
@@ -122,7 +122,7 @@ class Stage:
 
     def evaluation_tensor(
         self, contexts: Sequence[ContextSpec], vocabularies: Sequence[Vocabulary], **build_options
-    ) -> tuple[SparseTensor, object]:
+    ) -> tuple[SparseTensor, BuildReport]:
         """Tensor of the evaluation events against frozen training vocabularies.
 
         Users and items outside them are dropped and counted (``unseen_ids="drop"``),

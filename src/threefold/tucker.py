@@ -17,14 +17,11 @@ how to read the core.
 
 from __future__ import annotations
 
-from contextlib import contextmanager
 from dataclasses import dataclass, replace
 from typing import Sequence
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from threefold import kernels
 from threefold._checks import check_choice, check_int
 from threefold.cp import STOP_REASONS, SweepRecord
 from threefold.cp import _mode_position as mode_position
@@ -347,24 +344,6 @@ def hosvd_factors(tensor: SparseTensor, rank: tuple[int, ...], rng: np.random.Ge
         q, r = np.linalg.qr(u)
         factors.append(q * np.where(np.diag(r) < 0, -1.0, 1.0))  # keeps the leading vectors and their signs
     return factors
-
-
-@contextmanager
-def fit_threads(n_threads: int | None, owner: str):
-    """Run a fit with ``n_threads`` numba threads and single-threaded BLAS (as the CP engine).
-
-    The parallel work is in the numba kernels; BLAS calls between them are
-    small, and a multithreaded BLAS next to numba's threads only oversubscribes
-    the cores.
-    """
-    if n_threads is not None:
-        check_int("n_threads", n_threads, low=1, owner=owner)
-    previous = kernels.set_threads(n_threads)
-    try:
-        with threadpool_limits(limits=1, user_api="blas"):
-            yield
-    finally:
-        kernels.set_threads(previous)
 
 
 def read_only_model(core: np.ndarray, factors: Sequence[np.ndarray]) -> tuple[np.ndarray, tuple[np.ndarray, ...]]:

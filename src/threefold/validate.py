@@ -11,10 +11,12 @@ across chunks as 64-bit hashes (see ``threefold._hashing``): the kept rows
 (duplicates), the users with their event counts and first rows, the items, the
 requests, the (request, item) keys and the (user, item) keys and times of
 impressions, and the keys of clicks, which are matched against impressions once
-the whole log has been read. The report is the same for any chunk size. Memory grows by about
-12-23 bytes per distinct kept row, per distinct item, request and (request,
-item) impression key, 35-70 per distinct user, 16 per impression (its
-(user, item) key and time) and 24 per click, on top of one chunk.
+the whole log has been read. The report is the same for any chunk size.
+
+Memory grows by about 12-23 bytes per distinct kept row, per distinct item,
+request and (request, item) impression key, 35-70 per distinct user, 16 per
+impression (its (user, item) key and time) and 24 per click, on top of one
+chunk.
 """
 
 from __future__ import annotations
