@@ -136,7 +136,7 @@ def main() -> None:
         "| contender | rows | wall time (s) | peak RSS (MB) | time / pyarrow read_csv |",
         "| --- | ---: | ---: | ---: | ---: |",
     ]
-    results = {}
+    results, load_start = {}, os.getloadavg()[0]
     for name in CONTENDERS:
         out = subprocess.run([sys.executable, __file__, "--child", name, "--path", args.path],
                              check=True, capture_output=True, text=True).stdout
@@ -145,7 +145,9 @@ def main() -> None:
     ref = results["pyarrow read_csv (reference)"]["seconds"]
     for name, r in results.items():
         lines.append(f"| {name} | {r['rows']:,} | {r['seconds']:.1f} | {r['peak_mb']:,.0f} | {r['seconds'] / ref:.1f} |")
-    lines += ["", "Reproduce:", "", "```",
+    lines += ["", f"1-minute load average (the machine is shared): {load_start:.1f} at the start, "
+              f"{os.getloadavg()[0]:.1f} at the end; compare ratios rather than absolute times.",
+              "", "Reproduce:", "", "```",
               f"python experiments/benchmarks/event_log_io.py --rows {args.rows} --path {args.path}"
               + (f" --out {args.out}" if args.out else ""), "```"]
     text = "\n".join(lines) + "\n"
