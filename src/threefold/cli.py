@@ -65,7 +65,9 @@ def _parser() -> argparse.ArgumentParser:
     build.add_argument("out", help="tensor folder to write (a new version each time)")
     build.add_argument("--context", action="append", default=[], metavar="MODE",
                        help="context mode: 'daypart', 'week_part', a column, or columns crossed with '*' (repeatable)")
-    build.add_argument("--timezone", default="UTC", help="IANA zone for dayparts (and zone-less timestamps)")
+    build.add_argument("--timezone", default=None,
+                       help="IANA zone of dayparts and of timestamps written without an offset (default: UTC dayparts; "
+                            "zone-less timestamps are then errors)")
     build.add_argument("--daypart-starts", dest="daypart_starts", default=None,
                        help="comma-separated local start hours, e.g. 5,9,12,17,21")
     build.add_argument("--daypart-labels", dest="daypart_labels", default=None, help="comma-separated labels")
@@ -155,7 +157,7 @@ def cmd_runs(args: argparse.Namespace) -> int:
         return 0
     store = open_store(args.store)
     for run_id, reason in store.reap_stale_runs():
-        print(f"marked run {run_id} killed ({reason})")
+        print(f"marked run {run_id} killed ({reason})", file=sys.stderr if args.json else sys.stdout)
     if args.action == "cleanup":
         return 0
     if args.action == "compare":
@@ -211,22 +213,30 @@ def _contexts(names: Sequence[str], timezone: str, starts: str | None, labels: s
 
 
 def build_from_log(events_path, contexts, weighting, *, negatives, timezone, salt=None, position_propensity=False):
-    """Load a log, optionally estimate propensities, and build its tensor (shared by ``build`` and ``demo``)."""
+    """Validate and load a log in one pass, estimate position propensities, build its tensor.
+
+    Shared by ``build`` and ``demo``. Rows the validation counts as bad are dropped
+    and counted; errors are printed as warnings, since the tensor never sees those rows.
+    """
     from threefold.build import build_tensor
-    from threefold.events import load_events
-    from threefold.propensity import estimate_position_propensity
+    from threefold.propensity import PROPENSITY_COLUMNS, estimate_position_propensity
+    from threefold.validate import load_validated_events
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        events = load_events(events_path, timezone=timezone, hash_user_ids_salt=salt, errors="drop")
+        events, validation = load_validated_events(events_path, timezone=timezone, hash_user_ids_salt=salt)
         propensity = None
-        if position_propensity or {"position", "request_id", "event"} <= set(events.columns):
-            if {"position", "request_id", "event"} <= set(events.columns):
-                propensity = estimate_position_propensity(events)
+        if set(PROPENSITY_COLUMNS) <= set(events.columns):
+            propensity = estimate_position_propensity(events)
+        elif position_propensity:
+            raise ValueError(f"--position-propensity needs the columns {list(PROPENSITY_COLUMNS)} in the log.")
         tensor, report = build_tensor(
             events, contexts, weighting=weighting, negatives=negatives,
-            click_propensity=propensity.ratios if (position_propensity and propensity is not None) else None,
+            click_propensity=propensity.ratios if position_propensity else None,
         )
+    for problem in validation.problems:
+        print(f"warning: {problem.severity} in column {problem.column!r}: {problem.count:,} row(s) "
+              f"({problem.code}); see `threefold validate`", file=sys.stderr)
     _print_warnings(caught)
     return events, tensor, report, propensity
 
@@ -245,7 +255,7 @@ def _print_tensor_summary(tensor, report, propensity) -> None:
 def cmd_build(args: argparse.Namespace) -> int:
     from threefold.tensor_io import save_tensor
 
-    contexts = _contexts(args.context, args.timezone, args.daypart_starts, args.daypart_labels)
+    contexts = _contexts(args.context, args.timezone or "UTC", args.daypart_starts, args.daypart_labels)
     _, tensor, report, propensity = build_from_log(
         args.events, contexts, _weighting(args), negatives=args.negatives, timezone=args.timezone,
         salt=args.hash_user_ids_salt, position_propensity=args.position_propensity,

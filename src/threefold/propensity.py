@@ -28,11 +28,16 @@ import pandas as pd
 from threefold._checks import check_int, check_number
 
 __all__ = [
+    "PROPENSITY_COLUMNS",
     "PositionPropensity",
     "PropensityWarning",
     "estimate_position_propensity",
     "pbm_posteriors",
 ]
+
+
+#: Columns a log needs for position propensities.
+PROPENSITY_COLUMNS = ("event", "position", "request_id", "item_id")
 
 
 class PropensityWarning(UserWarning):
