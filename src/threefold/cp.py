@@ -1,4 +1,4 @@
-"""CP models of implicit feedback tensors: the fit, its result, fold-in and the estimator.
+"""CP models of implicit feedback tensors: the fit, fold-in and the estimator.
 
 ``fit_cp`` minimizes, over all cells of a :class:`~threefold.tensor.SparseTensor`,
 
@@ -25,218 +25,20 @@ from __future__ import annotations
 
 import time
 import warnings
-from dataclasses import dataclass, replace
 from typing import Callable, Sequence
 
 import numpy as np
 
 from threefold import als, kernels
 from threefold._checks import check_choice, check_int, check_number
+from threefold.cp_result import CPResult, SweepRecord, mode_position
 from threefold.exceptions import ConvergenceWarning
 from threefold.initialize import initial_factors
-from threefold.scoring import Scorer, ScoreTerms, check_queries
+from threefold.scoring import Scorer, ScoreTerms
 from threefold.structure import Structure, resolve_structure
 from threefold.tensor import SparseTensor
-from threefold.vocabulary import Vocabulary
 
 __all__ = ["SweepRecord", "CPResult", "fit_cp", "fold_in", "CPModel"]
-
-STOP_REASONS = ("converged", "max_sweeps", "callback")
-
-
-@dataclass(frozen=True)
-class SweepRecord:
-    """Progress after one sweep (sweep 0 is the initial state).
-
-    Attributes
-    ----------
-    sweep : int
-    loss : float
-        The full objective, regularization included.
-    fit : float
-        Weighted relative fit ``1 − sqrt(Σ w (p − x̂)² / Σ w p²)``.
-    seconds : float
-        Wall time of this sweep (of the initialization for sweep 0).
-    """
-
-    sweep: int
-    loss: float
-    fit: float
-    seconds: float
-
-
-@dataclass(frozen=True, eq=False)
-class CPResult(Scorer):
-    """A fitted CP model: ``x̂ = Σ_r weights[r] · Π_n factors[n][i_n, r]``.
-
-    Components are normalized (every column a mode owns has unit norm; the
-    others are the constant 1) and sorted by decreasing weight within each
-    structure term. Validated at construction.
-
-    Parameters
-    ----------
-    weights : ndarray of shape (R,), float64
-        λ: product of each component's column norms.
-    factors : tuple of ndarray of shape (I_n, R), float32 or float64
-    column_norms : ndarray of shape (ndim, R), float64
-        The norms the columns had at the end of fitting (1 where a mode does
-        not own a column). With regularization the split of scale across modes
-        matters, so fold-in and warm starts rebuild the fitted factors from
-        them (:meth:`unnormalized_factors`).
-    structure : Structure
-    mode_names : tuple of str
-    vocabularies : tuple of Vocabulary or None
-    history : tuple of SweepRecord
-        Sweep 0 (initial state) first.
-    stop_reason : {"converged", "max_sweeps", "callback"}
-    w0, reg : float
-        The weight of cells not stored and the regularization it was fitted with.
-    """
-
-    weights: np.ndarray
-    factors: tuple[np.ndarray, ...]
-    column_norms: np.ndarray
-    structure: Structure
-    mode_names: tuple[str, ...]
-    vocabularies: tuple[Vocabulary | None, ...]
-    history: tuple[SweepRecord, ...]
-    stop_reason: str
-    w0: float
-    reg: float
-
-    def __post_init__(self) -> None:
-        factors = tuple(np.asarray(f) for f in self.factors)
-        object.__setattr__(self, "factors", factors)
-        rank = self.structure.rank
-        ndim = len(self.mode_names)
-        if ndim < 2 or len(factors) != ndim or len(self.vocabularies) != ndim:
-            raise ValueError(
-                f"CPResult needs one factor and one vocabulary per mode for {ndim} modes "
-                f"(at least 2); got {len(factors)} factors and {len(self.vocabularies)} vocabularies."
-            )
-        weights = np.asarray(self.weights, dtype=np.float64)
-        if weights.shape != (rank,) or not np.all(np.isfinite(weights)) or np.any(weights < 0):
-            raise ValueError(f"weights must be {rank} finite non-negative values, got shape {weights.shape}.")
-        object.__setattr__(self, "weights", weights)
-        norms = np.asarray(self.column_norms, dtype=np.float64)
-        if norms.shape != (ndim, rank):
-            raise ValueError(f"column_norms must have shape ({ndim}, {rank}), got {norms.shape}.")
-        object.__setattr__(self, "column_norms", norms)
-        mask = self.structure.active_mask(self.mode_names)
-        for n, (name, factor) in enumerate(zip(self.mode_names, factors)):
-            if factor.ndim != 2 or factor.shape[1] != rank or factor.dtype not in (np.float32, np.float64):
-                raise ValueError(
-                    f"Factor of mode {name!r} must be a float32 or float64 array of shape (I, {rank}), "
-                    f"got {factor.dtype} {factor.shape}."
-                )
-            if not np.all(factor[:, ~mask[n]] == 1):
-                raise ValueError(f"Factor of mode {name!r} must hold 1 in the columns its mode does not use.")
-            vocab = self.vocabularies[n]
-            if vocab is not None and len(vocab) != factor.shape[0]:
-                raise ValueError(
-                    f"Factor of mode {name!r} has {factor.shape[0]} rows but its vocabulary {len(vocab)} labels."
-                )
-        check_choice("stop_reason", self.stop_reason, STOP_REASONS, owner="CPResult")
-
-    # ------------------------------------------------------------------ summary
-    @property
-    def shape(self) -> tuple[int, ...]:
-        """Mode sizes (user, item, context...)."""
-        return tuple(f.shape[0] for f in self.factors)
-
-    @property
-    def rank(self) -> int:
-        """Number of components."""
-        return self.weights.shape[0]
-
-    @property
-    def n_sweeps(self) -> int:
-        """Sweeps run (the initial state not counted)."""
-        return len(self.history) - 1
-
-    @property
-    def converged(self) -> bool:
-        """True when the relative loss change fell below ``tol``."""
-        return self.stop_reason == "converged"
-
-    @property
-    def loss(self) -> float:
-        """Final loss."""
-        return self.history[-1].loss
-
-    @property
-    def fit(self) -> float:
-        """Final weighted relative fit."""
-        return self.history[-1].fit
-
-    def unnormalized_factors(self) -> list[np.ndarray]:
-        """The factors as fitted (columns times their norms), for warm starts and fold-in."""
-        return [(f * self.column_norms[n]).astype(f.dtype) for n, f in enumerate(self.factors)]
-
-    def to_tensorly(self):
-        """The model as a ``tensorly.cp_tensor.CPTensor`` (float64)."""
-        from tensorly.cp_tensor import CPTensor
-
-        return CPTensor((self.weights.copy(), [f.astype(np.float64) for f in self.factors]))
-
-    def predict(self, coords: np.ndarray) -> np.ndarray:
-        """Model values at given cells.
-
-        Parameters
-        ----------
-        coords : array-like of shape (ndim, n), int
-
-        Returns
-        -------
-        ndarray of shape (n,), float64
-        """
-        coords = np.asarray(coords, dtype=np.int64).reshape(len(self.factors), -1)
-        rows = np.tile(self.weights, (coords.shape[1], 1))
-        for n, f in enumerate(self.factors):
-            rows *= f[coords[n]]
-        return rows.sum(axis=1)
-
-    # ------------------------------------------------------------------ scoring interface
-    def query_matrix(self, users: np.ndarray, contexts: np.ndarray | None = None) -> np.ndarray:
-        """ndarray of shape (q, R), float64: ``λ ⊙ user row ⊙ context rows`` per query."""
-        users, contexts = check_queries(users, contexts, self.shape)
-        q = self.weights * self.factors[0][users]
-        for j in range(contexts.shape[1]):
-            q *= self.factors[2 + j][contexts[:, j]]
-        return q
-
-    def item_matrix(self) -> np.ndarray:
-        """ndarray of shape (n_items, R): the item factor."""
-        return self.factors[1]
-
-    def score_terms(self, user: int, context, item: int) -> ScoreTerms:
-        """One term per component (labels ``"user*item #0"``, ...), summing to the score."""
-        context = np.asarray(context, dtype=np.int64).reshape(1, -1)
-        q = self.query_matrix(np.array([user]), context if context.size else None)[0]
-        if not 0 <= item < self.shape[1]:
-            raise IndexError(f"item index must lie in [0, {self.shape[1]}), got {item}.")
-        return ScoreTerms(labels=self.structure.component_labels(), values=q * self.factors[1][item])
-
-    def with_rows(self, mode: int | str, rows: np.ndarray, labels: Sequence[str] | None = None) -> "CPResult":
-        """The model with rows appended to one mode (e.g. folded-in newcomers).
-
-        Parameters
-        ----------
-        mode : int or str
-        rows : ndarray of shape (n_new, R)
-            As returned by :func:`fold_in`.
-        labels : sequence of str, optional
-            Their labels; required when the mode has a vocabulary.
-        """
-        n = _mode_position(self.mode_names, mode)
-        factors = list(self.factors)
-        factors[n] = np.concatenate([factors[n], np.asarray(rows, dtype=factors[n].dtype)], axis=0)
-        vocabularies = list(self.vocabularies)
-        if vocabularies[n] is not None:
-            if labels is None or len(labels) != len(rows):
-                raise ValueError(f"Mode {self.mode_names[n]!r} has a vocabulary: give one label per new row.")
-            vocabularies[n] = Vocabulary(vocabularies[n].labels + tuple(labels), name=vocabularies[n].name)
-        return replace(self, factors=tuple(factors), vocabularies=tuple(vocabularies))
 
 
 # ---------------------------------------------------------------------- fitting
@@ -327,7 +129,7 @@ def fit_cp(
         tensor = tensor.astype(dtype)
     structure = resolve_structure(structure, tensor.mode_names, rank)
     active = structure.active_mask(tensor.mode_names)
-    fixed = {_mode_position(tensor.mode_names, m) for m in fixed_modes}
+    fixed = {mode_position(tensor.mode_names, m) for m in fixed_modes}
     update_modes = tuple(n for n in range(tensor.ndim) if n not in fixed and active[n].any())
     rng = np.random.default_rng(random_state)
 
@@ -429,16 +231,6 @@ def _normalize(
     return weights[order], [f[:, order] for f in factors], norms[:, order]
 
 
-def _mode_position(mode_names: Sequence[str], mode: int | str) -> int:
-    if isinstance(mode, str):
-        if mode not in mode_names:
-            raise KeyError(f"No mode named {mode!r}; modes are {tuple(mode_names)}.")
-        return list(mode_names).index(mode)
-    if isinstance(mode, bool) or not isinstance(mode, (int, np.integer)) or not -len(mode_names) <= mode < len(mode_names):
-        raise IndexError(f"Mode {mode!r} out of range for a {len(mode_names)}-way model.")
-    return int(mode) % len(mode_names)
-
-
 # ---------------------------------------------------------------------- fold-in
 def fold_in(result: CPResult, tensor: SparseTensor, mode: int | str, *, n_threads: int | None = None) -> np.ndarray:
     """Rows for new users, items or context levels, solved from their own cells.
@@ -464,7 +256,7 @@ def fold_in(result: CPResult, tensor: SparseTensor, mode: int | str, *, n_thread
         In the model's normalized coordinates (ready for :meth:`CPResult.with_rows`);
         a row with no cells is zero in a plain CP.
     """
-    n = _mode_position(result.mode_names, mode)
+    n = mode_position(result.mode_names, mode)
     if tensor.mode_names != result.mode_names:
         raise ValueError(f"fold_in: the tensor's modes {tensor.mode_names} differ from the model's {result.mode_names}.")
     for m, name in enumerate(result.mode_names):
