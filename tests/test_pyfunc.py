@@ -4,7 +4,6 @@ import json
 import re
 import subprocess
 import sys
-import textwrap
 
 import numpy as np
 import pandas as pd

@@ -5,9 +5,7 @@ import signal
 import sqlite3
 import subprocess
 import sys
-import textwrap
 import threading
-import time
 from pathlib import Path
 
 import pytest

@@ -21,6 +21,8 @@ from typing import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from threefold.bundle import _sha256 as file_sha256  # one SHA-256 reader for bundles and data files
+
 __all__ = ["SweepLogger", "file_sha256", "dataset_fingerprint", "environment_tags", "log_params", "log_metrics",
            "overall_metrics", "peak_memory_mb", "loss_curve_figure", "context_levels_figure", "LIBRARIES"]
 
@@ -63,15 +65,6 @@ class SweepLogger:
         for record in history:
             if record.sweep not in seen:
                 self(record)
-
-
-def file_sha256(path: Path) -> str:
-    """SHA-256 of a file, read in 1 MiB blocks."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def dataset_fingerprint(paths: Mapping[str, str | None], events: pd.DataFrame, items: pd.DataFrame | None) -> dict:
