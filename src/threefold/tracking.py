@@ -185,8 +185,9 @@ def loss_curve_figure(history: Sequence, title: str):
     ax_loss.plot(sweeps, [r.loss for r in history], marker="o")
     ax_loss.set(xlabel="sweep", ylabel="loss", title=f"{title}: loss")
     ax_loss.set_yscale("log")
-    ax_fit.plot(sweeps, [r.fit for r in history], marker="o", color="tab:green")
-    ax_fit.set(xlabel="sweep", ylabel="weighted relative fit", title=f"{title}: fit")
+    shown = [r for r in history if r.sweep > 0] or list(history)  # the random start's fit would flatten the curve
+    ax_fit.plot([r.sweep for r in shown], [r.fit for r in shown], marker="o", color="tab:green")
+    ax_fit.set(xlabel="sweep", ylabel="weighted relative fit", title=f"{title}: fit after each sweep")
     fig.tight_layout()
     return fig
 
