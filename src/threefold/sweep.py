@@ -247,7 +247,7 @@ def sweep(config: ExperimentConfig, store, *, workers: int = 2, scheduler: str |
     echo(f"sweep of {model!r}: {len(trials)} trials, {len(done)} already finished, {len(todo)} to run; "
          f"selecting on validation {metric}")
     tags = {**config["experiment"]["tags"], **environment_tags(), "threefold.kind": "sweep", "threefold.stage": "validation",
-            "threefold.data_sha256": data_sha, "threefold.key_metrics": metric}
+            "threefold.data_sha256": data_sha, "threefold.key_metrics": f"best_{metric}"}
     rows = []
     with store.run(experiment_id, run_name=f"sweep {Path(config.source).stem}", tags=tags) as parent_id:
         log_params(store, parent_id, {**config.flat(), **{f"sweep.{k}": v for k, v in sweep_cfg.items()}})
