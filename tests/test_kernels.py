@@ -80,7 +80,7 @@ def test_exact_row_update_equals_dense_weighted_least_squares(name, path):
         assert_allclose(problem.factor(n), expected, rtol=1e-9, atol=1e-12)
 
 
-@pytest.mark.parametrize("buffer_cells", [als.BUFFER_CELLS, 2])  # rows kept in memory, or re-gathered per step
+@pytest.mark.parametrize("buffer_cells", [als.BUFFER_CELLS, 2])  # rows solved by CG, or long rows solved exactly
 @pytest.mark.parametrize("name", list(STRUCTURES))
 def test_cg_for_k_steps_equals_exact_solve(name, buffer_cells):
     # Conjugate gradient ends at the exact solution after k steps on a k × k

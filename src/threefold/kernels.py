@@ -159,47 +159,57 @@ def _solve_spd(M, b, x, L):
 
 
 @njit(cache=True, nogil=True, fastmath=_FAST)
-def _apply(F, other, c, lo, hi, active, inactive, V, off, v, resident, base, x, out):
-    """``out = M x`` without forming ``M``: ``base x + Σ_e c_e (v_eᵀ x) v_e``."""
-    k = active.size
+def _apply(V, c, start, n, base, x, out):
+    """``out = M x`` without forming ``M``: ``base x + Σ_e c_e (v_eᵀ x) v_e`` over ``n`` gathered cells."""
+    k = x.size
     for a in range(k):
         s = 0.0
         for d in range(k):
             s += base[a, d] * x[d]
         out[a] = s
-    B = V.shape[0]
-    for start in range(lo, hi, B):
-        n = min(B, hi - start)
-        if not resident:
-            _gather(F, other, start, n, active, inactive, V, off, v)
-        for j in range(n):
-            ce = c[start + j]
-            if ce == 0.0:
-                continue
-            y = 0.0
-            for a in range(k):
-                y += V[j, a] * x[a]
-            y *= ce
-            for a in range(k):
-                out[a] += y * V[j, a]
+    for j in range(n):
+        ce = c[start + j]
+        if ce == 0.0:
+            continue
+        y = 0.0
+        for a in range(k):
+            y += V[j, a] * x[a]
+        y *= ce
+        for a in range(k):
+            out[a] += y * V[j, a]
 
 
 @njit(cache=True, nogil=True, fastmath=_FAST)
-def _conjugate_gradient(F, other, c, lo, hi, active, inactive, V, off, v, resident, base, b, x, steps, work):
-    """``steps`` CG iterations on ``M x = b`` from the current ``x`` (Takács et al. 2011)."""
-    r = work[0]
-    p = work[1]
-    Mp = work[2]
-    _apply(F, other, c, lo, hi, active, inactive, V, off, v, resident, base, x, Mp)
+def _residual(V, off, c, wp, start, n, base, rhs0, x, r):
+    """``r = b − M x`` in one pass: ``rhs0 − base x + Σ_e (wp_e − c_e (off_e + v_eᵀ x)) v_e``."""
+    k = x.size
+    for a in range(k):
+        s = rhs0[a]
+        for d in range(k):
+            s -= base[a, d] * x[d]
+        r[a] = s
+    for j in range(n):
+        y = 0.0
+        for a in range(k):
+            y += V[j, a] * x[a]
+        coef = wp[start + j] - c[start + j] * (off[j] + y)
+        for a in range(k):
+            r[a] += coef * V[j, a]
+
+
+@njit(cache=True, nogil=True, fastmath=_FAST)
+def _conjugate_gradient(V, c, start, n, base, r, x, steps, work):
+    """``steps`` CG iterations on ``M x = b`` from ``x``, given ``r = b − M x`` (Takács et al. 2011)."""
+    p = work[0]
+    Mp = work[1]
     rs = 0.0
     for a in range(x.size):
-        r[a] = b[a] - Mp[a]
         p[a] = r[a]
         rs += r[a] * r[a]
     for _ in range(steps):
         if not rs > 0.0:
             break
-        _apply(F, other, c, lo, hi, active, inactive, V, off, v, resident, base, p, Mp)
+        _apply(V, c, start, n, base, p, Mp)
         pMp = 0.0
         for a in range(x.size):
             pMp += p[a] * Mp[a]
@@ -241,11 +251,12 @@ def solve_rows(F, row_offset, indptr, other, c, wp, active, inactive, base, rhs0
     chunk_bounds : ndarray of shape (n_chunks + 1,), int64
         Row ranges handed to threads, balanced by cost.
     cg_steps : int
-        0 for the exact solve, else the number of CG steps warm-started at the
+        0 for exact solves, else the number of CG steps warm-started at the
         current row.
     buffer_cells : int
-        Cells gathered at once; a CG row with at most this many cells keeps
-        them in memory between steps, a longer row re-gathers them per step.
+        Cells gathered at once. A CG row keeps its cells gathered between
+        steps; a row with more cells than this is solved exactly instead
+        (accumulating its system costs about one CG pass over its cells).
     """
     k = active.size
     R = F.shape[1]
@@ -259,34 +270,26 @@ def solve_rows(F, row_offset, indptr, other, c, wp, active, inactive, base, rhs0
         L = np.empty((k, k))
         b = np.empty(k)
         x = np.empty(k)
-        work = np.empty((3, k))
+        work = np.empty((2, k))
         for i in range(chunk_bounds[ch], chunk_bounds[ch + 1]):
             lo = indptr[i]
             hi = indptr[i + 1]
             g = row_offset + i
-            b[:] = rhs0
-            if cg_steps == 0:
+            if cg_steps > 0 and hi - lo <= buffer_cells:
+                _gather(F, other, lo, hi - lo, active, inactive, V, off, v)
+                for a in range(k):
+                    x[a] = F[g, active[a]]
+                _residual(V, off, c, wp, lo, hi - lo, base, rhs0, x, b)
+                _conjugate_gradient(V, c, lo, hi - lo, base, b, x, cg_steps, work)
+            else:
                 M[:, :] = base
+                b[:] = rhs0
                 for start in range(lo, hi, buffer_cells):
                     n = min(buffer_cells, hi - start)
                     _gather(F, other, start, n, active, inactive, V, off, v)
                     _accumulate(V, off, c, wp, start, n, Vc, part, M, b)
                 if not _solve_spd(M, b, x, L):
                     continue
-            else:
-                for start in range(lo, hi, buffer_cells):
-                    n = min(buffer_cells, hi - start)
-                    _gather(F, other, start, n, active, inactive, V, off, v)
-                    for j in range(n):
-                        coef = wp[start + j] - c[start + j] * off[j]
-                        for a in range(k):
-                            b[a] += coef * V[j, a]
-                for a in range(k):
-                    x[a] = F[g, active[a]]
-                resident = hi - lo <= buffer_cells
-                _conjugate_gradient(
-                    F, other, c, lo, hi, active, inactive, V, off, v, resident, base, b, x, cg_steps, work
-                )
             for a in range(k):
                 F[g, active[a]] = x[a]
 
