@@ -32,7 +32,7 @@ from typing import Mapping
 
 import numpy as np
 
-__all__ = ["BundleError", "write_bundle", "read_bundle", "bundle_versions", "FORMAT_NAME", "FORMAT_VERSION"]
+__all__ = ["BundleError", "sha256_file", "write_bundle", "read_bundle", "bundle_versions", "FORMAT_NAME", "FORMAT_VERSION"]
 
 FORMAT_NAME = "threefold-bundle"
 FORMAT_VERSION = 1
@@ -43,7 +43,8 @@ class BundleError(ValueError):
     """A bundle is missing, corrupt, or of another format version."""
 
 
-def _sha256(path: Path) -> str:
+def sha256_file(path: Path) -> str:
+    """Hex SHA-256 of a file, read in 1 MiB blocks."""
     digest = hashlib.sha256()
     with open(path, "rb") as handle:
         for block in iter(lambda: handle.read(1 << 20), b""):
@@ -109,7 +110,7 @@ def write_bundle(
     try:
         (staging / "meta.json").write_text(json.dumps(metadata, indent=2, sort_keys=True, default=_json_default))
         np.savez(staging / "arrays.npz", **{k: np.asarray(v) for k, v in arrays.items()})
-        files = {name: _sha256(staging / name) for name in ("meta.json", "arrays.npz")}
+        files = {name: sha256_file(staging / name) for name in ("meta.json", "arrays.npz")}
         manifest = {"format": FORMAT_NAME, "format_version": FORMAT_VERSION, "kind": kind, "files": files}
         (staging / "MANIFEST.json").write_text(json.dumps(manifest, indent=2, sort_keys=True))
         for name in ("meta.json", "arrays.npz", "MANIFEST.json"):
@@ -124,7 +125,7 @@ def write_bundle(
         shutil.rmtree(staging, ignore_errors=True)
         raise
     pointer = root / f".CURRENT-{uuid.uuid4().hex}"
-    pointer.write_text(f"{final.name} {_sha256(final / 'MANIFEST.json')}\n")
+    pointer.write_text(f"{final.name} {sha256_file(final / 'MANIFEST.json')}\n")
     _fsync_file(pointer)
     os.replace(pointer, root / "CURRENT")
     _fsync_dir(root)
@@ -165,7 +166,7 @@ def read_bundle(root: str | os.PathLike, kind: str) -> tuple[dict, dict[str, np.
     manifest_path = folder / "MANIFEST.json"
     if not manifest_path.is_file():
         raise BundleError(f"{manifest_path} is missing.")
-    if _sha256(manifest_path) != manifest_hash:
+    if sha256_file(manifest_path) != manifest_hash:
         raise BundleError(f"{manifest_path} does not match the checksum recorded in {pointer}: the file was altered.")
     manifest = json.loads(manifest_path.read_text())
     if manifest.get("format") != FORMAT_NAME:
@@ -181,7 +182,7 @@ def read_bundle(root: str | os.PathLike, kind: str) -> tuple[dict, dict[str, np.
         path = folder / name
         if not path.is_file():
             raise BundleError(f"{path} is missing.")
-        if _sha256(path) != expected:
+        if sha256_file(path) != expected:
             raise BundleError(f"{path} does not match its SHA-256 in the manifest: the file was altered or truncated.")
     metadata = json.loads((folder / "meta.json").read_text())
     with np.load(folder / "arrays.npz", allow_pickle=False) as data:

@@ -21,7 +21,7 @@ from typing import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from threefold.bundle import _sha256 as file_sha256  # one SHA-256 reader for bundles and data files
+from threefold.bundle import sha256_file as file_sha256  # one SHA-256 reader for bundles and data files
 
 __all__ = ["SweepLogger", "file_sha256", "dataset_fingerprint", "environment_tags", "log_params", "log_metrics",
            "overall_metrics", "peak_memory_mb", "loss_curve_figure", "context_levels_figure", "LIBRARIES"]
