@@ -84,8 +84,8 @@ def test_incomplete_kinetic_data_matches_tensorly_masked_parafac():
     def observed_fit(reconstruction):
         return 1 - np.linalg.norm((dense - reconstruction)[observed]) / np.linalg.norm(dense[observed])
 
-    theirs = parafac(tl.tensor(dense), 3, mask=tl.tensor(observed.astype(float)), init="svd", n_iter_max=1000, tol=1e-7)
-    ours = fit_cp(tensor, rank=3, reg=0.0, init="svd", max_sweeps=1000, tol=1e-5, random_state=0)
+    theirs = parafac(tl.tensor(dense), 3, mask=tl.tensor(observed.astype(float)), init="svd", n_iter_max=1000, tol=1e-6)
+    ours = fit_cp(tensor, rank=3, reg=0.0, init="svd", max_sweeps=1000, tol=1e-4, random_state=0)
     assert ours.converged
     fit_theirs = observed_fit(tl.cp_to_tensor(theirs))
     fit_ours = observed_fit(tl.cp_to_tensor(ours.to_tensorly()))

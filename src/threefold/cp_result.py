@@ -171,10 +171,13 @@ class CPResult(Scorer):
         ndarray of shape (n,), float64
         """
         coords = np.asarray(coords, dtype=np.int64).reshape(len(self.factors), -1)
-        rows = np.tile(self.weights, (coords.shape[1], 1))
-        for n, f in enumerate(self.factors):
-            rows *= f[coords[n]]
-        return rows.sum(axis=1)
+        out = np.empty(coords.shape[1])
+        for lo in range(0, coords.shape[1], 2**16):  # bounded memory: 65,536 cells × R at a time
+            rows = np.tile(self.weights, (min(2**16, coords.shape[1] - lo), 1))
+            for n, f in enumerate(self.factors):
+                rows *= f[coords[n, lo : lo + 2**16]]
+            out[lo : lo + 2**16] = rows.sum(axis=1)
+        return out
 
     # ------------------------------------------------------------------ scoring interface
     def query_matrix(self, users: np.ndarray, contexts: np.ndarray | None = None) -> np.ndarray:
