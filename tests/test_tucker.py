@@ -14,11 +14,12 @@ from tensorly.decomposition import tucker
 from threadpoolctl import threadpool_limits
 
 from threefold import SparseTensor
-from threefold import tucker_kernels
+from threefold import tucker_kernels, tucker_rows
 from threefold.exceptions import ConvergenceWarning
 from threefold.hooi import HOOIModel, fit_hooi, hooi_fold_in
 from threefold.tucker import core_contributions, core_slice
-from threefold.tucker_kernels import build_fiber_tree, evaluate, ttmc
+from threefold.tucker_kernels import build_fiber_tree, ttmc
+from threefold.tucker_rows import evaluate
 
 
 def low_rank_plus_noise(shape, rank, noise, seed):
@@ -43,11 +44,13 @@ def relative_error(dense, result):
 
 # ---------------------------------------------------------------------- fiber-tree kernels
 @pytest.mark.parametrize("shape", [(9, 8), (7, 5, 3), (6, 5, 4, 3)])
-@pytest.mark.parametrize("chunk_cells", [2, 10_000])
-def test_fiber_tree_products_equal_slow_loops(monkeypatch, shape, chunk_cells):
+@pytest.mark.parametrize("chunk_cells, table_combos", [(2, 1), (2, 4096), (10_000, 1)])
+def test_fiber_tree_products_equal_slow_loops(monkeypatch, shape, chunk_cells, table_combos):
     # Slow reference written here: Y[i_root] += x_e * kron of the other modes' rows, cell by cell
-    # (methods.md section 3); tiny chunks force rows shared between parallel chunks.
+    # (methods.md section 3); tiny chunks force rows shared between parallel chunks, and a one-row
+    # prefix table forces every contraction to be done per tree node.
     monkeypatch.setattr(tucker_kernels, "CHUNK_CELLS", chunk_cells)
+    monkeypatch.setattr(tucker_rows, "TABLE_COMBOS", table_combos)
     rng = np.random.default_rng(0)
     coords, values = random_sparse(shape, 0.4, seed=1)
     rank = [min(3, s) for s in shape]
@@ -63,7 +66,7 @@ def test_fiber_tree_products_equal_slow_loops(monkeypatch, shape, chunk_cells):
             kron = functools.reduce(np.kron, [factors[m][coords[m, e]] for m in tree.levels[1:]])
             expected[coords[root, e]] += values[e] * kron
         assert_allclose(ttmc(tree, coords, values, factors, shape[root]), expected, rtol=1e-12, atol=1e-12)
-        assert_allclose(evaluate(tree, coords, core, factors), dense_model[tuple(coords)], rtol=1e-12, atol=1e-12)
+        assert_allclose(evaluate(tree, coords, core, factors, shape), dense_model[tuple(coords)], rtol=1e-12, atol=1e-12)
 
 
 # ---------------------------------------------------------------------- HOOI against tensorly

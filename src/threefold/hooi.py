@@ -30,7 +30,7 @@ import scipy.linalg
 
 from threefold import kernels
 from threefold._checks import check_choice, check_int, check_number
-from threefold.cp import SweepRecord
+from threefold.cp_result import SweepRecord
 from threefold.exceptions import ConvergenceWarning
 from threefold.tensor import SparseTensor
 from threefold.tucker import (
@@ -154,7 +154,7 @@ def fit_hooi(
         the fit itself runs in float64.
     callback : callable or None
         Called after every sweep as ``callback(record, model)`` with the
-        :class:`~threefold.cp.SweepRecord` of the sweep and ``model = (core,
+        :class:`~threefold.cp_result.SweepRecord` of the sweep and ``model = (core,
         factors)``, read-only float64 arrays; returning True stops the fit.
 
     Returns

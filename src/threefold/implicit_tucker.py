@@ -43,7 +43,7 @@ import scipy.linalg
 
 from threefold import kernels
 from threefold._checks import check_choice, check_int, check_number
-from threefold.cp import SweepRecord
+from threefold.cp_result import SweepRecord
 from threefold.exceptions import ConvergenceWarning
 from threefold.tensor import SparseTensor
 from threefold.tucker import (
@@ -54,7 +54,8 @@ from threefold.tucker import (
     hosvd_factors,
     read_only_model,
 )
-from threefold.tucker_kernels import FiberTree, build_fiber_tree, evaluate, implicit_rows, ttmc
+from threefold.tucker_kernels import FiberTree, build_fiber_tree, ttmc
+from threefold.tucker_rows import evaluate, implicit_rows
 
 __all__ = ["fit_implicit_tucker", "update_rows", "update_core", "implicit_loss", "implicit_tucker_fold_in",
            "ImplicitTuckerModel"]
@@ -63,6 +64,8 @@ __all__ = ["fit_implicit_tucker", "update_rows", "update_core", "implicit_loss",
 CORE_EXACT_ENTRIES = 2000
 #: ... and while forming its stored-cell part costs at most this many multiply-adds (nnz · P²).
 CORE_EXACT_WORK = 2e10
+#: Largest ``Y`` (entries) the core products may allocate when rooted at a large mode.
+CORE_Y_ENTRIES = 1 << 25
 
 Callback = Callable[[SweepRecord, tuple], "bool | None"]
 
@@ -89,9 +92,17 @@ def _tree(tensor: SparseTensor, mode: int, trees: dict | None) -> FiberTree:
 
 
 def _core_mode(shape: tuple[int, ...], rank: tuple[int, ...]) -> int:
-    """Root of the core products: the mode with the smallest ``I_n · Π_{m≠n} R_m``."""
+    """Root of the core products: the largest mode whose ``Y`` (``I_n · Π_{m≠n} R_m`` entries) fits the budget.
+
+    Rooting at the largest mode puts a smaller factor at the leaf level, whose
+    rows every stored cell reads: fewer cache misses than the largest factor.
+    """
     total = int(np.prod(rank))
-    return int(np.argmin([shape[n] * total // rank[n] for n in range(len(shape))]))
+    entries = [shape[n] * total // rank[n] for n in range(len(shape))]
+    for n in sorted(range(len(shape)), key=lambda m: -shape[m]):
+        if entries[n] <= CORE_Y_ENTRIES:
+            return n
+    return int(np.argmin(entries))
 
 
 def _weights64(tensor: SparseTensor) -> tuple[np.ndarray, np.ndarray]:
@@ -126,7 +137,7 @@ def update_rows(tensor: SparseTensor, mode: int, core: np.ndarray, factors: Sequ
     shaped = list(factors)
     shaped[mode] = np.zeros((tensor.shape[mode], core.shape[mode]))
     return implicit_rows(_tree(tensor, mode, trees), tensor.coords, preference, confidence, tensor.w0, core, shaped,
-                         base, tensor.shape[mode])
+                         base, tensor.shape)
 
 
 def _scatter(tree: FiberTree, tensor: SparseTensor, values: np.ndarray, factors, rank) -> np.ndarray:
@@ -193,7 +204,7 @@ def update_core(tensor: SparseTensor, core: np.ndarray, factors: Sequence[np.nda
     c = confidence - w0
 
     def matvec(x: np.ndarray) -> np.ndarray:
-        stored = _scatter(tree, tensor, c * evaluate(tree, tensor.coords, x, factors), factors, rank)
+        stored = _scatter(tree, tensor, c * evaluate(tree, tensor.coords, x, factors, tensor.shape), factors, rank)
         return w0 * _multi_mode(x, grams) + stored + reg * x
 
     rhs = _scatter(tree, tensor, confidence * preference, factors, rank)
@@ -246,7 +257,7 @@ def implicit_loss(tensor: SparseTensor, core: np.ndarray, factors: Sequence[np.n
     grams = [f.T @ f for f in factors]
     tree = _tree(tensor, _core_mode(tensor.shape, core.shape), trees)
     p, w = _weights64(tensor)
-    xhat = evaluate(tree, tensor.coords, core, factors)
+    xhat = evaluate(tree, tensor.coords, core, factors, tensor.shape)
     error = tensor.w0 * float(np.sum(core * _multi_mode(core, grams)))
     error += float(np.sum(w * (p - xhat) ** 2 - tensor.w0 * xhat * xhat))
     penalty = reg * (sum(float(np.sum(f * f)) for f in factors) + float(np.sum(core * core)))
@@ -329,7 +340,7 @@ def fit_implicit_tucker(
         factors, core and row systems are computed in float64.
     callback : callable or None
         Called after every sweep as ``callback(record, model)`` with the
-        :class:`~threefold.cp.SweepRecord` of the sweep and ``model = (core,
+        :class:`~threefold.cp_result.SweepRecord` of the sweep and ``model = (core,
         factors)``, read-only float64 arrays; returning True stops the fit.
 
     Returns
@@ -359,6 +370,8 @@ def fit_implicit_tucker(
     preference, confidence = _weights64(tensor)  # weigh the evidence once, not in every block update
     tensor = replace(tensor, evidence=None, dtype=np.dtype(np.float64), stored_preference=preference,
                      stored_confidence=confidence)
+    # Store the cells in the order of the core products' tree: most passes then read them sequentially.
+    tensor = tensor.take(build_fiber_tree(tensor.coords, tensor.shape, _core_mode(tensor.shape, rank)).perm)
     rng = np.random.default_rng(random_state)
     if n_threads is not None:
         check_int("n_threads", n_threads, low=1, owner=owner)

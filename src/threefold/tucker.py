@@ -23,8 +23,7 @@ from typing import Sequence
 import numpy as np
 
 from threefold._checks import check_choice, check_int
-from threefold.cp import STOP_REASONS, SweepRecord
-from threefold.cp import _mode_position as mode_position
+from threefold.cp_result import STOP_REASONS, SweepRecord, mode_position
 from threefold.initialize import leading_left_vectors
 from threefold.scoring import Scorer, ScoreTerms, check_queries
 from threefold.tensor import SparseTensor

@@ -14,8 +14,8 @@ Two directions of work:
 * **bottom-up** (:func:`ttmc`): ``Y[i_root] = sum_e x_e * kron_{levels 1..} F_m[i_m(e)]``,
   the tensor times all factor matrices but the root's. Leaves cost ``R_leaf``
   each, a node at level ``k`` costs ``R_{level k} * prod_{j > k} R_{level j}``.
-* **top-down** (:func:`implicit_rows`, :func:`evaluate`): the core contracted
-  with the factor rows of a cell's non-root modes, ``v_e = G ×_{m ≠ root} F_m[i_m(e)]``,
+* **top-down** (:mod:`threefold.tucker_rows`): the core contracted with the
+  factor rows of a cell's non-root modes, ``v_e = G ×_{m ≠ root} F_m[i_m(e)]``,
   a vector of length ``R_root``; again the prefix contractions are shared.
 
 Column order of ``Y``: C order over the modes ``levels[1:]`` (the first of them
@@ -36,10 +36,12 @@ import numba
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["FiberTree", "build_fiber_tree", "pack_factors", "ttmc", "implicit_rows", "evaluate"]
+__all__ = ["FiberTree", "build_fiber_tree", "pack_factors", "ttmc", "run_kernel", "level_sizes", "FAST"]
 
 #: Target number of stored cells per parallel chunk.
 CHUNK_CELLS = 32_768
+#: Reassociation lets LLVM vectorize the short inner loops; results stay deterministic.
+FAST = {"reassoc", "contract"}
 
 
 @dataclass(frozen=True)
@@ -88,8 +90,15 @@ def build_fiber_tree(coords: np.ndarray, shape: tuple[int, ...], root: int) -> F
     others = sorted((m for m in range(ndim) if m != root), key=lambda m: (shape[m], m))
     levels = np.array([root] + others, dtype=np.int64)
     index_dtype = np.int32 if nnz < 2**31 - 1 else np.int64
-    # np.lexsort sorts by its last key first.
-    perm = np.lexsort(tuple(coords[m] for m in levels[::-1])).astype(index_dtype)
+    if np.prod([float(shape[m]) for m in levels]) < 2.0**62:  # one mixed-radix key sorts fastest
+        key = np.zeros(nnz, dtype=np.int64)
+        for m in levels:
+            key *= shape[m]
+            key += coords[m]
+        perm = np.argsort(key).astype(index_dtype)  # cells are unique, so the order is unique too
+        del key
+    else:  # np.lexsort sorts by its last key first
+        perm = np.lexsort(tuple(coords[m] for m in levels[::-1])).astype(index_dtype)
     breaks = np.full(nnz, ndim - 1, dtype=np.int8)
     for k in range(ndim - 2, -1, -1):
         keys = coords[levels[k]][perm]
@@ -123,7 +132,7 @@ def pack_factors(factors, dtype) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return flat, offsets, ranks
 
 
-def _level_sizes(levels: np.ndarray, ranks: np.ndarray) -> np.ndarray:
+def level_sizes(levels: np.ndarray, ranks: np.ndarray) -> np.ndarray:
     """``L[k] = prod_{j > k} ranks[levels[j]]`` for k = 0..ndim-1."""
     sizes = np.ones(levels.shape[0], dtype=np.int64)
     for k in range(levels.shape[0] - 2, -1, -1):
@@ -132,41 +141,40 @@ def _level_sizes(levels: np.ndarray, ranks: np.ndarray) -> np.ndarray:
 
 
 # ---------------------------------------------------------------------- bottom-up
-@njit(cache=True)
+@njit(cache=True, fastmath=FAST)
 def _close_level(k, cell, coords, levels, flat, offsets, ranks, sizes, buf, boff):
     """Fold the open node at level k into its parent: parent += F_m[i] ⊗ child."""
     m = levels[k]
     rm = ranks[m]
-    base = offsets[m] + coords[m, cell] * rm
-    child = boff[k]
-    parent = boff[k - 1]
+    row = flat[offsets[m] + coords[m, cell] * rm:][:rm]
     width = sizes[k]
+    child = buf[boff[k]:boff[k] + width]
+    parent = buf[boff[k - 1]:boff[k - 1] + rm * width]
     for r in range(rm):
-        f = flat[base + r]
-        if f != 0.0:
-            pos = parent + r * width
-            for j in range(width):
-                buf[pos + j] += f * buf[child + j]
-    for j in range(width):
-        buf[child + j] = 0.0
+        f = row[r]
+        o = r * width
+        for j in range(width):
+            parent[o + j] += f * child[j]
+    child[:] = 0.0
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath=FAST)
 def _flush_root(row, first, last, ch, buf, width, out, edge):
+    top = buf[:width]
     if row == first:
+        target = edge[ch, 0]
         for j in range(width):
-            edge[ch, 0, j] += buf[j]
+            target[j] += top[j]
     elif row == last:
+        target = edge[ch, 1]
         for j in range(width):
-            edge[ch, 1, j] += buf[j]
+            target[j] += top[j]
     else:
-        for j in range(width):
-            out[row, j] = buf[j]
-    for j in range(width):
-        buf[j] = 0.0
+        out[row, :] = top
+    top[:] = 0.0
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, fastmath=FAST)
 def _ttmc_kernel(coords, values, perm, breaks, levels, flat, offsets, ranks, sizes, chunks, out, edge, edge_rows):
     ndim = levels.shape[0]
     boff = np.zeros(ndim, dtype=np.int64)
@@ -199,10 +207,10 @@ def _ttmc_kernel(coords, values, perm, breaks, levels, flat, offsets, ranks, siz
                     _flush_root(row, first, last, ch, buf, width, out, edge)
                     row = coords[root, cell]
             x = values[cell]
-            base = offsets[leaf] + coords[leaf, cell] * r_leaf
-            pos = boff[ndim - 2]
+            frow = flat[offsets[leaf] + coords[leaf, cell] * r_leaf:][:r_leaf]
+            acc = buf[boff[ndim - 2]:boff[ndim - 2] + r_leaf]
             for r in range(r_leaf):
-                buf[pos + r] += x * flat[base + r]
+                acc[r] += x * frow[r]
             prev = cell
         for k in range(ndim - 2, 0, -1):
             _close_level(k, prev, coords, levels, flat, offsets, ranks, sizes, buf, boff)
@@ -233,228 +241,20 @@ def ttmc(tree: FiberTree, coords: np.ndarray, values: np.ndarray, factors, n_row
     """
     dtype = values.dtype
     flat, offsets, ranks = pack_factors(factors, dtype)
-    sizes = _level_sizes(tree.levels, ranks)
+    sizes = level_sizes(tree.levels, ranks)
     out = np.zeros((n_rows, int(sizes[0])), dtype=dtype)
     n_chunks = tree.chunks.shape[0] - 1
     if n_chunks == 0:
         return out
     edge = np.zeros((n_chunks, 2, int(sizes[0])), dtype=dtype)
     edge_rows = np.zeros((n_chunks, 2), dtype=np.int64)
-    _run(_ttmc_kernel, tree, coords, values, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, out, edge, edge_rows)
+    run_kernel(_ttmc_kernel, tree, coords, values, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, out, edge, edge_rows)
     np.add.at(out, edge_rows[:, 0], edge[:, 0])
     np.add.at(out, edge_rows[:, 1], edge[:, 1])
     return out
 
 
-# ---------------------------------------------------------------------- top-down
-@njit(cache=True)
-def _descend(low, cell, coords, levels, flat, offsets, ranks, sizes, hbuf, hoff, core_p, r_root):
-    """Recompute H_k = H_{k-1} ×_{level k} F[i] for levels low..ndim-2 (H_0 is the core)."""
-    ndim = levels.shape[0]
-    for k in range(low, ndim - 1):
-        m = levels[k]
-        rm = ranks[m]
-        base = offsets[m] + coords[m, cell] * rm
-        width = sizes[k]
-        parent_width = sizes[k - 1]
-        dst = hoff[k]
-        for a in range(r_root):
-            for j in range(width):
-                hbuf[dst + a * width + j] = 0.0
-            for r in range(rm):
-                f = flat[base + r]
-                if f != 0.0:
-                    if k == 1:
-                        for j in range(width):
-                            hbuf[dst + a * width + j] += f * core_p[a, r * width + j]
-                    else:
-                        src = hoff[k - 1] + a * parent_width + r * width
-                        for j in range(width):
-                            hbuf[dst + a * width + j] += f * hbuf[src + j]
-
-
-@njit(cache=True)
-def _leaf_vector(cell, coords, levels, flat, offsets, ranks, hbuf, hoff, core_p, r_root, v):
-    """v = H_{ndim-2} · F_leaf[i_leaf] (length R_root)."""
-    ndim = levels.shape[0]
-    leaf = levels[ndim - 1]
-    r_leaf = ranks[leaf]
-    base = offsets[leaf] + coords[leaf, cell] * r_leaf
-    for a in range(r_root):
-        s = 0.0
-        if ndim == 2:
-            for r in range(r_leaf):
-                s += core_p[a, r] * flat[base + r]
-        else:
-            src = hoff[ndim - 2] + a * r_leaf
-            for r in range(r_leaf):
-                s += hbuf[src + r] * flat[base + r]
-        v[a] = s
-
-
-@njit(cache=True)
-def _hbuf_layout(levels, sizes, r_root):
-    ndim = levels.shape[0]
-    hoff = np.zeros(ndim, dtype=np.int64)
-    total = 0
-    for k in range(1, ndim - 1):
-        hoff[k] = total
-        total += r_root * sizes[k]
-    return hoff, max(total, 1)
-
-
-@njit(parallel=True, cache=True)
-def _evaluate_kernel(coords, perm, breaks, levels, flat, offsets, ranks, sizes, chunks, core_p, out):
-    root = levels[0]
-    r_root = ranks[root]
-    hoff, total = _hbuf_layout(levels, sizes, r_root)
-    for ch in prange(chunks.shape[0] - 1):
-        start = chunks[ch]
-        stop = chunks[ch + 1]
-        hbuf = np.zeros(total, dtype=core_p.dtype)
-        v = np.zeros(r_root, dtype=core_p.dtype)
-        for p in range(start, stop):
-            cell = perm[p]
-            b = breaks[p] if p > start else 1
-            _descend(b if b > 1 else 1, cell, coords, levels, flat, offsets, ranks, sizes, hbuf, hoff, core_p, r_root)
-            _leaf_vector(cell, coords, levels, flat, offsets, ranks, hbuf, hoff, core_p, r_root, v)
-            base = offsets[root] + coords[root, cell] * r_root
-            s = 0.0
-            for a in range(r_root):
-                s += flat[base + a] * v[a]
-            out[cell] = s
-
-
-def evaluate(tree: FiberTree, coords: np.ndarray, core: np.ndarray, factors) -> np.ndarray:
-    """Model values ``x̂_e = G ×_1 F_1[i_1(e)] ... ×_N F_N[i_N(e)]`` at every stored cell.
-
-    Parameters
-    ----------
-    tree : FiberTree
-    coords : ndarray of shape (ndim, nnz), int32
-    core : ndarray of shape (R_1, ..., R_N)
-    factors : sequence of ndarray of shape (I_n, R_n)
-
-    Returns
-    -------
-    ndarray of shape (nnz,), dtype of ``core``
-    """
-    dtype = core.dtype
-    flat, offsets, ranks = pack_factors(factors, dtype)
-    sizes = _level_sizes(tree.levels, ranks)
-    core_p = np.ascontiguousarray(np.transpose(core, tree.levels).reshape(core.shape[tree.root], -1))
-    out = np.zeros(coords.shape[1], dtype=dtype)
-    _run(_evaluate_kernel, tree, coords, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, core_p, out)
-    return out
-
-
-@njit(cache=True)
-def _finish_row(row, first, last, ch, a_acc, b_acc, base_matrix, out, edge_a, edge_b):
-    r_root = b_acc.shape[0]
-    for a in range(r_root):
-        for d in range(a):
-            a_acc[d, a] = a_acc[a, d]
-    if row == first or row == last:
-        slot = 0 if row == first else 1
-        for a in range(r_root):
-            edge_b[ch, slot, a] += b_acc[a]
-            for c in range(r_root):
-                edge_a[ch, slot, a, c] += a_acc[a, c]
-    else:
-        system = base_matrix + a_acc
-        out[row, :] = np.linalg.solve(system, b_acc)
-    a_acc[:, :] = 0.0
-    b_acc[:] = 0.0
-
-
-@njit(parallel=True, cache=True)
-def _rows_kernel(coords, preference, confidence, w0, perm, breaks, levels, flat, offsets, ranks, sizes, chunks,
-                 core_p, base_matrix, out, edge_a, edge_b, edge_rows):
-    root = levels[0]
-    r_root = ranks[root]
-    hoff, total = _hbuf_layout(levels, sizes, r_root)
-    for ch in prange(chunks.shape[0] - 1):
-        start = chunks[ch]
-        stop = chunks[ch + 1]
-        hbuf = np.zeros(total, dtype=core_p.dtype)
-        v = np.zeros(r_root, dtype=core_p.dtype)
-        a_acc = np.zeros((r_root, r_root), dtype=base_matrix.dtype)
-        b_acc = np.zeros(r_root, dtype=base_matrix.dtype)
-        first = coords[root, perm[start]]
-        last = coords[root, perm[stop - 1]]
-        edge_rows[ch, 0] = first
-        edge_rows[ch, 1] = last
-        row = first
-        for p in range(start, stop):
-            cell = perm[p]
-            b = breaks[p] if p > start else 1
-            if b == 0:
-                _finish_row(row, first, last, ch, a_acc, b_acc, base_matrix, out, edge_a, edge_b)
-                row = coords[root, cell]
-            _descend(b if b > 1 else 1, cell, coords, levels, flat, offsets, ranks, sizes, hbuf, hoff, core_p, r_root)
-            _leaf_vector(cell, coords, levels, flat, offsets, ranks, hbuf, hoff, core_p, r_root, v)
-            w = confidence[cell]
-            c = w - w0
-            wp = w * preference[cell]
-            for a in range(r_root):
-                b_acc[a] += wp * v[a]
-                cv = c * v[a]
-                for d in range(a + 1):
-                    a_acc[a, d] += cv * v[d]
-        _finish_row(row, first, last, ch, a_acc, b_acc, base_matrix, out, edge_a, edge_b)
-
-
-def implicit_rows(tree: FiberTree, coords: np.ndarray, preference: np.ndarray, confidence: np.ndarray, w0: float,
-                  core: np.ndarray, factors, base_matrix: np.ndarray, n_rows: int) -> np.ndarray:
-    """Solve the weighted row systems of the root mode, every other block fixed.
-
-    For root row ``i``: ``(base_matrix + sum_e (w_e - w0) v_e v_eᵀ) u_i = sum_e w_e p_e v_e``
-    over its stored cells ``e``, with ``v_e = G ×_{m ≠ root} F_m[i_m(e)]``. Rows
-    without stored cells get ``base_matrix⁻¹ · 0 = 0``.
-
-    Parameters
-    ----------
-    tree : FiberTree
-    coords : ndarray of shape (ndim, nnz), int32
-    preference, confidence : ndarray of shape (nnz,)
-    w0 : float
-    core : ndarray of shape (R_1, ..., R_N)
-    factors : sequence of ndarray of shape (I_n, R_n); the root's entry is unused
-    base_matrix : ndarray of shape (R_root, R_root), float64
-        The all-cells part plus regularization, ``w0 · G_(n) (⊗ F_mᵀF_m) G_(n)ᵀ + reg·I``.
-    n_rows : int
-
-    Returns
-    -------
-    ndarray of shape (n_rows, R_root), float64
-    """
-    dtype = core.dtype
-    root = tree.root
-    r_root = core.shape[root]
-    flat, offsets, ranks = pack_factors(factors, dtype)
-    sizes = _level_sizes(tree.levels, ranks)
-    core_p = np.ascontiguousarray(np.transpose(core, tree.levels).reshape(r_root, -1))
-    out = np.zeros((n_rows, r_root), dtype=np.float64)
-    n_chunks = tree.chunks.shape[0] - 1
-    if n_chunks == 0:
-        return out
-    edge_a = np.zeros((n_chunks, 2, r_root, r_root))
-    edge_b = np.zeros((n_chunks, 2, r_root))
-    edge_rows = np.zeros((n_chunks, 2), dtype=np.int64)
-    _run(_rows_kernel, tree, coords, preference, confidence, float(w0), tree.perm, tree.breaks, tree.levels, flat, offsets, ranks,
-                 sizes, tree.chunks, core_p, np.ascontiguousarray(base_matrix, dtype=np.float64), out, edge_a, edge_b,
-                 edge_rows)
-    rows, inverse = np.unique(edge_rows.ravel(), return_inverse=True)
-    acc_a = np.zeros((rows.size, r_root, r_root))
-    acc_b = np.zeros((rows.size, r_root))
-    np.add.at(acc_a, inverse, edge_a.reshape(-1, r_root, r_root))
-    np.add.at(acc_b, inverse, edge_b.reshape(-1, r_root))
-    out[rows] = np.linalg.solve(base_matrix[None] + acc_a, acc_b[..., None])[..., 0]
-    return out
-
-
-
-def _run(kernel, tree: FiberTree, *args) -> None:
+def run_kernel(kernel, tree: FiberTree, *args) -> None:
     """Run a parallel kernel; a single chunk runs on the calling thread (no pool wake-up)."""
     if tree.chunks.shape[0] > 2:
         kernel(*args)
