@@ -60,23 +60,30 @@ def threads(n_threads: int | None):
 
 @njit(cache=True, nogil=True, fastmath=_FAST)
 def _gather(F, other, start, n, active, inactive, V, off, v):
-    """Fill ``V[:n]`` with the other-mode products of cells ``start .. start+n``."""
+    """Fill ``V[:n]`` and ``off[:n]`` with the other-mode products of cells ``start .. start+n``.
+
+    When the mode owns every column (plain CP) the product goes straight into
+    ``V``; otherwise it is built in ``v`` and split into owned columns and the
+    fixed columns' sum.
+    """
     R = F.shape[1]
+    plain = inactive.size == 0
     for j in range(n):
         e = start + j
+        w = V[j] if plain else v
         g = other[0, e]
         for r in range(R):
-            v[r] = F[g, r]
+            w[r] = F[g, r]
         for m in range(1, other.shape[0]):
             g = other[m, e]
             for r in range(R):
-                v[r] *= F[g, r]
-        for a in range(active.size):
-            V[j, a] = v[active[a]]
-        s = 0.0
-        for a in range(inactive.size):
-            s += v[inactive[a]]
-        off[j] = s
+                w[r] *= F[g, r]
+        off[j] = 0.0
+        if not plain:
+            for a in range(active.size):
+                V[j, a] = v[active[a]]
+            for a in range(inactive.size):
+                off[j] += v[inactive[a]]
 
 
 @njit(cache=True, nogil=True, fastmath=_FAST)
