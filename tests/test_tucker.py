@@ -18,7 +18,7 @@ from threefold import tucker_kernels, tucker_rows
 from threefold.exceptions import ConvergenceWarning
 from threefold.hooi import HOOIModel, fit_hooi, hooi_fold_in
 from threefold.tucker import core_contributions, core_slice
-from threefold.tucker_kernels import build_fiber_tree, ttmc
+from threefold.tucker_kernels import build_fiber_tree, ttmc, ttmc_core
 from threefold.tucker_rows import evaluate
 
 
@@ -66,6 +66,7 @@ def test_fiber_tree_products_equal_slow_loops(monkeypatch, shape, chunk_cells, t
             kron = functools.reduce(np.kron, [factors[m][coords[m, e]] for m in tree.levels[1:]])
             expected[coords[root, e]] += values[e] * kron
         assert_allclose(ttmc(tree, coords, values, factors, shape[root]), expected, rtol=1e-12, atol=1e-12)
+        assert_allclose(ttmc_core(tree, coords, values, factors), factors[root].T @ expected, rtol=1e-12, atol=1e-12)
         assert_allclose(evaluate(tree, coords, core, factors, shape), dense_model[tuple(coords)], rtol=1e-12, atol=1e-12)
 
 
@@ -183,6 +184,8 @@ def test_hooi_fold_in_is_the_least_squares_projection():
     expected = np.linalg.lstsq(design.T, tl.unfold(new, 0).T, rcond=None)[0].T
     assert_allclose(rows, expected, atol=1e-10)
     assert_allclose(rows[1], 0.0, atol=0)
+    # The last mode is updated last in a sweep, so folding its training slices back in reproduces its factor.
+    assert_allclose(model.fold_in(SparseTensor.from_dense(dense), mode=2), factors[2], atol=1e-10)
     with pytest.raises(ValueError, match="mode 'mode1' has 7 rows in the tensor but 8 in the model"):
         hooi_fold_in(model.result_, SparseTensor.from_dense(new[:, :7]), 0)
 

@@ -2,18 +2,20 @@
 
 Cases (each contender in its own child process; peak RSS from resource.getrusage in the child):
 
-* ``small``: 2000 users × 1000 items × 24 context levels, 200,000 stored cells, ranks (16, 16, 4).
+* ``small``: 2000 users × 1000 items × 24 context levels, 200,000 stored cells (binary: the tensor
+  of the CP benchmark B1, ``bench_cp.site_cells`` with seed 1), ranks (16, 16, 4).
   Our :func:`threefold.hooi.fit_hooi` on the sparse tensor against
   ``tensorly.decomposition.tucker`` on the dense tensor (init 'svd', tol = 0), same sweeps.
   Goal of the Tucker issue: at least 20 times faster at under a tenth of its peak memory, same fit.
 * ``large``: 100,000 users × 20,000 items × 6 dayparts × 4 devices, 10 million stored cells, item
-  popularity Zipf-skewed. HOOI at ranks (32, 32, 4, 3) (goal: at most 20 s per sweep) and implicit
+  popularity Zipf-skewed: the tensor of the CP benchmark B2 (``bench_cp.site_cells``, seed 3, clicks
+  and skips weighted with w0 = 0.1). HOOI at ranks (32, 32, 4, 3) (goal: at most 20 s per sweep) and implicit
   Tucker at ranks (16, 16, 4, 3) (time per sweep and peak memory recorded). No dense library can hold
   this tensor (4.8·10¹⁰ cells), so the reference is a plain ``scipy.sparse`` CSR unfolding times a
   dense 32-column matrix, ``nnz · 32`` multiply-adds: the least work any mode update must do.
 
 The tensors are generated once from a seed in the parent, saved to a temporary ``.npz`` and loaded by
-each child (generation is not timed). Numba kernels are compiled (or loaded from cache) on a tiny
+each child (generation is not timed; loading counts in peak memory). Numba kernels are compiled (or loaded from cache) on a tiny
 tensor before timing.
 
 Usage (from the repository root)::
@@ -36,52 +38,36 @@ import numpy as np
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 from _harness import gib, run_child  # noqa: E402
+from bench_cp import SITE_SHAPE, site_cells  # noqa: E402  (the CP benchmarks' tensors)
 
 RESULTS = HERE / "results" / "tucker.md"
-
-
-# ---------------------------------------------------------------------- data
-def make_cells(shape, nnz, seed, item_skew=1.0):
-    """Unique stored cells: users by lognormal activity, items by Zipf popularity, contexts by fixed mixes.
-
-    Returns coords (ndim, nnz) int32, values (nnz,) (preference 1 for every cell) and confidence
-    ``1 + log1p(repeats)`` from how often a cell was drawn.
-    """
-    rng = np.random.default_rng(seed)
-    draw = int(nnz * 1.6)
-    user_p = rng.lognormal(0.0, 1.0, shape[0])
-    item_p = 1.0 / np.arange(1, shape[1] + 1) ** item_skew
-    columns = [rng.choice(shape[0], draw, p=user_p / user_p.sum()).astype(np.int64),
-               rng.permutation(shape[1])[rng.choice(shape[1], draw, p=item_p / item_p.sum())].astype(np.int64)]
-    for size in shape[2:]:
-        mix = rng.dirichlet(np.full(size, 2.0))
-        columns.append(rng.choice(size, draw, p=mix).astype(np.int64))
-    key = np.ravel_multi_index(tuple(columns), shape)
-    unique, counts = np.unique(key, return_counts=True)
-    if unique.size < nnz:
-        raise RuntimeError(f"drew only {unique.size} unique cells for {nnz}; raise the oversampling")
-    pick = np.sort(rng.choice(unique.size, nnz, replace=False))
-    coords = np.array(np.unravel_index(unique[pick], shape), dtype=np.int32)
-    return coords, np.ones(nnz, dtype=np.float32), (1.0 + np.log1p(counts[pick] - 1)).astype(np.float32)
 
 
 # ---------------------------------------------------------------------- children
 CHILD_PRELUDE = """
 import sys, time
-sys.path.insert(0, {here!r})
 import numpy as np
+from threefold.feedback import CellEvidence, FeedbackWeighting
+from threefold.tensor import SparseTensor
 data = np.load({path!r})
 shape = tuple(int(s) for s in data["shape"])
+coords = data["coords"]
+n = coords.shape[1]
+if "clicks" in data:  # exposure-aware evidence of the CP benchmark B2, its weighting (w0 = 0.1)
+    evidence = CellEvidence(clicks=data["clicks"], dwell=np.zeros(n, np.float32), skips=data["skips"],
+                            last_seen=np.zeros(n, np.uint32), time_origin=0)
+    tensor = SparseTensor(coords=coords, shape=shape, mode_names=("user", "item", "daypart", "device"),
+                          vocabularies=(None,) * 4, evidence=evidence, weighting=FeedbackWeighting(w0=0.1),
+                          dtype=np.dtype(np.float32))
+else:  # binary cells of the CP benchmark B1
+    tensor = SparseTensor.from_arrays(coords, np.ones(n, np.float32), shape, dtype=np.float32)
 """
 
 OURS_HOOI = CHILD_PRELUDE + """
-from threefold import SparseTensor
 from threefold.hooi import fit_hooi
 warm = SparseTensor.from_arrays(np.array([[0, 1], [0, 1]] + [[0, 1]] * (len(shape) - 2)), [1.0, 2.0],
                                 (2,) * len(shape), dtype=np.float32)
 fit_hooi(warm, rank=1, max_sweeps=1, tol=0.0)
-tensor = SparseTensor.from_arrays(data["coords"], data["values"], shape, confidence=data["confidence"],
-                                  w0={w0}, dtype=np.float32)
 start = time.perf_counter()
 result = fit_hooi(tensor, rank={rank}, max_sweeps={sweeps}, tol=0.0, random_state=0)
 total = time.perf_counter() - start
@@ -91,13 +77,10 @@ RESULT = dict(seconds=total, init_seconds=result.history[0].seconds, sweep_secon
 """
 
 OURS_IMPLICIT = CHILD_PRELUDE + """
-from threefold import SparseTensor
 from threefold.implicit_tucker import fit_implicit_tucker
 warm = SparseTensor.from_arrays(np.array([[0, 1], [0, 1]] + [[0, 1]] * (len(shape) - 2)), [1.0, 2.0],
                                 (2,) * len(shape), dtype=np.float32, w0=0.5)
 fit_implicit_tucker(warm, rank=1, max_sweeps=1, tol=0.0, core_solver="cg")
-tensor = SparseTensor.from_arrays(data["coords"], data["values"], shape, confidence=data["confidence"],
-                                  w0={w0}, dtype=np.float32)
 start = time.perf_counter()
 result = fit_implicit_tucker(tensor, rank={rank}, reg=0.1, max_sweeps={sweeps}, tol=0.0, random_state=0)
 total = time.perf_counter() - start
@@ -109,8 +92,8 @@ RESULT = dict(seconds=total, init_seconds=result.history[0].seconds, sweep_secon
 TENSORLY_DENSE = CHILD_PRELUDE + """
 import tensorly as tl
 from tensorly.decomposition import tucker
-dense = np.zeros(shape)
-dense[tuple(data["coords"])] = data["values"]
+dense = tensor.to_dense().astype(np.float64)
+del tensor
 start = time.perf_counter()
 _, errors = tucker(tl.tensor(dense), {rank}, n_iter_max={sweeps}, init="svd", tol=0, return_errors=True)
 total = time.perf_counter() - start
@@ -119,10 +102,10 @@ RESULT = dict(seconds=total, sweep_seconds=total / {sweeps}, fit=float(1.0 - err
 
 SPARSE_PRODUCT = CHILD_PRELUDE + """
 import scipy.sparse as sp
-coords = data["coords"].astype(np.int64)
-others = np.ravel_multi_index(tuple(coords[1:]), shape[1:])
+others = np.ravel_multi_index(tuple(coords[1:].astype(np.int64)), shape[1:])
 _, columns = np.unique(others, return_inverse=True)
-unfolding = sp.csr_matrix((data["values"].astype(np.float64), (coords[0], columns)), shape=(shape[0], columns.max() + 1))
+unfolding = sp.csr_matrix((tensor.preference.astype(np.float64), (coords[0], columns)),
+                          shape=(shape[0], columns.max() + 1))
 dense = np.random.default_rng(0).standard_normal((unfolding.shape[1], 32))
 unfolding @ dense
 start = time.perf_counter()
@@ -133,7 +116,7 @@ RESULT = dict(seconds=(time.perf_counter() - start) / 3)
 
 
 def run(template: str, path: str, **fields) -> dict:
-    out = run_child(template.format(here=str(HERE), path=path, **fields))
+    out = run_child(template.format(path=path, **fields), timeout=7200)
     if "error" in out:
         raise RuntimeError(out["error"])
     return out
@@ -142,10 +125,10 @@ def run(template: str, path: str, **fields) -> dict:
 # ---------------------------------------------------------------------- cases
 def case_small(args, folder: str) -> str:
     shape, rank = (2000, 1000, 24), (16, 16, 4)
-    coords, values, confidence = make_cells(shape, args.small_nnz, seed=1)
+    coords = site_cells(shape, args.small_nnz, seed=1)["coords"]
     path = str(Path(folder) / "small.npz")
-    np.savez(path, coords=coords, values=values, confidence=confidence, shape=np.array(shape))
-    ours = run(OURS_HOOI, path, rank=rank, sweeps=args.sweeps, w0=1.0)
+    np.savez(path, coords=coords, shape=np.array(shape))
+    ours = run(OURS_HOOI, path, rank=rank, sweeps=args.sweeps)
     theirs = run(TENSORLY_DENSE, path, rank=list(rank), sweeps=args.sweeps)
     command = f"/work/venv/bin/python experiments/benchmarks/bench_tucker.py --case small --sweeps {args.sweeps}"
     rows = [
@@ -173,15 +156,15 @@ def case_small(args, folder: str) -> str:
 
 
 def case_large(args, folder: str) -> str:
-    shape = (100_000, 20_000, 6, 4)
-    coords, values, confidence = make_cells(shape, args.large_nnz, seed=2)
+    shape = SITE_SHAPE
+    cells = site_cells(shape, args.large_nnz, seed=3)
     path = str(Path(folder) / "large.npz")
-    np.savez(path, coords=coords, values=values, confidence=confidence, shape=np.array(shape))
-    nnz = coords.shape[1]
-    del coords, values, confidence
+    np.savez(path, shape=np.array(shape), **cells)
+    nnz = cells["coords"].shape[1]
+    del cells
     reference = run(SPARSE_PRODUCT, path)
-    hooi = run(OURS_HOOI, path, rank=(32, 32, 4, 3), sweeps=args.sweeps, w0=1.0)
-    implicit = run(OURS_IMPLICIT, path, rank=(16, 16, 4, 3), sweeps=args.sweeps, w0=0.05)
+    hooi = run(OURS_HOOI, path, rank=(32, 32, 4, 3), sweeps=args.sweeps)
+    implicit = run(OURS_IMPLICIT, path, rank=(16, 16, 4, 3), sweeps=args.sweeps)
     command = (f"/work/venv/bin/python experiments/benchmarks/bench_tucker.py --case large "
                f"--large-nnz {args.large_nnz} --sweeps {args.sweeps}")
     lines = [
@@ -196,7 +179,7 @@ def case_large(args, folder: str) -> str:
         f"{reference['seconds']:.3f} | {gib(reference['peak_rss_bytes'])} | — | 1.0x |",
         f"| threefold `fit_hooi` | (32, 32, 4, 3) | {hooi['init_seconds']:.1f} | {hooi['sweep_seconds']:.2f} | "
         f"{gib(hooi['peak_rss_bytes'])} | {hooi['fit']:.4f} | {hooi['sweep_seconds'] / reference['seconds']:.0f}x |",
-        f"| threefold `fit_implicit_tucker` (w0 = 0.05, reg = 0.1) | (16, 16, 4, 3) | {implicit['init_seconds']:.1f} | "
+        f"| threefold `fit_implicit_tucker` (w0 = 0.1, reg = 0.1, core CG 10 steps) | (16, 16, 4, 3) | {implicit['init_seconds']:.1f} | "
         f"{implicit['sweep_seconds']:.2f} | {gib(implicit['peak_rss_bytes'])} | {implicit['fit']:.4f} | "
         f"{implicit['sweep_seconds'] / reference['seconds']:.0f}x |",
         "",

@@ -54,7 +54,7 @@ from threefold.tucker import (
     hosvd_factors,
     read_only_model,
 )
-from threefold.tucker_kernels import FiberTree, build_fiber_tree, ttmc
+from threefold.tucker_kernels import FiberTree, build_fiber_tree, ttmc_core
 from threefold.tucker_rows import evaluate, implicit_rows
 
 __all__ = ["fit_implicit_tucker", "update_rows", "update_core", "implicit_loss", "implicit_tucker_fold_in",
@@ -64,8 +64,6 @@ __all__ = ["fit_implicit_tucker", "update_rows", "update_core", "implicit_loss",
 CORE_EXACT_ENTRIES = 2000
 #: ... and while forming its stored-cell part costs at most this many multiply-adds (nnz · P²).
 CORE_EXACT_WORK = 2e10
-#: Largest ``Y`` (entries) the core products may allocate when rooted at a large mode.
-CORE_Y_ENTRIES = 1 << 25
 
 Callback = Callable[[SweepRecord, tuple], "bool | None"]
 
@@ -92,17 +90,14 @@ def _tree(tensor: SparseTensor, mode: int, trees: dict | None) -> FiberTree:
 
 
 def _core_mode(shape: tuple[int, ...], rank: tuple[int, ...]) -> int:
-    """Root of the core products: the largest mode whose ``Y`` (``I_n · Π_{m≠n} R_m`` entries) fits the budget.
+    """Root of the core products: the largest mode.
 
-    Rooting at the largest mode puts a smaller factor at the leaf level, whose
-    rows every stored cell reads: fewer cache misses than the largest factor.
+    Its tree puts a smaller factor at the leaf level, whose rows every stored
+    cell reads (fewer cache misses than the largest factor), and the root rows
+    are folded into the core as they complete (:func:`ttmc_core`), so no
+    ``I_root``-row intermediate is formed.
     """
-    total = int(np.prod(rank))
-    entries = [shape[n] * total // rank[n] for n in range(len(shape))]
-    for n in sorted(range(len(shape)), key=lambda m: -shape[m]):
-        if entries[n] <= CORE_Y_ENTRIES:
-            return n
-    return int(np.argmin(entries))
+    return int(np.argmax(shape))
 
 
 def _weights64(tensor: SparseTensor) -> tuple[np.ndarray, np.ndarray]:
@@ -141,10 +136,8 @@ def update_rows(tensor: SparseTensor, mode: int, core: np.ndarray, factors: Sequ
 
 
 def _scatter(tree: FiberTree, tensor: SparseTensor, values: np.ndarray, factors, rank) -> np.ndarray:
-    """``Σ_e values[e] · k_e`` folded into a core: ``F_rᵀ Y`` with ``Y`` from the fiber tree."""
-    root = tree.root
-    y = ttmc(tree, tensor.coords, values, factors, tensor.shape[root])
-    permuted = (factors[root].T @ y).reshape(tuple(rank[m] for m in tree.levels))
+    """``Σ_e values[e] · k_e`` folded into a core: ``F_rᵀ Y`` from the fiber tree, never forming ``Y``."""
+    permuted = ttmc_core(tree, tensor.coords, values, factors).reshape(tuple(rank[m] for m in tree.levels))
     return np.transpose(permuted, np.argsort(tree.levels))
 
 

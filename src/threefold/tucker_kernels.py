@@ -36,7 +36,7 @@ import numba
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["FiberTree", "build_fiber_tree", "pack_factors", "ttmc", "run_kernel", "level_sizes", "FAST"]
+__all__ = ["FiberTree", "build_fiber_tree", "pack_factors", "ttmc", "ttmc_core", "run_kernel", "level_sizes", "FAST"]
 
 #: Target number of stored cells per parallel chunk.
 CHUNK_CELLS = 32_768
@@ -159,9 +159,17 @@ def _close_level(k, cell, coords, levels, flat, offsets, ranks, sizes, buf, boff
 
 
 @njit(cache=True, fastmath=FAST)
-def _flush_root(row, first, last, ch, buf, width, out, edge):
+def _flush_root(row, first, last, ch, buf, width, out, edge, contract, flat, offsets, ranks, root, core_out):
     top = buf[:width]
-    if row == first:
+    if contract:  # core_out[ch] += F_root[row] ⊗ top: the root row's share of F_rootᵀ Y
+        rr = ranks[root]
+        frow = flat[offsets[root] + row * rr:][:rr]
+        for a in range(rr):
+            target = core_out[ch, a]
+            f = frow[a]
+            for j in range(width):
+                target[j] += f * top[j]
+    elif row == first:
         target = edge[ch, 0]
         for j in range(width):
             target[j] += top[j]
@@ -175,7 +183,8 @@ def _flush_root(row, first, last, ch, buf, width, out, edge):
 
 
 @njit(parallel=True, cache=True, fastmath=FAST)
-def _ttmc_kernel(coords, values, perm, breaks, levels, flat, offsets, ranks, sizes, chunks, out, edge, edge_rows):
+def _ttmc_kernel(coords, values, perm, breaks, levels, flat, offsets, ranks, sizes, chunks, out, edge, edge_rows,
+                 contract, core_out):
     ndim = levels.shape[0]
     boff = np.zeros(ndim, dtype=np.int64)
     total = 0
@@ -204,7 +213,8 @@ def _ttmc_kernel(coords, values, perm, breaks, levels, flat, offsets, ranks, siz
                 for k in range(ndim - 2, low - 1, -1):
                     _close_level(k, prev, coords, levels, flat, offsets, ranks, sizes, buf, boff)
                 if b == 0:
-                    _flush_root(row, first, last, ch, buf, width, out, edge)
+                    _flush_root(row, first, last, ch, buf, width, out, edge, contract, flat, offsets, ranks, root,
+                                core_out)
                     row = coords[root, cell]
             x = values[cell]
             frow = flat[offsets[leaf] + coords[leaf, cell] * r_leaf:][:r_leaf]
@@ -214,7 +224,7 @@ def _ttmc_kernel(coords, values, perm, breaks, levels, flat, offsets, ranks, siz
             prev = cell
         for k in range(ndim - 2, 0, -1):
             _close_level(k, prev, coords, levels, flat, offsets, ranks, sizes, buf, boff)
-        _flush_root(row, first, last, ch, buf, width, out, edge)
+        _flush_root(row, first, last, ch, buf, width, out, edge, contract, flat, offsets, ranks, root, core_out)
 
 
 def ttmc(tree: FiberTree, coords: np.ndarray, values: np.ndarray, factors, n_rows: int) -> np.ndarray:
@@ -248,10 +258,36 @@ def ttmc(tree: FiberTree, coords: np.ndarray, values: np.ndarray, factors, n_row
         return out
     edge = np.zeros((n_chunks, 2, int(sizes[0])), dtype=dtype)
     edge_rows = np.zeros((n_chunks, 2), dtype=np.int64)
-    run_kernel(_ttmc_kernel, tree, coords, values, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes, tree.chunks, out, edge, edge_rows)
+    run_kernel(_ttmc_kernel, tree, coords, values, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes,
+               tree.chunks, out, edge, edge_rows, False, np.zeros((1, 1, 1), dtype=dtype))
     np.add.at(out, edge_rows[:, 0], edge[:, 0])
     np.add.at(out, edge_rows[:, 1], edge[:, 1])
     return out
+
+
+def ttmc_core(tree: FiberTree, coords: np.ndarray, values: np.ndarray, factors) -> np.ndarray:
+    """The tensor times every factor matrix, transposed: ``F_rootᵀ Y`` without forming ``Y``.
+
+    Equals ``factors[root].T @ ttmc(...)``: each root row's ``Y`` row is folded
+    into the result as soon as it is complete, so memory is one
+    ``R_root × Π_{m≠root} R_m`` block per chunk instead of ``I_root`` rows.
+
+    Returns
+    -------
+    ndarray of shape (R_root, prod_{m != root} R_m), dtype of ``values``
+        Columns in C order over ``levels[1:]``.
+    """
+    dtype = values.dtype
+    flat, offsets, ranks = pack_factors(factors, dtype)
+    sizes = level_sizes(tree.levels, ranks)
+    r_root = int(ranks[tree.root])
+    n_chunks = tree.chunks.shape[0] - 1
+    core_out = np.zeros((max(n_chunks, 1), r_root, int(sizes[0])), dtype=dtype)
+    if n_chunks:
+        run_kernel(_ttmc_kernel, tree, coords, values, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks,
+                   sizes, tree.chunks, np.zeros((1, 1), dtype=dtype), np.zeros((1, 2, 1), dtype=dtype),
+                   np.zeros((n_chunks, 2), dtype=np.int64), True, core_out)
+    return core_out.sum(axis=0)
 
 
 def run_kernel(kernel, tree: FiberTree, *args) -> None:
