@@ -22,24 +22,22 @@ small Gram matrix of each ``Y_(n)``.
 from __future__ import annotations
 
 import time
-import warnings
 from typing import Callable, Sequence
 
 import numpy as np
 import scipy.linalg
 
 from threefold import kernels
-from threefold._checks import check_choice, check_int, check_number
+from threefold._checks import check_choice
 from threefold.cp_result import SweepRecord
-from threefold.exceptions import ConvergenceWarning
 from threefold.tensor import SparseTensor
 from threefold.tucker import (
     TuckerEstimator,
     TuckerResult,
+    check_fit_parameters,
     check_fold_in,
-    check_tucker_rank,
     hosvd_factors,
-    read_only_model,
+    run_sweeps,
 )
 from threefold.tucker_kernels import build_fiber_tree, ttmc
 
@@ -108,10 +106,10 @@ def _initial_factors(tensor: SparseTensor, rank: tuple[int, ...], init, rng) -> 
     return out
 
 
-def _sweep_record(sweep: int, norm_sq: float, core: np.ndarray, seconds: float) -> SweepRecord:
+def _loss_and_fit(norm_sq: float, core: np.ndarray) -> tuple[float, float]:
+    """``‖X − X̂‖² = ‖X‖² − ‖G‖²`` (orthonormal factors) and ``1 − ‖X − X̂‖ / ‖X‖``."""
     loss = max(norm_sq - float(np.sum(core * core)), 0.0)
-    fit = 1.0 - np.sqrt(loss / norm_sq) if norm_sq > 0 else 1.0
-    return SweepRecord(sweep, loss, fit, seconds)
+    return loss, (1.0 - np.sqrt(loss / norm_sq) if norm_sq > 0 else 1.0)
 
 
 def fit_hooi(
@@ -169,49 +167,32 @@ def fit_hooi(
         When ``tol > 0`` and ``max_sweeps`` sweeps did not reach it.
     """
     owner = "fit_hooi"
-    if not isinstance(tensor, SparseTensor):
-        raise TypeError(f"fit_hooi needs a SparseTensor, got {type(tensor).__name__}.")
-    rank = check_tucker_rank(rank, tensor.shape, owner)
-    max_sweeps = check_int("max_sweeps", max_sweeps, low=1, owner=owner)
-    tol = check_number("tol", tol, low=0.0, owner=owner)
-    dtype = tensor.dtype if dtype is None else np.dtype(dtype)
-    check_choice("dtype", np.dtype(dtype), (np.dtype(np.float32), np.dtype(np.float64)), owner=owner)
-    if callback is not None and not callable(callback):
-        raise ValueError(f"The 'callback' parameter of {owner} must be callable or None. Got {callback!r} instead.")
+    rank, max_sweeps, tol, dtype = check_fit_parameters(tensor, rank, max_sweeps, tol, dtype, callback, n_threads,
+                                                        owner)
     rng = np.random.default_rng(random_state)
-    if n_threads is not None:
-        check_int("n_threads", n_threads, low=1, owner=owner)
     with kernels.threads(n_threads):
         start = time.perf_counter()
         values = tensor.preference.astype(np.float64)
         norm_sq = float(values @ values)
         factors = _initial_factors(tensor, rank, init, rng)
         trees = [build_fiber_tree(tensor.coords, tensor.shape, n) for n in range(tensor.ndim)]
-        y = ttmc(trees[-1], tensor.coords, values, factors, tensor.shape[-1])
-        core = _fold_core(factors[-1].T @ y, trees[-1].levels, rank)
-        history = [_sweep_record(0, norm_sq, core, time.perf_counter() - start)]
-        stop_reason = "max_sweeps"
-        for sweep in range(1, max_sweeps + 1):
-            start = time.perf_counter()
+        state = {"core": _fold_core(factors[-1].T @ ttmc(trees[-1], tensor.coords, values, factors, tensor.shape[-1]),
+                                    trees[-1].levels, rank)}
+
+        def sweep():
             for n, tree in enumerate(trees):
                 y = ttmc(tree, tensor.coords, values, factors, tensor.shape[n])
                 factors[n] = leading_vectors(y, rank[n], rng)
-            core = _fold_core(factors[-1].T @ y, trees[-1].levels, rank)
-            record = _sweep_record(sweep, norm_sq, core, time.perf_counter() - start)
-            history.append(record)
-            if callback is not None and callback(record, read_only_model(core, factors)):
-                stop_reason = "callback"
-                break
-            change = abs(history[-2].loss - record.loss) / max(history[-2].loss, 1e-12 * norm_sq, np.finfo(float).tiny)
-            if tol > 0 and change < tol:
-                stop_reason = "converged"
-                break
-    if stop_reason == "max_sweeps" and tol > 0:
-        warnings.warn(f"fit_hooi stopped after max_sweeps={max_sweeps} sweeps before the relative loss change fell "
-                      f"below tol={tol:g}; raise max_sweeps or tol.", ConvergenceWarning, stacklevel=2)
+            state["core"] = _fold_core(factors[-1].T @ y, trees[-1].levels, rank)
+            return (*_loss_and_fit(norm_sq, state["core"]), state["core"], factors)
+
+        first = SweepRecord(0, *_loss_and_fit(norm_sq, state["core"]), time.perf_counter() - start)
+        history, stop_reason = run_sweeps(sweep, first, max_sweeps=max_sweeps, tol=tol, loss_floor=1e-12 * norm_sq,
+                                          callback=callback, owner=owner)
     return TuckerResult(
-        core=core.astype(dtype), factors=tuple(f.astype(dtype) for f in factors), mode_names=tensor.mode_names,
-        vocabularies=tensor.vocabularies, history=tuple(history), stop_reason=stop_reason, method="hooi",
+        core=state["core"].astype(dtype), factors=tuple(f.astype(dtype) for f in factors),
+        mode_names=tensor.mode_names, vocabularies=tensor.vocabularies, history=tuple(history),
+        stop_reason=stop_reason, method="hooi",
     )
 
 
@@ -248,17 +229,9 @@ def hooi_fold_in(result: TuckerResult, tensor: SparseTensor, mode: int | str) ->
 
 
 class HOOIModel(TuckerEstimator):
-    """Estimator around :func:`fit_hooi`; parameters as there, fitted state ending in ``_``.
+    """Estimator around :func:`fit_hooi`; parameters as there, fitted state as in :class:`TuckerEstimator`."""
 
-    Attributes
-    ----------
-    result_ : TuckerResult
-    core_ : ndarray of shape (R_1, ..., R_N)
-    factors_ : tuple of ndarray of shape (I_n, R_n)
-    history_ : tuple of SweepRecord
-    n_sweeps_ : int
-    converged_ : bool
-    """
+    _fit_function = staticmethod(fit_hooi)
 
     def __init__(self, *, rank=8, init="hosvd", max_sweeps=50, tol=1e-8, random_state=None, n_threads=None,
                  dtype=None, callback=None):
@@ -270,16 +243,6 @@ class HOOIModel(TuckerEstimator):
         self.n_threads = n_threads
         self.dtype = dtype
         self.callback = callback
-
-    def get_params(self) -> dict:
-        """The constructor parameters, by name (the names configs and the command line use)."""
-        names = ("rank", "init", "max_sweeps", "tol", "random_state", "n_threads", "dtype", "callback")
-        return {name: getattr(self, name) for name in names}
-
-    def fit(self, tensor: SparseTensor) -> "HOOIModel":
-        """Fit to a tensor; returns self."""
-        self._set_result(fit_hooi(tensor, **self.get_params()))
-        return self
 
     def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
         """Rows for new users, items or context levels; see :func:`hooi_fold_in`."""

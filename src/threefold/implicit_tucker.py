@@ -34,7 +34,6 @@ Each block update minimizes ``L`` exactly (rows, exact core) or decreases it
 from __future__ import annotations
 
 import time
-import warnings
 from dataclasses import replace
 from typing import Callable, Sequence
 
@@ -44,15 +43,14 @@ import scipy.linalg
 from threefold import kernels
 from threefold._checks import check_choice, check_int, check_number
 from threefold.cp_result import SweepRecord
-from threefold.exceptions import ConvergenceWarning
 from threefold.tensor import SparseTensor
 from threefold.tucker import (
     TuckerEstimator,
     TuckerResult,
+    check_fit_parameters,
     check_fold_in,
-    check_tucker_rank,
     hosvd_factors,
-    read_only_model,
+    run_sweeps,
 )
 from threefold.tucker_kernels import FiberTree, build_fiber_tree, ttmc_core
 from threefold.tucker_rows import evaluate, implicit_rows
@@ -348,54 +346,38 @@ def fit_implicit_tucker(
         When ``tol > 0`` and ``max_sweeps`` sweeps did not reach it.
     """
     owner = "fit_implicit_tucker"
-    if not isinstance(tensor, SparseTensor):
-        raise TypeError(f"fit_implicit_tucker needs a SparseTensor, got {type(tensor).__name__}.")
-    rank = check_tucker_rank(rank, tensor.shape, owner)
+    rank, max_sweeps, tol, dtype = check_fit_parameters(tensor, rank, max_sweeps, tol, dtype, callback, n_threads,
+                                                        owner)
     reg = check_number("reg", reg, low=0.0, owner=owner)
-    max_sweeps = check_int("max_sweeps", max_sweeps, low=1, owner=owner)
-    tol = check_number("tol", tol, low=0.0, owner=owner)
     core_solver = check_choice("core_solver", core_solver, ("auto", "exact", "cg"), owner=owner)
     core_cg_steps = check_int("core_cg_steps", core_cg_steps, low=1, owner=owner)
-    dtype = tensor.dtype if dtype is None else np.dtype(dtype)
-    check_choice("dtype", np.dtype(dtype), (np.dtype(np.float32), np.dtype(np.float64)), owner=owner)
-    if callback is not None and not callable(callback):
-        raise ValueError(f"The 'callback' parameter of {owner} must be callable or None. Got {callback!r} instead.")
     preference, confidence = _weights64(tensor)  # weigh the evidence once, not in every block update
     tensor = replace(tensor, evidence=None, dtype=np.dtype(np.float64), stored_preference=preference,
                      stored_confidence=confidence)
     # Store the cells in the order of the core products' tree: most passes then read them sequentially.
     tensor = tensor.take(build_fiber_tree(tensor.coords, tensor.shape, _core_mode(tensor.shape, rank)).perm)
     rng = np.random.default_rng(random_state)
-    if n_threads is not None:
-        check_int("n_threads", n_threads, low=1, owner=owner)
     with kernels.threads(n_threads):
         start = time.perf_counter()
         trees: dict[int, FiberTree] = {}
         core, factors = _initial_model(tensor, rank, init, rng, trees)
-        history = [SweepRecord(0, *implicit_loss(tensor, core, factors, reg, trees=trees), time.perf_counter() - start)]
-        stop_reason = "max_sweeps"
-        for sweep in range(1, max_sweeps + 1):
-            start = time.perf_counter()
+        state = {"core": core}
+
+        def sweep():
             for n in range(tensor.ndim):
-                factors[n] = update_rows(tensor, n, core, factors, reg, trees=trees)
-            core = update_core(tensor, core, factors, reg, solver=core_solver, cg_steps=core_cg_steps, trees=trees)
-            record = SweepRecord(sweep, *implicit_loss(tensor, core, factors, reg, trees=trees),
-                                 time.perf_counter() - start)
-            history.append(record)
-            if callback is not None and callback(record, read_only_model(core, factors)):
-                stop_reason = "callback"
-                break
-            change = abs(history[-2].loss - record.loss) / max(abs(history[-2].loss), np.finfo(float).tiny)
-            if tol > 0 and change < tol:
-                stop_reason = "converged"
-                break
-    if stop_reason == "max_sweeps" and tol > 0:
-        warnings.warn(f"fit_implicit_tucker stopped after max_sweeps={max_sweeps} sweeps before the relative loss "
-                      f"change fell below tol={tol:g}; raise max_sweeps or tol.", ConvergenceWarning, stacklevel=2)
+                factors[n] = update_rows(tensor, n, state["core"], factors, reg, trees=trees)
+            state["core"] = update_core(tensor, state["core"], factors, reg, solver=core_solver,
+                                        cg_steps=core_cg_steps, trees=trees)
+            return (*implicit_loss(tensor, state["core"], factors, reg, trees=trees), state["core"], factors)
+
+        first = SweepRecord(0, *implicit_loss(tensor, core, factors, reg, trees=trees), time.perf_counter() - start)
+        loss_floor = 1e-12 * float(np.sum(tensor.stored_confidence * tensor.stored_preference**2))
+        history, stop_reason = run_sweeps(sweep, first, max_sweeps=max_sweeps, tol=tol, loss_floor=loss_floor,
+                                          callback=callback, owner=owner)
     return TuckerResult(
-        core=core.astype(dtype), factors=tuple(f.astype(dtype) for f in factors), mode_names=tensor.mode_names,
-        vocabularies=tensor.vocabularies, history=tuple(history), stop_reason=stop_reason, method="implicit",
-        w0=tensor.w0, reg=reg,
+        core=state["core"].astype(dtype), factors=tuple(f.astype(dtype) for f in factors),
+        mode_names=tensor.mode_names, vocabularies=tensor.vocabularies, history=tuple(history),
+        stop_reason=stop_reason, method="implicit", w0=tensor.w0, reg=reg,
     )
 
 
@@ -432,17 +414,9 @@ def implicit_tucker_fold_in(result: TuckerResult, tensor: SparseTensor, mode: in
 
 
 class ImplicitTuckerModel(TuckerEstimator):
-    """Estimator around :func:`fit_implicit_tucker`; parameters as there, fitted state ending in ``_``.
+    """Estimator around :func:`fit_implicit_tucker`; parameters as there, fitted state as in :class:`TuckerEstimator`."""
 
-    Attributes
-    ----------
-    result_ : TuckerResult
-    core_ : ndarray of shape (R_1, ..., R_N)
-    factors_ : tuple of ndarray of shape (I_n, R_n)
-    history_ : tuple of SweepRecord
-    n_sweeps_ : int
-    converged_ : bool
-    """
+    _fit_function = staticmethod(fit_implicit_tucker)
 
     def __init__(self, *, rank=8, reg=0.1, init="hosvd", max_sweeps=30, tol=1e-4, core_solver="auto",
                  core_cg_steps=10, random_state=None, n_threads=None, dtype=None, callback=None):
@@ -457,17 +431,6 @@ class ImplicitTuckerModel(TuckerEstimator):
         self.n_threads = n_threads
         self.dtype = dtype
         self.callback = callback
-
-    def get_params(self) -> dict:
-        """The constructor parameters, by name (the names configs and the command line use)."""
-        names = ("rank", "reg", "init", "max_sweeps", "tol", "core_solver", "core_cg_steps", "random_state",
-                 "n_threads", "dtype", "callback")
-        return {name: getattr(self, name) for name in names}
-
-    def fit(self, tensor: SparseTensor) -> "ImplicitTuckerModel":
-        """Fit to a tensor; returns self."""
-        self._set_result(fit_implicit_tucker(tensor, **self.get_params()))
-        return self
 
     def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
         """Rows for new users, items or context levels; see :func:`implicit_tucker_fold_in`."""

@@ -17,13 +17,17 @@ how to read the core.
 
 from __future__ import annotations
 
+import inspect
+import time
+import warnings
 from dataclasses import dataclass, replace
-from typing import Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 
-from threefold._checks import check_choice, check_int
+from threefold._checks import check_choice, check_int, check_number
 from threefold.cp_result import STOP_REASONS, SweepRecord, mode_position
+from threefold.exceptions import ConvergenceWarning
 from threefold.initialize import leading_left_vectors
 from threefold.scoring import Scorer, ScoreTerms, check_queries
 from threefold.tensor import SparseTensor
@@ -276,15 +280,39 @@ def core_slice(result: TuckerResult, levels: dict[int, int]) -> np.ndarray:
 
 
 class TuckerEstimator(Scorer):
-    """Shared plumbing of the Tucker estimators: fitted state and scoring by delegation."""
+    """Shared plumbing of the Tucker estimators: parameters, fit, fitted state, scoring by delegation.
 
-    def _set_result(self, result: TuckerResult) -> None:
+    A subclass names its fit function in ``_fit_function``; its ``__init__``
+    stores exactly that function's keyword parameters.
+
+    Attributes
+    ----------
+    result_ : TuckerResult
+    core_ : ndarray of shape (R_1, ..., R_N)
+    factors_ : tuple of ndarray of shape (I_n, R_n)
+    history_ : tuple of SweepRecord
+    n_sweeps_ : int
+    converged_ : bool
+    """
+
+    _fit_function: Callable
+
+    def get_params(self) -> dict:
+        """The constructor parameters, by name (the names configs and the command line use)."""
+        names = [name for name, p in inspect.signature(self._fit_function).parameters.items()
+                 if p.kind is inspect.Parameter.KEYWORD_ONLY]
+        return {name: getattr(self, name) for name in names}
+
+    def fit(self, tensor: SparseTensor) -> "TuckerEstimator":
+        """Fit to a tensor; returns self."""
+        result = self._fit_function(tensor, **self.get_params())
         self.result_ = result
         self.core_ = result.core
         self.factors_ = result.factors
         self.history_ = result.history
         self.n_sweeps_ = result.n_sweeps
         self.converged_ = result.converged
+        return self
 
     def _fitted(self) -> TuckerResult:
         if not hasattr(self, "result_"):
@@ -351,3 +379,62 @@ def read_only_model(core: np.ndarray, factors: Sequence[np.ndarray]) -> tuple[np
     for view in views:
         view.flags.writeable = False
     return views[0], tuple(views[1:])
+
+
+def check_fit_parameters(tensor, rank, max_sweeps, tol, dtype, callback, n_threads, owner: str):
+    """Validate the parameters both Tucker fits share; return ``(rank, max_sweeps, tol, dtype)``."""
+    if not isinstance(tensor, SparseTensor):
+        raise TypeError(f"{owner} needs a SparseTensor, got {type(tensor).__name__}.")
+    rank = check_tucker_rank(rank, tensor.shape, owner)
+    max_sweeps = check_int("max_sweeps", max_sweeps, low=1, owner=owner)
+    tol = check_number("tol", tol, low=0.0, owner=owner)
+    dtype = tensor.dtype if dtype is None else np.dtype(dtype)
+    check_choice("dtype", np.dtype(dtype), (np.dtype(np.float32), np.dtype(np.float64)), owner=owner)
+    if callback is not None and not callable(callback):
+        raise ValueError(f"The 'callback' parameter of {owner} must be callable or None. Got {callback!r} instead.")
+    if n_threads is not None:
+        check_int("n_threads", n_threads, low=1, owner=owner)
+    return rank, max_sweeps, tol, np.dtype(dtype)
+
+
+def run_sweeps(sweep: Callable[[], tuple], first: SweepRecord, *, max_sweeps: int, tol: float, loss_floor: float,
+               callback, owner: str) -> tuple[list[SweepRecord], str]:
+    """Run sweeps until convergence, the cap, or the callback says stop.
+
+    Parameters
+    ----------
+    sweep : callable
+        Does one sweep; returns ``(loss, fit, core, factors)``.
+    first : SweepRecord
+        The initial state (sweep 0).
+    max_sweeps, tol : int, float
+        Stop when ``|Δ loss| / max(|previous loss|, loss_floor) < tol`` (never with ``tol = 0``).
+    loss_floor : float
+        Keeps the relative change finite near an exact fit.
+    callback : callable or None
+        ``callback(record, (core, factors))``; True stops.
+    owner : str
+
+    Returns
+    -------
+    history : list of SweepRecord
+    stop_reason : {"converged", "max_sweeps", "callback"}
+    """
+    history = [first]
+    stop_reason = "max_sweeps"
+    for number in range(1, max_sweeps + 1):
+        start = time.perf_counter()
+        loss, fit, core, factors = sweep()
+        record = SweepRecord(number, loss, fit, time.perf_counter() - start)
+        history.append(record)
+        if callback is not None and callback(record, read_only_model(core, factors)):
+            stop_reason = "callback"
+            break
+        change = abs(history[-2].loss - loss) / max(abs(history[-2].loss), loss_floor, np.finfo(float).tiny)
+        if tol > 0 and change < tol:
+            stop_reason = "converged"
+            break
+    if stop_reason == "max_sweeps" and tol > 0:
+        warnings.warn(f"{owner} stopped after max_sweeps={max_sweeps} sweeps before the relative loss change fell "
+                      f"below tol={tol:g}; raise max_sweeps or tol.", ConvergenceWarning, stacklevel=3)
+    return history, stop_reason

@@ -36,7 +36,7 @@ import numba
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["FiberTree", "build_fiber_tree", "pack_factors", "ttmc", "ttmc_core", "run_kernel", "level_sizes", "FAST"]
+__all__ = ["FiberTree", "build_fiber_tree", "pack_factors", "ttmc", "ttmc_core", "run_kernel", "chunk_roots", "FAST"]
 
 #: Target number of stored cells per parallel chunk.
 CHUNK_CELLS = 32_768
@@ -115,8 +115,8 @@ def build_fiber_tree(coords: np.ndarray, shape: tuple[int, ...], root: int) -> F
     return FiberTree(levels=levels, perm=perm, breaks=breaks, chunks=chunks)
 
 
-def pack_factors(factors, dtype) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Concatenate factor matrices into one flat array for the kernels.
+def pack_factors(tree: FiberTree, factors, dtype) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Concatenate factor matrices into one flat array for the kernels, with the tree's level widths.
 
     Returns
     -------
@@ -124,12 +124,14 @@ def pack_factors(factors, dtype) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         Row ``i`` of factor ``m`` is ``flat[offsets[m] + i * ranks[m]:][:ranks[m]]``.
     offsets : ndarray of shape (ndim,), int64
     ranks : ndarray of shape (ndim,), int64
+    sizes : ndarray of shape (ndim,), int64
+        ``sizes[k] = Π_{j > k} ranks[levels[j]]`` (see :func:`level_sizes`).
     """
     ranks = np.array([f.shape[1] for f in factors], dtype=np.int64)
-    sizes = np.array([f.size for f in factors], dtype=np.int64)
-    offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+    counts = np.array([f.size for f in factors], dtype=np.int64)
+    offsets = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
     flat = np.concatenate([np.ascontiguousarray(f, dtype=dtype).ravel() for f in factors])
-    return flat, offsets, ranks
+    return flat, offsets, ranks, level_sizes(tree.levels, ranks)
 
 
 def level_sizes(levels: np.ndarray, ranks: np.ndarray) -> np.ndarray:
@@ -156,6 +158,18 @@ def _close_level(k, cell, coords, levels, flat, offsets, ranks, sizes, buf, boff
         for j in range(width):
             parent[o + j] += f * child[j]
     child[:] = 0.0
+
+
+@njit(cache=True)
+def chunk_roots(ch, chunks, coords, root, perm, edge_rows):
+    """Cell range of chunk ``ch`` and its first and last root rows (recorded in ``edge_rows``)."""
+    start = chunks[ch]
+    stop = chunks[ch + 1]
+    first = coords[root, perm[start]]
+    last = coords[root, perm[stop - 1]]
+    edge_rows[ch, 0] = first
+    edge_rows[ch, 1] = last
+    return start, stop, first, last
 
 
 @njit(cache=True, fastmath=FAST)
@@ -196,13 +210,8 @@ def _ttmc_kernel(coords, values, perm, breaks, levels, flat, offsets, ranks, siz
     r_leaf = ranks[leaf]
     width = sizes[0]
     for ch in prange(chunks.shape[0] - 1):
-        start = chunks[ch]
-        stop = chunks[ch + 1]
+        start, stop, first, last = chunk_roots(ch, chunks, coords, root, perm, edge_rows)
         buf = np.zeros(total, dtype=out.dtype)
-        first = coords[root, perm[start]]
-        last = coords[root, perm[stop - 1]]
-        edge_rows[ch, 0] = first
-        edge_rows[ch, 1] = last
         row = first
         prev = perm[start]
         for p in range(start, stop):
@@ -250,8 +259,7 @@ def ttmc(tree: FiberTree, coords: np.ndarray, values: np.ndarray, factors, n_row
         Columns in C order over ``levels[1:]``.
     """
     dtype = values.dtype
-    flat, offsets, ranks = pack_factors(factors, dtype)
-    sizes = level_sizes(tree.levels, ranks)
+    flat, offsets, ranks, sizes = pack_factors(tree, factors, dtype)
     out = np.zeros((n_rows, int(sizes[0])), dtype=dtype)
     n_chunks = tree.chunks.shape[0] - 1
     if n_chunks == 0:
@@ -278,8 +286,7 @@ def ttmc_core(tree: FiberTree, coords: np.ndarray, values: np.ndarray, factors) 
         Columns in C order over ``levels[1:]``.
     """
     dtype = values.dtype
-    flat, offsets, ranks = pack_factors(factors, dtype)
-    sizes = level_sizes(tree.levels, ranks)
+    flat, offsets, ranks, sizes = pack_factors(tree, factors, dtype)
     r_root = int(ranks[tree.root])
     n_chunks = tree.chunks.shape[0] - 1
     core_out = np.zeros((max(n_chunks, 1), r_root, int(sizes[0])), dtype=dtype)

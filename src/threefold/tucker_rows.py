@@ -24,7 +24,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-from threefold.tucker_kernels import FAST, FiberTree, level_sizes, pack_factors, run_kernel
+from threefold.tucker_kernels import FAST, FiberTree, chunk_roots, pack_factors, run_kernel
 
 __all__ = ["prefix_table", "evaluate", "implicit_rows", "TABLE_COMBOS"]
 
@@ -161,8 +161,7 @@ def evaluate(tree: FiberTree, coords: np.ndarray, core: np.ndarray, factors, sha
     -------
     ndarray of shape (nnz,), float64
     """
-    flat, offsets, ranks = pack_factors(factors, np.float64)
-    sizes = level_sizes(tree.levels, ranks)
+    flat, offsets, ranks, sizes = pack_factors(tree, factors, np.float64)
     table, table_sizes = prefix_table(tree, shape, core, factors)
     out = np.zeros(coords.shape[1])
     run_kernel(_evaluate_kernel, tree, coords, tree.perm, tree.breaks, tree.levels, flat, offsets, ranks, sizes,
@@ -196,17 +195,12 @@ def _rows_kernel(coords, preference, confidence, w0, perm, breaks, levels, flat,
     depth = table_sizes.shape[0]
     hoff, total = _hbuf_layout(levels, sizes, r_root, depth)
     for ch in prange(chunks.shape[0] - 1):
-        start = chunks[ch]
-        stop = chunks[ch + 1]
+        start, stop, first, last = chunk_roots(ch, chunks, coords, root, perm, edge_rows)
         hbuf = np.zeros(total, dtype=table.dtype)
         top = hbuf[:table.shape[1]]
         v = np.zeros(r_root, dtype=table.dtype)
         a_acc = np.zeros((r_root, r_root), dtype=base_matrix.dtype)
         b_acc = np.zeros(r_root, dtype=base_matrix.dtype)
-        first = coords[root, perm[start]]
-        last = coords[root, perm[stop - 1]]
-        edge_rows[ch, 0] = first
-        edge_rows[ch, 1] = last
         row = first
         for p in range(start, stop):
             cell = perm[p]
@@ -256,8 +250,7 @@ def implicit_rows(tree: FiberTree, coords: np.ndarray, preference: np.ndarray, c
     """
     root = tree.root
     r_root = core.shape[root]
-    flat, offsets, ranks = pack_factors(factors, np.float64)
-    sizes = level_sizes(tree.levels, ranks)
+    flat, offsets, ranks, sizes = pack_factors(tree, factors, np.float64)
     table, table_sizes = prefix_table(tree, shape, core, factors)
     base_matrix = np.ascontiguousarray(base_matrix, dtype=np.float64)
     out = np.zeros((shape[root], r_root))
