@@ -326,7 +326,7 @@ def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
                   "daypart_starts": [float(x) for x in p.daypart_starts], "daypart_labels": list(p.daypart_labels)},
         "weighting": {"alpha": 10.0, "w_skip": 2.0, "w0": 1.0},
         "split": {"cutoff": int(cutoff), "validation_window": "24h"},
-        "evaluation": {"ks": [3, 5, 10], "baseline": "popularity", "metrics": ["recall", "ndcg"],
+        "evaluation": {"ks": [3, 5, 10], "baseline": "popularity", "metrics": ["recall", "ndcg", "ndcg_true"],
                        "n_resamples": 200, "random_state": 0},
         "models": {
             "popularity": {"method": "popularity", "window": "24h"},

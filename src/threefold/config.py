@@ -129,7 +129,8 @@ def _timezone(key, value, owner):
 def _metric(key, value, owner):
     from threefold.evaluate import ACCURACY_METRICS
 
-    return check_choice(key, value, tuple(ACCURACY_METRICS), owner=owner)
+    # ndcg_true: NDCG against the true relevance, reported on simulated sites only
+    return check_choice(key, value, tuple(ACCURACY_METRICS) + ("ndcg_true",), owner=owner)
 
 
 _STR = _type(str, "a string")

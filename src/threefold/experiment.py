@@ -41,6 +41,7 @@ class Dataset:
     items: pd.DataFrame | None
     fingerprint: dict
     warnings: list = field(default_factory=list)
+    true_relevance: object = None  # f(requests, item_ids) on a simulated site, else None
 
 
 @dataclass(eq=False)
@@ -82,7 +83,25 @@ def load_dataset(config: ExperimentConfig) -> Dataset:
                              hash_user_ids_salt=data["hash_user_ids_salt"])
         items = load_items(data["items"], timezone=data["timezone"]) if data["items"] else None
     fingerprint = dataset_fingerprint({"events": data["events"], "items": data["items"]}, events, items)
-    return Dataset(events=events, items=items, fingerprint=fingerprint, warnings=[str(w.message) for w in caught])
+    return Dataset(events=events, items=items, fingerprint=fingerprint, warnings=[str(w.message) for w in caught],
+                   true_relevance=_simulated_truth(data["events"]))
+
+
+def _simulated_truth(events_path: str):
+    """The ground-truth relevance of a site written by ``threefold simulate``, when the log is one.
+
+    A folder holding ``truth.json`` and ``truth.npz`` next to the events is a
+    simulated site; its true relevance then adds ``ndcg_true`` to the metrics.
+    """
+    from pathlib import Path
+
+    folder = Path(events_path).parent
+    if not ((folder / "truth.json").is_file() and (folder / "truth.npz").is_file()):
+        return None
+    from threefold.evaluate import simulator_relevance
+    from threefold.simulate import read_truth
+
+    return simulator_relevance(read_truth(folder))
 
 
 def prepare_stage(config: ExperimentConfig, dataset: Dataset, stage_name: str) -> StageData:
@@ -144,7 +163,7 @@ def fit_and_evaluate(config: ExperimentConfig, data: StageData, dataset: Dataset
         protocol=ev["protocol"], step=ev["step"], build_options=data.build_options, ks=ks,
         baseline=baseline if baseline in models and len(models) > 1 else None, n_resamples=ev["n_resamples"],
         random_state=ev["random_state"], propensity_clip=ev["propensity_clip"],
-        sensitivity_users=ev["sensitivity_users"])
+        sensitivity_users=ev["sensitivity_users"], true_relevance=dataset.true_relevance)
     from threefold.tracking import peak_memory_mb
 
     return FitOutcome(name=name, estimator=estimator, evaluation=evaluation, seconds=seconds,
