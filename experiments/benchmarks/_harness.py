@@ -12,13 +12,15 @@ import textwrap
 def run_child(code: str, timeout: float = 3600.0, env: dict | None = None) -> dict:
     """Run ``code`` in a fresh Python process; it must print one JSON object on its last line.
 
-    The child's peak resident memory (``ru_maxrss`` of the child, in bytes) is added as
-    ``peak_rss_bytes``. Returns the parsed dict, or ``{"error": ...}`` on failure or timeout.
+    The child's peak resident memory is added as ``peak_rss_bytes``: ``VmHWM`` of
+    ``/proc/self/status``, which belongs to the child's own address space. (``ru_maxrss``
+    would not do: on Linux it carries the parent's high-water mark across fork and exec.) Returns the parsed dict, or ``{"error": ...}`` on failure or timeout.
     """
     wrapped = textwrap.dedent(code) + textwrap.dedent("""
-        import resource as _r, json as _j
+        import json as _j
         _out = dict(RESULT)
-        _out["peak_rss_bytes"] = _r.getrusage(_r.RUSAGE_SELF).ru_maxrss * 1024
+        _hwm = [l for l in open("/proc/self/status") if l.startswith("VmHWM:")][0]
+        _out["peak_rss_bytes"] = int(_hwm.split()[1]) * 1024
         print(_j.dumps(_out))
     """)
     try:

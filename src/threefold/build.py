@@ -141,16 +141,19 @@ def mark_negatives(
             )
     if not has_request:
         return is_click, is_impression
-    request = pd.factorize(events["request_id"])[0].astype(np.int64)
-    item = (pd.factorize(events["item_id"])[0] if item_codes is None else item_codes).astype(np.int64)
-    key = request * (int(item.max(initial=0)) + 1) + item
-    clicked_keys = np.unique(key[is_click])
-    impression_clicked = is_impression & np.isin(key, clicked_keys)
+    request, request_labels = pd.factorize(events["request_id"])
+    item = pd.factorize(events["item_id"])[0] if item_codes is None else item_codes
+    key = request.astype(np.int64) * (int(item.max(initial=0)) + 1) + item
+    # a hash table of the clicked (request, item) keys only: no sort of the whole log
+    impression_clicked = is_impression & (pd.Index(np.unique(key[is_click])).get_indexer(key) >= 0)
+    del key
     if negatives == "all_exposures":
         return is_click, is_impression & ~impression_clicked
     position = pd.to_numeric(events["position"], errors="coerce").to_numpy(dtype=np.float64)
-    lowest_click = pd.Series(np.where(impression_clicked, position, -np.inf)).groupby(request).transform("max").to_numpy()
-    is_skip = is_impression & ~impression_clicked & (position < lowest_click)
+    lowest = np.full(len(request_labels) + 1, -np.inf)  # the last slot, for a missing request id, stays -inf
+    grouped = impression_clicked & (request >= 0)
+    np.maximum.at(lowest, request[grouped], position[grouped])
+    is_skip = is_impression & ~impression_clicked & (position < lowest[request])
     return is_click, is_skip
 
 
@@ -265,7 +268,11 @@ def build_tensor(
             keep &= encoded.codes >= 0
         codes.append(encoded.codes)
     shape = tuple(len(v) for v in vocabs)
-    coords = np.vstack([c[keep] for c in codes]).astype(np.int64)
+    flat = np.zeros(int(keep.sum()), dtype=np.int64)  # row-major cell key, built mode by mode
+    for row_codes, size in zip(codes, shape):
+        flat *= size
+        flat += row_codes[keep]
+    del codes, factorized
     is_click, is_skip = is_click[keep], is_skip[keep]
     timestamps = events["timestamp"].to_numpy(dtype=np.int64)[keep]
 
@@ -284,7 +291,6 @@ def build_tensor(
         raw = pd.to_numeric(events["dwell_seconds"], errors="coerce").to_numpy(dtype=np.float64)[keep]
         dwell = np.where(is_click & np.isfinite(raw) & (raw > 0), raw, 0.0)
 
-    flat = np.ravel_multi_index(tuple(coords), shape)
     cell_keys, cell_of_row = np.unique(flat, return_inverse=True)
     n_cells = cell_keys.size
     clicks = np.bincount(cell_of_row, weights=click_weight, minlength=n_cells)
