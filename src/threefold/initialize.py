@@ -116,7 +116,8 @@ def leading_left_vectors(tensor: SparseTensor, mode: int, k: int, rng: np.random
 
 
 def _svds_vectors(unfolding: sp.csr_matrix, k: int, rng: np.random.Generator) -> np.ndarray:
-    u, s, _ = svds(unfolding, k=k, random_state=int(rng.integers(2**31 - 1)))
+    # left vectors only: the right ones would be (prod of other sizes) × k, and are never used
+    u, s, _ = svds(unfolding, k=k, random_state=int(rng.integers(2**31 - 1)), return_singular_vectors="u")
     return u[:, np.argsort(-s, kind="stable")]
 
 
