@@ -45,8 +45,33 @@ class SweepRecord:
     seconds: float
 
 
+class FitSummary:
+    """Summary properties shared by every fitted result with a ``history`` of
+    :class:`SweepRecord` (sweep 0 being the initial state) and a ``stop_reason``."""
+
+    @property
+    def n_sweeps(self) -> int:
+        """Sweeps run (the initial state not counted)."""
+        return len(self.history) - 1
+
+    @property
+    def converged(self) -> bool:
+        """True when the relative loss change fell below ``tol``."""
+        return self.stop_reason == "converged"
+
+    @property
+    def loss(self) -> float:
+        """Final loss."""
+        return self.history[-1].loss
+
+    @property
+    def fit(self) -> float:
+        """Final relative fit (weighted for implicit models)."""
+        return self.history[-1].fit
+
+
 @dataclass(frozen=True, eq=False)
-class CPResult(Scorer):
+class CPResult(FitSummary, Scorer):
     """A fitted CP model: ``x̂ = Σ_r weights[r] · Π_n factors[n][i_n, r]``.
 
     Components are normalized (every column a mode owns has unit norm; the
@@ -128,26 +153,6 @@ class CPResult(Scorer):
     def rank(self) -> int:
         """Number of components."""
         return self.weights.shape[0]
-
-    @property
-    def n_sweeps(self) -> int:
-        """Sweeps run (the initial state not counted)."""
-        return len(self.history) - 1
-
-    @property
-    def converged(self) -> bool:
-        """True when the relative loss change fell below ``tol``."""
-        return self.stop_reason == "converged"
-
-    @property
-    def loss(self) -> float:
-        """Final loss."""
-        return self.history[-1].loss
-
-    @property
-    def fit(self) -> float:
-        """Final weighted relative fit."""
-        return self.history[-1].fit
 
     def unnormalized_factors(self) -> list[np.ndarray]:
         """The factors as fitted (columns times their norms), for warm starts and fold-in."""

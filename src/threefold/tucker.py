@@ -26,7 +26,7 @@ from typing import Callable, Sequence
 import numpy as np
 
 from threefold._checks import check_choice, check_int, check_number
-from threefold.cp_result import STOP_REASONS, SweepRecord, mode_position
+from threefold.cp_result import STOP_REASONS, FitSummary, SweepRecord, mode_position
 from threefold.exceptions import ConvergenceWarning
 from threefold.initialize import leading_left_vectors
 from threefold.scoring import Scorer, ScoreTerms, check_queries
@@ -44,7 +44,7 @@ __all__ = [
 
 
 @dataclass(frozen=True, eq=False)
-class TuckerResult(Scorer):
+class TuckerResult(FitSummary, Scorer):
     """A fitted Tucker model ``x̂ = G ×_1 F_1 ... ×_N F_N``; validated at construction.
 
     Unpacks like a tuple: ``core, factors = result``. Scores through the shared
@@ -114,26 +114,6 @@ class TuckerResult(Scorer):
     def rank(self) -> tuple[int, ...]:
         """Core shape ``(R_1, ..., R_N)``."""
         return tuple(self.core.shape)
-
-    @property
-    def n_sweeps(self) -> int:
-        """Sweeps run (the initial state not counted)."""
-        return len(self.history) - 1
-
-    @property
-    def converged(self) -> bool:
-        """True when the relative loss change fell below ``tol``."""
-        return self.stop_reason == "converged"
-
-    @property
-    def loss(self) -> float:
-        """Final loss."""
-        return self.history[-1].loss
-
-    @property
-    def fit(self) -> float:
-        """Final relative fit."""
-        return self.history[-1].fit
 
     def to_dense(self, max_cells: int = 50_000_000) -> np.ndarray:
         """Dense reconstruction ``G ×_1 F_1 ... ×_N F_N``, float64 (small shapes only)."""
