@@ -1,0 +1,59 @@
+"""The `threefold` command end to end, in real processes (invented data only)."""
+
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+
+def run(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "threefold.cli", *args], capture_output=True, text=True, cwd=cwd)
+
+
+def test_validate_exits_zero_on_a_clean_log_and_one_on_errors(tmp_path):
+    good = tmp_path / "good.csv"
+    pd.DataFrame({"user_id": ["007", "010"], "item_id": ["a1", "a2"],
+                  "timestamp": ["2026-03-02T07:15:03+00:00", "2026-03-02T07:16:03+00:00"]}).to_csv(good, index=False)
+    result = run("validate", str(good))
+    assert result.returncode == 0, result.stderr
+    bad = tmp_path / "bad.csv"
+    bad.write_text("user_id,item_id,timestamp\n007,a1,2026-03-02T07:15:03+00:00\n,a2,yesterday\n")
+    result = run("validate", str(bad))
+    assert result.returncode == 1
+    assert "user_id" in result.stdout and "timestamp" in result.stdout
+
+
+def test_missing_file_is_a_clear_error(tmp_path):
+    result = run("validate", str(tmp_path / "nowhere.csv"))
+    assert result.returncode == 1
+    assert "threefold validate: error:" in result.stderr
+
+
+def test_simulate_then_build_saves_a_loadable_tensor(tmp_path):
+    assert run("simulate", str(tmp_path / "site"), "--events", "3000", "--seed", "4").returncode == 0
+    result = run("build", str(tmp_path / "site" / "events.parquet"), str(tmp_path / "tensor"),
+                 "--context", "daypart", "--context", "device*page_tone", "--timezone", "Europe/Berlin", "--w-skip", "3")
+    assert result.returncode == 0, result.stderr
+    assert "device*page_tone" in result.stdout
+    from threefold.tensor_io import load_tensor
+
+    tensor = load_tensor(tmp_path / "tensor")
+    assert tensor.mode_names == ("user", "item", "daypart", "device*page_tone")
+    assert tensor.weighting.w_skip == 3.0
+
+
+@pytest.mark.parametrize("flag", ["--alpha=-1"])
+def test_bad_parameter_values_are_refused_with_the_parameter_name(tmp_path, flag):
+    assert run("simulate", str(tmp_path / "site"), "--events", "2000").returncode == 0
+    result = run("build", str(tmp_path / "site" / "events.parquet"), str(tmp_path / "t"), flag)
+    assert result.returncode == 1
+    assert "The 'alpha' parameter of FeedbackWeighting must be a float in the range [0, inf)" in result.stderr
+
+
+def test_demo_runs_end_to_end(tmp_path):
+    result = run("demo", "--out", str(tmp_path / "demo"), "--events", "20000")
+    assert result.returncode == 0, result.stderr[-2000:]
+    for step in ("== 1.", "== 2.", "== 3.", "== 4."):
+        assert step in result.stdout
+    assert "models:/" in result.stdout  # logged models any MLflow client can load
