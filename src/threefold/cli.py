@@ -346,6 +346,11 @@ def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``threefold`` console command."""
     args = _parser().parse_args(argv)
+    import os
+
+    # MLflow's schema-creation chatter is not for our users; its warnings and errors still show
+    # (MLflow's own setting, read when MLflow is imported; a user's explicit choice wins).
+    os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
     handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
                 "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs}
     try:
