@@ -34,7 +34,7 @@ from threefold._checks import check_choice, check_int, check_number
 from threefold.cp_result import CPResult, SweepRecord, mode_position
 from threefold.exceptions import ConvergenceWarning
 from threefold.initialize import initial_factors
-from threefold.scoring import Scorer, ScoreTerms
+from threefold.scoring import FittedScorer
 from threefold.structure import Structure, resolve_structure
 from threefold.tensor import SparseTensor
 
@@ -281,7 +281,7 @@ def fold_in(result: CPResult, tensor: SparseTensor, mode: int | str, *, n_thread
 
 
 # ---------------------------------------------------------------------- estimator
-class CPModel(Scorer):
+class CPModel(FittedScorer):
     """Estimator around :func:`fit_cp`; parameters as there, fitted state ending in ``_``.
 
     Attributes
@@ -331,24 +331,6 @@ class CPModel(Scorer):
         self.converged_ = result.converged
         return self
 
-    def _fitted(self) -> CPResult:
-        if not hasattr(self, "result_"):
-            raise RuntimeError("This CPModel is not fitted yet; call fit(tensor) first.")
-        return self.result_
-
     def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
         """Rows for new users, items or context levels; see :func:`fold_in`."""
         return fold_in(self._fitted(), tensor, mode, n_threads=self.n_threads)
-
-    @property
-    def shape(self) -> tuple[int, ...]:
-        return self._fitted().shape
-
-    def query_matrix(self, users, contexts=None) -> np.ndarray:
-        return self._fitted().query_matrix(users, contexts)
-
-    def item_matrix(self) -> np.ndarray:
-        return self._fitted().item_matrix()
-
-    def score_terms(self, user, context, item) -> ScoreTerms:
-        return self._fitted().score_terms(user, context, item)

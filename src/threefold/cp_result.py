@@ -19,7 +19,7 @@ from threefold.scoring import Scorer, ScoreTerms, check_queries
 from threefold.structure import Structure
 from threefold.vocabulary import Vocabulary
 
-__all__ = ["SweepRecord", "CPResult", "STOP_REASONS", "mode_position"]
+__all__ = ["SweepRecord", "CPResult", "FactorResultMixin", "STOP_REASONS", "mode_position"]
 
 STOP_REASONS = ("converged", "max_sweeps", "callback")
 
@@ -45,9 +45,31 @@ class SweepRecord:
     seconds: float
 
 
-class FitSummary:
-    """Summary properties shared by every fitted result with a ``history`` of
-    :class:`SweepRecord` (sweep 0 being the initial state) and a ``stop_reason``."""
+class FactorResultMixin:
+    """What CP and Tucker results share: the fit summary of a ``history`` of
+    :class:`SweepRecord` (sweep 0 being the initial state) with a ``stop_reason``,
+    and growing a mode's ``factors`` and ``vocabularies`` (a frozen dataclass)."""
+
+    def with_rows(self, mode: int | str, rows: np.ndarray, labels: Sequence[str] | None = None):
+        """The model with rows appended to one mode (e.g. folded-in newcomers).
+
+        Parameters
+        ----------
+        mode : int or str
+        rows : ndarray of shape (n_new, n_columns of that mode's factor)
+            As returned by the model's fold-in.
+        labels : sequence of str, optional
+            Their labels; required when the mode has a vocabulary.
+        """
+        n = mode_position(self.mode_names, mode)
+        factors = list(self.factors)
+        factors[n] = np.concatenate([factors[n], np.asarray(rows, dtype=factors[n].dtype)], axis=0)
+        vocabularies = list(self.vocabularies)
+        if vocabularies[n] is not None:
+            if labels is None or len(labels) != len(rows):
+                raise ValueError(f"Mode {self.mode_names[n]!r} has a vocabulary: give one label per new row.")
+            vocabularies[n] = Vocabulary(vocabularies[n].labels + tuple(labels), name=vocabularies[n].name)
+        return replace(self, factors=tuple(factors), vocabularies=tuple(vocabularies))
 
     @property
     def n_sweeps(self) -> int:
@@ -71,7 +93,7 @@ class FitSummary:
 
 
 @dataclass(frozen=True, eq=False)
-class CPResult(FitSummary, Scorer):
+class CPResult(FactorResultMixin, Scorer):
     """A fitted CP model: ``x̂ = Σ_r weights[r] · Π_n factors[n][i_n, r]``.
 
     Components are normalized (every column a mode owns has unit norm; the
@@ -204,28 +226,6 @@ class CPResult(FitSummary, Scorer):
         if not 0 <= item < self.shape[1]:
             raise IndexError(f"item index must lie in [0, {self.shape[1]}), got {item}.")
         return ScoreTerms(labels=self.structure.component_labels(), values=q * self.factors[1][item])
-
-    def with_rows(self, mode: int | str, rows: np.ndarray, labels: Sequence[str] | None = None) -> "CPResult":
-        """The model with rows appended to one mode (e.g. folded-in newcomers).
-
-        Parameters
-        ----------
-        mode : int or str
-        rows : ndarray of shape (n_new, R)
-            As returned by :func:`fold_in`.
-        labels : sequence of str, optional
-            Their labels; required when the mode has a vocabulary.
-        """
-        n = mode_position(self.mode_names, mode)
-        factors = list(self.factors)
-        factors[n] = np.concatenate([factors[n], np.asarray(rows, dtype=factors[n].dtype)], axis=0)
-        vocabularies = list(self.vocabularies)
-        if vocabularies[n] is not None:
-            if labels is None or len(labels) != len(rows):
-                raise ValueError(f"Mode {self.mode_names[n]!r} has a vocabulary: give one label per new row.")
-            vocabularies[n] = Vocabulary(vocabularies[n].labels + tuple(labels), name=vocabularies[n].name)
-        return replace(self, factors=tuple(factors), vocabularies=tuple(vocabularies))
-
 
 def mode_position(mode_names: Sequence[str], mode: int | str) -> int:
     """Position of a mode given by name or (possibly negative) position."""

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Scorer", "ScoreTerms", "check_queries"]
+__all__ = ["Scorer", "FittedScorer", "ScoreTerms", "check_queries"]
 
 
 @dataclass(frozen=True)
@@ -135,3 +135,32 @@ class Scorer(ABC):
         if b is not None:
             out += b
         return out
+
+
+class FittedScorer(Scorer):
+    """An estimator that scores through its fitted result ``result_`` (itself a :class:`Scorer`).
+
+    Estimators (``CPModel``, the Tucker estimators) set ``result_`` in ``fit``;
+    every scoring call before that raises a clear error.
+    """
+
+    def _fitted(self) -> Scorer:
+        if not hasattr(self, "result_"):
+            raise RuntimeError(f"This {type(self).__name__} is not fitted yet; call fit(tensor) first.")
+        return self.result_
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return self._fitted().shape
+
+    def query_matrix(self, users, contexts=None) -> np.ndarray:
+        return self._fitted().query_matrix(users, contexts)
+
+    def item_matrix(self) -> np.ndarray:
+        return self._fitted().item_matrix()
+
+    def item_bias(self) -> np.ndarray | None:
+        return self._fitted().item_bias()
+
+    def score_terms(self, user, context, item) -> ScoreTerms:
+        return self._fitted().score_terms(user, context, item)

@@ -20,16 +20,16 @@ from __future__ import annotations
 import inspect
 import time
 import warnings
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Callable, Sequence
 
 import numpy as np
 
 from threefold._checks import check_choice, check_int, check_number
-from threefold.cp_result import STOP_REASONS, FitSummary, SweepRecord, mode_position
+from threefold.cp_result import STOP_REASONS, FactorResultMixin, SweepRecord, mode_position
 from threefold.exceptions import ConvergenceWarning
 from threefold.initialize import leading_left_vectors
-from threefold.scoring import Scorer, ScoreTerms, check_queries
+from threefold.scoring import FittedScorer, Scorer, ScoreTerms, check_queries
 from threefold.tensor import SparseTensor
 from threefold.vocabulary import Vocabulary
 
@@ -44,7 +44,7 @@ __all__ = [
 
 
 @dataclass(frozen=True, eq=False)
-class TuckerResult(FitSummary, Scorer):
+class TuckerResult(FactorResultMixin, Scorer):
     """A fitted Tucker model ``x̂ = G ×_1 F_1 ... ×_N F_N``; validated at construction.
 
     Unpacks like a tuple: ``core, factors = result``. Scores through the shared
@@ -164,27 +164,6 @@ class TuckerResult(FitSummary, Scorer):
         labels = tuple(f"core {idx}" for idx in np.ndindex(*self.core.shape))
         return ScoreTerms(labels=labels, values=values.ravel())
 
-    def with_rows(self, mode: int | str, rows: np.ndarray, labels: Sequence[str] | None = None) -> "TuckerResult":
-        """The model with rows appended to one mode (e.g. folded-in newcomers).
-
-        Parameters
-        ----------
-        mode : int or str
-        rows : ndarray of shape (n_new, R_mode)
-        labels : sequence of str, optional
-            Their labels; required when the mode has a vocabulary.
-        """
-        n = mode_position(self.mode_names, mode)
-        factors = list(self.factors)
-        factors[n] = np.concatenate([factors[n], np.asarray(rows, dtype=factors[n].dtype)], axis=0)
-        vocabularies = list(self.vocabularies)
-        if vocabularies[n] is not None:
-            if labels is None or len(labels) != len(rows):
-                raise ValueError(f"Mode {self.mode_names[n]!r} has a vocabulary: give one label per new row.")
-            vocabularies[n] = Vocabulary(vocabularies[n].labels + tuple(labels), name=vocabularies[n].name)
-        return replace(self, factors=tuple(factors), vocabularies=tuple(vocabularies))
-
-
 def check_fold_in(result: TuckerResult, tensor: SparseTensor, mode: int | str) -> int:
     """Check a fold-in tensor against a model: same modes, same sizes but in ``mode``."""
     n = mode_position(result.mode_names, mode)
@@ -259,7 +238,7 @@ def core_slice(result: TuckerResult, levels: dict[int, int]) -> np.ndarray:
     return out
 
 
-class TuckerEstimator(Scorer):
+class TuckerEstimator(FittedScorer):
     """Shared plumbing of the Tucker estimators: parameters, fit, fitted state, scoring by delegation.
 
     A subclass names its fit function in ``_fit_function``; its ``__init__``
@@ -293,24 +272,6 @@ class TuckerEstimator(Scorer):
         self.n_sweeps_ = result.n_sweeps
         self.converged_ = result.converged
         return self
-
-    def _fitted(self) -> TuckerResult:
-        if not hasattr(self, "result_"):
-            raise RuntimeError(f"This {type(self).__name__} is not fitted yet; call fit(tensor) first.")
-        return self.result_
-
-    @property
-    def shape(self) -> tuple[int, ...]:
-        return self._fitted().shape
-
-    def query_matrix(self, users, contexts=None) -> np.ndarray:
-        return self._fitted().query_matrix(users, contexts)
-
-    def item_matrix(self) -> np.ndarray:
-        return self._fitted().item_matrix()
-
-    def score_terms(self, user, context, item) -> ScoreTerms:
-        return self._fitted().score_terms(user, context, item)
 
 
 def check_tucker_rank(rank: int | Sequence[int], shape: tuple[int, ...], owner: str) -> tuple[int, ...]:
