@@ -212,11 +212,16 @@ def _contexts(names: Sequence[str], timezone: str, starts: str | None, labels: s
     return [parse_context(n, timezone=timezone, daypart_starts=day_starts, daypart_labels=day_labels) for n in names]
 
 
-def build_from_log(events_path, contexts, weighting, *, negatives, timezone, salt=None, position_propensity=False):
+def build_from_log(events_path, contexts, weighting, *, negatives, timezone, items=None, salt=None,
+                   position_propensity=False):
     """Validate and load a log in one pass, estimate position propensities, build its tensor.
 
-    Shared by ``build`` and ``demo``. Rows the validation counts as bad are dropped
-    and counted; errors are printed as warnings, since the tensor never sees those rows.
+    Shared by ``build`` and ``demo``: the log is read once. Rows the validation
+    counts as bad are dropped and counted, so the tensor never sees them.
+
+    Returns
+    -------
+    tensor, build report, position propensity (or None), validation report
     """
     from threefold.build import build_tensor
     from threefold.propensity import PROPENSITY_COLUMNS, estimate_position_propensity
@@ -224,7 +229,8 @@ def build_from_log(events_path, contexts, weighting, *, negatives, timezone, sal
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        events, validation = load_validated_events(events_path, timezone=timezone, hash_user_ids_salt=salt)
+        events, validation = load_validated_events(events_path, items=items, timezone=timezone,
+                                                   hash_user_ids_salt=salt)
         propensity = None
         if set(PROPENSITY_COLUMNS) <= set(events.columns):
             propensity = estimate_position_propensity(events)
@@ -234,11 +240,8 @@ def build_from_log(events_path, contexts, weighting, *, negatives, timezone, sal
             events, contexts, weighting=weighting, negatives=negatives,
             click_propensity=propensity.ratios if position_propensity else None,
         )
-    for problem in validation.problems:
-        print(f"warning: {problem.severity} in column {problem.column!r}: {problem.count:,} row(s) "
-              f"({problem.code}); see `threefold validate`", file=sys.stderr)
     _print_warnings(caught)
-    return events, tensor, report, propensity
+    return tensor, report, propensity, validation
 
 
 def _print_tensor_summary(tensor, report, propensity) -> None:
@@ -256,10 +259,13 @@ def cmd_build(args: argparse.Namespace) -> int:
     from threefold.tensor_io import save_tensor
 
     contexts = _contexts(args.context, args.timezone or "UTC", args.daypart_starts, args.daypart_labels)
-    _, tensor, report, propensity = build_from_log(
+    tensor, report, propensity, validation = build_from_log(
         args.events, contexts, _weighting(args), negatives=args.negatives, timezone=args.timezone,
         salt=args.hash_user_ids_salt, position_propensity=args.position_propensity,
     )
+    for problem in validation.problems:
+        print(f"warning: {problem.severity} in column {problem.column!r}: {problem.count:,} row(s) "
+              f"({problem.code}); see `threefold validate`", file=sys.stderr)
     folder = save_tensor(tensor, args.out, extra={"build_report": report.to_dict(),
                                                   "propensity": None if propensity is None else propensity.to_dict()})
     _print_tensor_summary(tensor, report, propensity)
@@ -275,7 +281,6 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from threefold.experiment import summary_text, train
     from threefold.store import open_store
     from threefold.tensor_io import save_tensor
-    from threefold.validate import validate_events
 
     out = Path(args.out)
     print(f"== 1. simulate an invented site ({args.n_events:,} log rows, seed {args.seed})")
@@ -283,18 +288,18 @@ def cmd_demo(args: argparse.Namespace) -> int:
     log_dir = write_site(site, out / "site")
     print(f"   {site.params.site_name}: {site.params.n_users:,} users, {len(site.items):,} items -> {log_dir}")
 
-    print("== 2. validate the log against the data contract")
-    report = validate_events(log_dir / "events.parquet", items=log_dir / "items.parquet")
-    print("   " + report.to_text().replace("\n", "\n   "))
-    if not report.ok:
-        return 1
-
-    print("== 3. build the exposure-aware user x item x context tensor")
+    print("== 2. validate the log against the data contract (read once, for steps 2 and 3)")
     p = site.params
     contexts = [Daypart(timezone=p.timezone, starts=tuple(float(s) for s in p.daypart_starts), labels=p.daypart_labels),
                 ColumnContext("device"), ColumnContext("page_tone")]
-    _, tensor, build_report, propensity = build_from_log(
-        log_dir / "events.parquet", contexts, FeedbackWeighting(), negatives="skip_above", timezone=p.timezone)
+    tensor, build_report, propensity, validation = build_from_log(
+        log_dir / "events.parquet", contexts, FeedbackWeighting(), negatives="skip_above", timezone=p.timezone,
+        items=log_dir / "items.parquet")
+    print("   " + validation.to_text().replace("\n", "\n   "))
+    if not validation.ok:
+        return 1
+
+    print("== 3. build the exposure-aware user x item x context tensor")
     _print_tensor_summary(tensor, build_report, propensity)
     planted = ", ".join(f"{r:.2f}" for r in site.examination / site.examination[0])
     print(f"  planted examination (the simulator's truth):            {planted}")
