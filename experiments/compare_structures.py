@@ -13,10 +13,10 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from threefold.config import load_config, to_toml
-from threefold.experiment import train
-from threefold.simulate import simulate_site, write_site
-from threefold.store import open_store
+from threefold.pipeline.config import load_config, to_toml
+from threefold.pipeline.experiment import train
+from threefold.demo.simulate import simulate_site, write_site
+from threefold.tracking.store import open_store
 
 STRUCTURES = {
     "mf (user*item)": "user*item",

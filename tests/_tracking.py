@@ -75,9 +75,9 @@ def tiny_events(seed: int = 0, n: int = 400) -> pd.DataFrame:
 
 def tiny_cp(seed: int = 0, dtype=np.float64, structure: str = "user*item:2 + item*device:1"):
     """A CP model fitted on :func:`tiny_events` (contexts daypart and device) and its specifications."""
-    from threefold.build import build_tensor
-    from threefold.context import parse_context
-    from threefold.cp import fit_cp
+    from threefold.data.build import build_tensor
+    from threefold.data.context import parse_context
+    from threefold.models.cp.model import fit_cp
 
     specs = [parse_context("daypart"), parse_context("device")]
     tensor, _ = build_tensor(tiny_events(seed), specs, negatives="none", dtype=dtype)

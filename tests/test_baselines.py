@@ -4,11 +4,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from threefold.baselines import PopularityBaseline, RandomBaseline, context_free_mf, hash_uniform, window_counts
-from threefold.context import ColumnContext
-from threefold.cp import CPModel
-from threefold.queries import build_queries
-from threefold.vocabulary import Vocabulary
+from threefold.models.baselines import PopularityBaseline, RandomBaseline, context_free_mf, hash_uniform, window_counts
+from threefold.data.context import ColumnContext
+from threefold.models.cp.model import CPModel
+from threefold.evaluation.queries import build_queries
+from threefold.core.vocabulary import Vocabulary
 
 T0 = 1_770_000_000
 

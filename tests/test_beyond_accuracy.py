@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 
-from threefold.beyond_accuracy import (
+from threefold.evaluation.beyond_accuracy import (
     catalog_coverage,
     context_sensitivity,
     exposure_counts,
@@ -17,7 +17,7 @@ from threefold.beyond_accuracy import (
     temporal_diversity,
     top_k_kendall_distance,
 )
-from threefold.mmr import mmr_rerank
+from threefold.ranking.mmr import mmr_rerank
 
 
 def random_lists(rng, q, k, n_items, empty=0.0):

@@ -12,10 +12,10 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_array_equal
 
-from threefold.build import build_tensor
-from threefold.bundle import BundleError, bundle_versions, read_bundle, write_bundle
-from threefold.context import ColumnContext
-from threefold.tensor_io import load_tensor, save_tensor
+from threefold.data.build import build_tensor
+from threefold.core.bundle import BundleError, bundle_versions, read_bundle, write_bundle
+from threefold.data.context import ColumnContext
+from threefold.core.tensor_io import load_tensor, save_tensor
 
 
 def small_tensor():
@@ -91,7 +91,7 @@ def test_a_save_killed_midway_leaves_the_previous_version_loadable(tmp_path):
     write_bundle(tmp_path / "b", "demo", {"k": "old"}, {"x": np.zeros(5)})
     script = textwrap.dedent(f"""
         import os, numpy as np
-        import threefold.bundle as b
+        import threefold.core.bundle as b
         real = b._fsync_dir
         calls = []
         def dying(path):

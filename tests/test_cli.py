@@ -36,7 +36,7 @@ def test_simulate_then_build_saves_a_loadable_tensor(tmp_path):
                  "--context", "daypart", "--context", "device*page_tone", "--timezone", "Europe/Berlin", "--w-skip", "3")
     assert result.returncode == 0, result.stderr
     assert "device*page_tone" in result.stdout
-    from threefold.tensor_io import load_tensor
+    from threefold.core.tensor_io import load_tensor
 
     tensor = load_tensor(tmp_path / "tensor")
     assert tensor.mode_names == ("user", "item", "daypart", "device*page_tone")

@@ -6,10 +6,11 @@ import tomllib
 
 import pytest
 
-from threefold.config import (
-    MODEL_METHODS, ConfigError, estimator_class, load_config, model_defaults, parse_config, parse_overrides,
+from threefold.models.registry import MODELS, model_class
+from threefold.pipeline.config import (
+    ConfigError, load_config, model_defaults, parse_config, parse_overrides,
 )
-from threefold.feedback import FeedbackWeighting
+from threefold.core.feedback import FeedbackWeighting
 
 from _tracking import ROOT, SMALL_CONFIG, write_config
 
@@ -38,18 +39,18 @@ def test_defaults_are_filled_from_the_python_api(small):
 
 
 def test_model_keys_are_exactly_the_estimator_parameters():
-    for method in MODEL_METHODS:
-        signature = inspect.signature(estimator_class(method).__init__)
+    for method in MODELS:
+        signature = inspect.signature(model_class(method))
         expected = {name for name in signature.parameters if name not in ("self", "callback")}
         assert set(model_defaults(method)) == expected, method
 
 
 def test_section_keys_are_parameter_names_of_the_api():
-    from threefold.build import build_tensor
-    from threefold.context import parse_context
-    from threefold.evaluate import evaluate, evaluate_stage
-    from threefold.events import load_events
-    from threefold.splits import temporal_split
+    from threefold.data.build import build_tensor
+    from threefold.data.context import parse_context
+    from threefold.evaluation.harness import EvaluationOptions
+    from threefold.data.events import load_events
+    from threefold.evaluation.splits import temporal_split
 
     config = load_config(EXAMPLE)
     assert set(config["weighting"]) == {f.name for f in dataclasses.fields(FeedbackWeighting)}
@@ -59,8 +60,13 @@ def test_section_keys_are_parameter_names_of_the_api():
     assert set(config["build"]) - build_api == {"position_propensity"}
     data_api = set(inspect.signature(load_events).parameters)
     assert set(config["data"]) - data_api == {"events", "items"}  # the files, named as on the command line
-    evaluation_api = set(inspect.signature(evaluate_stage).parameters) | set(inspect.signature(evaluate).parameters)
+    evaluation_api = {f.name for f in dataclasses.fields(EvaluationOptions)}
     assert set(config["evaluation"]) - evaluation_api == {"metrics"}  # which metrics summaries show
+    defaults = EvaluationOptions()  # one place for the defaults: a config that sets nothing gets them
+    filled = parse_config({"data": {"events": "e.csv"}, "split": {"cutoff": 0}, "models": {"m": {"method": "random"}}})
+    for key in set(config["evaluation"]) - {"metrics"}:
+        expected = getattr(defaults, key)
+        assert filled["evaluation"][key] == (list(expected) if isinstance(expected, tuple) else expected), key
 
 
 def test_unknown_key_is_rejected_with_the_closest_valid_name(small):

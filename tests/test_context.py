@@ -6,7 +6,7 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_array_equal
 
-from threefold.context import ColumnContext, CrossedContext, Daypart, WeekPart, context_levels, derive_contexts, parse_context
+from threefold.data.context import ColumnContext, CrossedContext, Daypart, WeekPart, context_levels, derive_contexts, parse_context
 
 
 def epoch(text: str) -> int:

@@ -13,13 +13,13 @@ from tensorly.cp_tensor import CPTensor
 from tensorly.datasets import load_kinetic
 from tensorly.decomposition import parafac
 
-from threefold.cp import CPModel, CPResult, fit_cp, fold_in
-from threefold.diagnostics import factor_match_score
-from threefold.exceptions import ConvergenceWarning
-from threefold.feedback import CellEvidence, FeedbackWeighting
-from threefold.initialize import SMALL_MODE, leading_left_vectors
-from threefold.tensor import SparseTensor
-from threefold.vocabulary import Vocabulary
+from threefold.models.cp.model import CPModel, CPResult, fit_cp, fold_in
+from threefold.models.diagnostics import factor_match_score
+from threefold.core.exceptions import ConvergenceWarning
+from threefold.core.feedback import CellEvidence, FeedbackWeighting
+from threefold.models.initialize import SMALL_MODE, leading_left_vectors
+from threefold.core.tensor import SparseTensor
+from threefold.core.vocabulary import Vocabulary
 
 MODES = ("user", "item", "daypart")
 

@@ -5,7 +5,7 @@ import pytest
 import scipy.stats
 from numpy.testing import assert_allclose
 
-from threefold.estimators import bootstrap_interval, click_estimates, paired_comparison
+from threefold.evaluation.click_estimates import bootstrap_interval, click_estimates, paired_comparison
 
 
 # ---------------------------------------------------------------- IPS / SNIPS

@@ -6,18 +6,21 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from threefold.baselines import PopularityBaseline, RandomBaseline, context_free_mf
-from threefold.build import build_tensor
-from threefold.context import ColumnContext, Daypart
-from threefold.cp import CPModel, fold_in
-from threefold.estimators import paired_comparison
-from threefold.evaluate import ScorerRanker, evaluate, evaluate_stage, select_best, simulator_relevance
-from threefold.metrics import ranking_metrics
-from threefold.queries import build_queries
-from threefold.rolling import rolling_schedule
-from threefold.simulate import ScenarioParameters, simulate_site, true_relevance, daypart_of
-from threefold.splits import temporal_split
-from threefold.vocabulary import Vocabulary
+from threefold.models.baselines import PopularityBaseline, RandomBaseline, context_free_mf
+from threefold.data.build import build_tensor
+from threefold.data.context import ColumnContext, Daypart
+from threefold.models.cp.model import CPModel, fold_in
+from threefold.evaluation.click_estimates import paired_comparison
+from threefold.demo.simulate import simulator_relevance
+from threefold.evaluation.harness import evaluate, evaluate_stage, select_best
+from threefold.core.scoring import Ranker
+from threefold.evaluation.rankers import ScorerRanker
+from threefold.evaluation.metrics import ranking_metrics
+from threefold.evaluation.queries import build_queries
+from threefold.evaluation.rolling import rolling_schedule
+from threefold.demo.simulate import ScenarioParameters, simulate_site, true_relevance, daypart_of
+from threefold.evaluation.splits import temporal_split
+from threefold.core.vocabulary import Vocabulary
 
 DAY = 86_400
 
@@ -42,7 +45,7 @@ def world():
             "queries": queries}
 
 
-class _ConstantRanker:
+class _ConstantRanker(Ranker):
     """Gives every item the same score (a ranker with no information)."""
 
     def bind(self, queries):
@@ -50,7 +53,7 @@ class _ConstantRanker:
                                                   queries.n_items if items is None else len(items)))
 
 
-class _HidesItems:
+class _HidesItems(Ranker):
     """Gives -inf to every item but the first: it does not rank all the candidates."""
 
     def bind(self, queries):
@@ -85,19 +88,28 @@ def test_ties_are_broken_by_item_index(world):
     assert queries.items.labels[:len(world["tensor"].vocabularies[1])] == world["tensor"].vocabularies[1].labels
 
 
-def test_scorer_ranker_scores_like_the_model_and_zero_for_strangers(world):
+def test_scorer_ranker_scores_like_the_model_and_by_the_shared_rule_for_strangers(world):
+    """Known ids score as the model does; unknown items get the zero row, unknown users the mean trained user row
+    (the rule of threefold.core.resolve, the same as serving's)."""
     cp, queries, tensor = world["cp"], world["queries"], world["tensor"]
     bound = ScorerRanker(cp).bind(queries)
     scores = bound(np.arange(len(queries)))
     users = tensor.vocabularies[0].encode(queries.users, policy="drop").codes
     items = tensor.vocabularies[1].encode(np.asarray(queries.items.labels, dtype=object), policy="drop").codes
     contexts = np.column_stack([v.encode(queries.contexts[v.name], policy="unknown").codes for v in tensor.vocabularies[2:]])
-    known = np.flatnonzero(users >= 0)
+    user_factor = cp.result_.factors[0]
+    trained = np.any(user_factor != 0, axis=1)  # a user with no training cells has a zero row: unknown too
+    known = np.flatnonzero((users >= 0) & trained[np.maximum(users, 0)])
     assert known.size and known.size < len(queries) and (items < 0).any()
     expected = cp.score(users[known], contexts[known], items[items >= 0])
     np.testing.assert_allclose(scores[np.ix_(known, np.flatnonzero(items >= 0))], expected, rtol=1e-5, atol=1e-6)
     np.testing.assert_array_equal(scores[:, items < 0], 0.0)
-    np.testing.assert_array_equal(scores[users < 0], 0.0)
+    mean_user = user_factor[trained].mean(axis=0, keepdims=True)
+    with_mean = cp.result_.with_rows(0, mean_user, labels=["<mean user>"])
+    strangers = np.setdiff1d(np.arange(len(queries)), known)
+    assert strangers.size
+    expected = with_mean.score(np.full(strangers.size, cp.shape[0]), contexts[strangers], items[items >= 0])
+    np.testing.assert_allclose(scores[np.ix_(strangers, np.flatnonzero(items >= 0))], expected, rtol=1e-5, atol=1e-6)
 
 
 def test_table_matches_slow_references(world):
@@ -155,8 +167,8 @@ def test_rolling_folds_in_newcomers_from_events_before_each_step_only(world):
     stage, queries, cp, contexts = world["stage"], world["queries"], world["cp"], world["contexts"]
     schedule, report = rolling_schedule(stage, queries, {"cp": cp}, contexts, step="2h")
     assert report["steps"] == len(schedule) > 1 and report["folded_items"] > 0
-    rows, rankers = next((r, m) for r, m in schedule[1:] if m["cp"].scorer is not cp)
-    refreshed = rankers["cp"].scorer
+    rows, rankers = next((r, m) for r, m in schedule[1:] if m["cp"] is not cp)
+    refreshed = rankers["cp"]
     new_items = [label for label in refreshed.vocabularies[1].labels if label not in cp.result_.vocabularies[1]]
     step_start = stage.start + (queries.times[rows[0]] - stage.start) // 7200 * 7200
     before = stage.evaluate[stage.evaluate["timestamp"] < step_start]
@@ -209,7 +221,7 @@ def test_harness_input_errors(world):
         evaluate({"cp": world["cp"]}, queries, schedule=[(np.arange(3), {"cp": world["cp"]})])
     with pytest.raises(ValueError, match="The query set is empty"):
         evaluate({"cp": world["cp"]}, queries.take(np.arange(0)))
-    with pytest.raises(TypeError, match="give a fitted Scorer or a baseline"):
+    with pytest.raises(TypeError, match="give a fitted threefold model"):
         evaluate({"x": object()}, queries)
     with pytest.raises(ValueError, match="candidates='shown' needs impressions"):
         build_queries(world["stage"].evaluate.drop(columns="request_id"), candidates="shown")

@@ -1,4 +1,4 @@
-"""Reading and normalizing event logs (threefold.events); invented data throughout."""
+"""Reading and normalizing event logs (threefold.data.events); invented data throughout."""
 
 from __future__ import annotations
 
@@ -14,8 +14,8 @@ import pyarrow.parquet as pq
 import pytest
 from numpy.testing import assert_array_equal
 
-from threefold._timestamps import parse_timestamps
-from threefold.events import (
+from threefold.data.timestamps import parse_timestamps
+from threefold.data.events import (
     EventLogWarning, activity_outlier_threshold, iter_event_chunks, load_events, load_items, pseudonymize_ids,
 )
 

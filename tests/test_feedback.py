@@ -8,9 +8,9 @@ import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 
 from threefold import FeedbackWeighting
-from threefold.build import build_tensor, mark_negatives, select_window
-from threefold.context import ColumnContext
-from threefold.feedback import CellEvidence, cell_weights
+from threefold.data.build import build_tensor, mark_negatives, select_window
+from threefold.data.context import ColumnContext
+from threefold.core.feedback import CellEvidence, cell_weights
 
 HOUR = 3600
 

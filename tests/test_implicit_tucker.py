@@ -9,8 +9,9 @@ import tensorly as tl
 from numpy.testing import assert_allclose
 
 from threefold import SparseTensor
-from threefold import tucker_kernels, tucker_rows
-from threefold.implicit_tucker import (
+from threefold.models.tucker import kernels as tucker_kernels
+from threefold.models.tucker import rows as tucker_rows
+from threefold.models.tucker.implicit import (
     ImplicitTuckerModel,
     fit_implicit_tucker,
     implicit_loss,

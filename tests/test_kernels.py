@@ -12,9 +12,11 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 
-from threefold import als, kernels
-from threefold.structure import Structure
-from threefold.tensor import SparseTensor
+from threefold.models.cp import als
+
+from threefold.models.cp import kernels
+from threefold.models.cp.structure import Structure
+from threefold.core.tensor import SparseTensor
 
 MODES = ("user", "item", "daypart")
 SHAPE = (6, 5, 3)

@@ -6,7 +6,8 @@ import scipy.sparse as sp
 from numpy.testing import assert_allclose, assert_array_equal
 from sklearn.metrics import ndcg_score
 
-from threefold.metrics import graded_ndcg, ranked_gains, ranking_metrics, top_k, top_k_from_factors
+from threefold.evaluation.metrics import graded_ndcg, ranked_gains, ranking_metrics
+from threefold.ranking.selection import top_k, top_k_from_factors
 
 
 def slow_top_k(scores, k, mask=None):

@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
 
-from threefold.propensity import PropensityWarning, estimate_position_propensity, pbm_posteriors
+from threefold.data.propensity import PropensityWarning, estimate_position_propensity, pbm_posteriors
 
 
 def test_posteriors_match_worked_values():
@@ -57,7 +57,7 @@ def test_planted_examination_is_recovered_on_the_demo_site_with_an_unpersonalize
     # randomized swaps of position 1; >= 200,000 impressions; ratios within +-0.03 (issue target).
     # With the default personalized policy the per-item relevance key is confounded (an item sits higher
     # for visitors who like it); docs/feedback.md explains how to choose the relevance key.
-    from threefold.simulate import ScenarioParameters, simulate_site
+    from threefold.demo.simulate import ScenarioParameters, simulate_site
 
     params = ScenarioParameters.scaled(240_000, policy_taste_weight=0.0)
     site = simulate_site(params, random_state=5)

@@ -10,9 +10,9 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 
-from threefold.context import Daypart
-from threefold.pyfunc_model import OUTPUT_COLUMNS, Recommender, log_pyfunc
-from threefold.store import open_store
+from threefold.data.context import Daypart
+from threefold.tracking.pyfunc import OUTPUT_COLUMNS, Recommender, log_pyfunc
+from threefold.tracking.store import open_store
 
 from _tracking import SERVING, child_env, tiny_cp
 

@@ -18,7 +18,7 @@ import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 from pandas.testing import assert_frame_equal
 
-from threefold.simulate import (
+from threefold.demo.simulate import (
     CONTEXT_COLUMNS,
     ScenarioParameters,
     daypart_of,
@@ -307,7 +307,7 @@ def test_default_scenario_covers_every_context_level_and_the_time_window(site):
 
 
 def test_top_k_kernel_matches_a_stable_argsort():
-    from threefold._scenario import _top_k_rows
+    from threefold.demo._scenario import _top_k_rows
 
     rng = np.random.default_rng(3)
     scores = rng.standard_normal((50, 40)).astype(np.float32)
@@ -317,7 +317,7 @@ def test_top_k_kernel_matches_a_stable_argsort():
 
 
 def test_packed_sort_key_orders_rows_like_lexsort():
-    from threefold._scenario import _packed_key
+    from threefold.demo._scenario import _packed_key
 
     rng = np.random.default_rng(4)
     keys = [rng.integers(0, hi, 5_000) for hi in (1_000_000, 40_000, 2, 11)]

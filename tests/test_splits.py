@@ -4,12 +4,13 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from threefold.context import ColumnContext
-from threefold.cp import CPModel
-from threefold.evaluate import ScorerRanker, evaluate
-from threefold.queries import build_queries
-from threefold.simulate import ScenarioParameters, simulate_site
-from threefold.splits import check_selection, last_n_split, temporal_split, to_epoch_seconds, to_seconds
+from threefold.data.context import ColumnContext
+from threefold.models.cp.model import CPModel
+from threefold.evaluation.harness import evaluate
+from threefold.evaluation.rankers import ScorerRanker
+from threefold.evaluation.queries import build_queries
+from threefold.demo.simulate import ScenarioParameters, simulate_site
+from threefold.evaluation.splits import check_selection, last_n_split, temporal_split, to_epoch_seconds, to_seconds
 
 DAY = 86_400
 T0 = 1_770_000_000

@@ -12,7 +12,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 from threefold import cli
-from threefold.store import StoreError, open_store, resolve_store, upgrade_store, with_retries
+from threefold.tracking.store import StoreError, open_store, resolve_store, upgrade_store, with_retries
 
 from _tracking import child_env, run, threefold_command, write_config
 
@@ -118,7 +118,7 @@ def test_two_train_processes_start_together_on_a_fresh_store(tmp_path, capsys):
 
 HOLD_A_RUN = """
 import sys, time
-from threefold.store import open_store
+from threefold.tracking.store import open_store
 store = open_store(sys.argv[1])
 experiment = store.experiment_id("kills")
 with store.run(experiment, run_name=sys.argv[2]) as run_id:
@@ -157,7 +157,7 @@ def test_killed_runs_end_killed_and_the_next_command_reports_them(tmp_path):
 
 LOG_METRICS = """
 import sys
-from threefold.store import open_store
+from threefold.tracking.store import open_store
 store = open_store(sys.argv[1])
 run_id = store.create_run(store.experiment_id("load"), run_name=sys.argv[2])
 for i in range(int(sys.argv[3])):

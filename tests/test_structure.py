@@ -6,7 +6,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_array_equal
 
-from threefold.structure import Structure, Term, resolve_structure
+from threefold.models.cp.structure import Structure, Term, resolve_structure
 
 MODES = ("user", "item", "daypart", "device")
 

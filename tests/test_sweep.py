@@ -5,9 +5,9 @@ import os
 import numpy as np
 import pytest
 
-from threefold.config import load_config
-from threefold.store import open_store
-from threefold.sweep import TAG_BEST, TAG_TRIAL_HASH, sweep, trial_hash, trial_overrides
+from threefold.pipeline.config import load_config
+from threefold.tracking.store import open_store
+from threefold.pipeline.sweep import TAG_BEST, TAG_TRIAL_HASH, sweep, trial_hash, trial_overrides
 
 from _tracking import write_config
 
@@ -60,8 +60,8 @@ def test_a_sweep_without_a_validation_window_is_refused(small):
 def test_eight_trials_on_two_dask_workers_failures_recorded_and_reruns_skipped(tmp_path, small):
     """Done-when check: a sweep of 8 trials on 2 local workers; a failing trial does not stop the others."""
     space = {"models.cp.rank": [2, 3], "weighting.alpha": [5.0, 20.0],
-             # a mode the tensor does not have: passes the config, fails in the fit
-             "models.cp.structure": ["user*item", "user*item*weather"]}
+             # a context column the log does not have: passes the config (which reads no data), fails at the build
+             "build.contexts": [["daypart", "device"], ["daypart", "device", "weather"]]}
     config = small.with_overrides({"sweep.space": space})
     store = open_store(tmp_path / "store")
     messages = []
@@ -69,7 +69,7 @@ def test_eight_trials_on_two_dask_workers_failures_recorded_and_reruns_skipped(t
     table = report.trials
     assert len(table) == 8 and report.metric == "ndcg_at_5"
     failed = table[table["status"] == "FAILED"]
-    assert len(failed) == 4 and set(failed["models.cp.structure"]) == {"user*item*weather"}
+    assert len(failed) == 4 and all("weather" in str(v) for v in failed["build.contexts"])
     finished = table[table["status"] == "FINISHED"]
     assert len(finished) == 4 and finished["ndcg_at_5"].notna().all()
     runs = {r.info.run_id: r for r in store.client.search_runs(
@@ -88,7 +88,7 @@ def test_eight_trials_on_two_dask_workers_failures_recorded_and_reruns_skipped(t
     history = store.client.get_metric_history(best, "loss")
     assert sorted(m.step for m in history) == [0, 1, 2]
 
-    rerun = sweep(config.with_overrides({"sweep.space": {**space, "models.cp.structure": ["user*item"]}}), store,
+    rerun = sweep(config.with_overrides({"sweep.space": {**space, "build.contexts": [["daypart", "device"]]}}), store,
                   workers=2, echo=messages.append)
     assert set(rerun.trials["status"]) == {"FINISHED (earlier)"}
     assert set(rerun.trials["run_id"]) == set(finished["run_id"]) and rerun.best_run_id == best

@@ -14,12 +14,13 @@ from tensorly.decomposition import tucker
 from threadpoolctl import threadpool_limits
 
 from threefold import SparseTensor
-from threefold import tucker_kernels, tucker_rows
-from threefold.exceptions import ConvergenceWarning
-from threefold.hooi import HOOIModel, fit_hooi, hooi_fold_in
-from threefold.tucker import core_contributions, core_slice
-from threefold.tucker_kernels import build_fiber_tree, ttmc, ttmc_core
-from threefold.tucker_rows import evaluate
+from threefold.models.tucker import kernels as tucker_kernels
+from threefold.models.tucker import rows as tucker_rows
+from threefold.core.exceptions import ConvergenceWarning
+from threefold.models.tucker.hooi import HOOIModel, fit_hooi, hooi_fold_in
+from threefold.models.tucker.result import core_contributions, core_slice
+from threefold.models.tucker.kernels import build_fiber_tree, ttmc, ttmc_core
+from threefold.models.tucker.rows import evaluate
 
 
 def low_rank_plus_noise(shape, rank, noise, seed):

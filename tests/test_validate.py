@@ -1,4 +1,4 @@
-"""Validation of event logs (threefold.validate): one test per bad-input class; invented data."""
+"""Validation of event logs (threefold.data.validate): one test per bad-input class; invented data."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from threefold.validate import STRICT_CODES, validate_events
+from threefold.data.validate import STRICT_CODES, validate_events
 
 from _event_logs import NOW, invented_log, write_formats, write_text
 
@@ -307,7 +307,7 @@ def test_text_report_names_columns_and_rows(tmp_path):
 def test_hash_tables_match_python_sets_and_dicts():
     # Slow reference: Python's set and dict over the same keys, through several
     # table growths and with the reserved key 0 (stored as 1).
-    from threefold._hashing import HashCounter, HashSet
+    from threefold.data._hashing import HashCounter, HashSet
 
     rng = np.random.default_rng(5)
     table, counter, seen, counts, minima = HashSet(), HashCounter(), set(), {}, {}
@@ -340,8 +340,8 @@ def test_one_pass_load_equals_validate_plus_load(tmp_path):
 
     import pandas as pd
 
-    from threefold.events import EventLogWarning, load_events
-    from threefold.validate import load_validated_events
+    from threefold.data.events import EventLogWarning, load_events
+    from threefold.data.validate import load_validated_events
 
     frame = invented_log(seed=4)
     frame.loc[3, "timestamp"] = "soon"

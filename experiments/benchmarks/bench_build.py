@@ -4,11 +4,11 @@ Usage:  python experiments/benchmarks/bench_build.py [--events 10000000] [--cach
 
 Contenders, each in its own process (peak RSS of that process):
   * reference: pyarrow.parquet.read_table of the events file (all columns);
-  * validate:  threefold.validate.validate_events (chunked, bounded memory);
-  * build:     threefold.validate.load_validated_events (validate and load in one pass) +
-               threefold.build.build_tensor with daypart, device and page_tone
+  * validate:  threefold.data.validate.validate_events (chunked, bounded memory);
+  * build:     threefold.data.validate.load_validated_events (validate and load in one pass) +
+               threefold.data.build.build_tensor with daypart, device and page_tone
                context modes (a 5-way tensor), skip-above negatives.
-The log is the demo scenario (threefold.simulate), generated once and cached.
+The log is the demo scenario (threefold.demo.simulate), generated once and cached.
 """
 
 from __future__ import annotations
@@ -32,7 +32,7 @@ def main() -> None:
     args = parser.parse_args()
     folder = Path(args.cache) / f"site-{args.events}"
     if not (folder / "events.parquet").exists():
-        from threefold.simulate import simulate_site, write_site
+        from threefold.demo.simulate import simulate_site, write_site
 
         started = time.perf_counter()
         write_site(simulate_site(n_events=args.events, random_state=1), folder)
@@ -45,17 +45,17 @@ def main() -> None:
     """)
     validate = run_child(f"""
         import time
-        from threefold.validate import validate_events
+        from threefold.data.validate import validate_events
         t = time.perf_counter(); report = validate_events({events!r})
         RESULT = {{"seconds": time.perf_counter() - t, "ok": report.ok}}
     """)
     build = run_child(f"""
         import time, json, warnings
         warnings.simplefilter("ignore")
-        from threefold.validate import load_validated_events
-        from threefold.build import build_tensor
-        from threefold.context import Daypart, ColumnContext
-        from threefold.simulate import ScenarioParameters
+        from threefold.data.validate import load_validated_events
+        from threefold.data.build import build_tensor
+        from threefold.data.context import Daypart, ColumnContext
+        from threefold.demo.simulate import ScenarioParameters
         p = ScenarioParameters.from_dict(json.load(open({str(folder / "scenario.json")!r}))["parameters"])
         t = time.perf_counter(); events, report = load_validated_events({events!r}); t_load = time.perf_counter() - t
         specs = [Daypart(timezone=p.timezone, starts=tuple(float(s) for s in p.daypart_starts), labels=p.daypart_labels),

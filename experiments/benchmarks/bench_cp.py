@@ -86,9 +86,9 @@ def site_cells(shape, nnz, seed):
 
 WARM_UP = """
 import numpy as np, time
-from threefold.cp import fit_cp
-from threefold.feedback import CellEvidence, FeedbackWeighting
-from threefold.tensor import SparseTensor
+from threefold.models.cp.model import fit_cp
+from threefold.core.feedback import CellEvidence, FeedbackWeighting
+from threefold.core.tensor import SparseTensor
 _tiny = SparseTensor.from_arrays(np.array([[0, 1, 1], [0, 0, 1], [0, 1, 0]]), np.ones(3), (2, 2, 2), dtype=np.float32)
 for _solver in ("als", "cg"):
     fit_cp(_tiny, rank=2, solver=_solver, max_sweeps=1, tol=0)

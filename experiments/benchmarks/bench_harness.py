@@ -5,7 +5,7 @@ rank R = 64 (float32 factors), 1-3 clicked items per query, 5 queries per user.
 
 Contenders, each in its own child process (peak RSS from resource.getrusage):
 
-* ``threefold evaluate()``: :func:`threefold.evaluate.evaluate` with its
+* ``threefold evaluate()``: :func:`threefold.evaluation.harness.evaluate` with its
   defaults (K = 3, 5, 10; 1,000 bootstrap resamples over users for every
   metric; a paired comparison with a random baseline is *not* included). It
   binds the model through the shared scoring interface, masks the candidates
@@ -39,9 +39,9 @@ RESULTS = Path(__file__).resolve().parent / "results" / "evaluation-harness.md"
 
 DATA = """
 import numpy as np, pandas as pd, scipy.sparse as sp, time
-from threefold.queries import Candidates, QuerySet
-from threefold.scoring import Scorer, check_queries
-from threefold.vocabulary import Vocabulary
+from threefold.evaluation.queries import Candidates, QuerySet
+from threefold.core.scoring import Scorer, check_queries
+from threefold.core.vocabulary import Vocabulary
 
 n_queries, n_items, rank, seed = {queries}, {items}, {rank}, {seed}
 n_users = max(1, n_queries // 5)
@@ -56,7 +56,7 @@ clicks.data[:] = 1.0
 """
 
 THREEFOLD = DATA + """
-from threefold.evaluate import evaluate
+from threefold.evaluation.harness import evaluate
 
 
 class FixedFactors(Scorer):

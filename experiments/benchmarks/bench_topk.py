@@ -5,9 +5,9 @@ rank R = 64, float32 factors, 1-3 clicked items per query (CSR relevance).
 
 Contenders, each in its own child process (peak RSS from resource.getrusage):
 
-* ``threefold``: :func:`threefold.metrics.top_k_from_factors` (blocks of
+* ``threefold``: :func:`threefold.ranking.selection.top_k_from_factors` (blocks of
   queries, deterministic tie-break by item index, sorted lists) followed by
-  :func:`threefold.metrics.ranking_metrics` at K = 3, 5, 10 from the CSR clicks.
+  :func:`threefold.evaluation.metrics.ranking_metrics` at K = 3, 5, 10 from the CSR clicks.
 * ``numpy reference``: the same blocks of ``Q @ V.T`` followed by a bare
   ``np.argpartition(-scores, K - 1)[:, :K]`` (unsorted, no tie rule, no metrics).
 * ``numpy floor``: the same blocks of ``Q @ V.T`` alone, the cost no ranking avoids.
@@ -50,7 +50,8 @@ def make_data(n_queries: int, n_items: int, rank: int, seed: int):
 
 
 def run_threefold(args, queue) -> None:
-    from threefold.metrics import ranking_metrics, top_k_from_factors
+    from threefold.evaluation.metrics import ranking_metrics
+    from threefold.ranking.selection import top_k_from_factors
 
     query, items, clicks = make_data(args.queries, args.items, args.rank, args.seed)
     t0 = time.perf_counter()

@@ -4,7 +4,7 @@ Cases (each contender in its own child process; peak RSS from resource.getrusage
 
 * ``small``: 2000 users × 1000 items × 24 context levels, 200,000 stored cells (binary: the tensor
   of the CP benchmark B1, ``bench_cp.site_cells`` with seed 1), ranks (16, 16, 4).
-  Our :func:`threefold.hooi.fit_hooi` on the sparse tensor against
+  Our :func:`threefold.models.tucker.hooi.fit_hooi` on the sparse tensor against
   ``tensorly.decomposition.tucker`` on the dense tensor (init 'svd', tol = 0), same sweeps.
   Goal of the Tucker issue: at least 20 times faster at under a tenth of its peak memory, same fit.
 * ``large``: 100,000 users × 20,000 items × 6 dayparts × 4 devices, 10 million stored cells, item
@@ -49,13 +49,13 @@ RESULTS = HERE / "results" / "tucker.md"
 IMPORTS = """
 import resource, time
 import numpy as np
-from threefold.feedback import CellEvidence, FeedbackWeighting
-from threefold.tensor import SparseTensor
+from threefold.core.feedback import CellEvidence, FeedbackWeighting
+from threefold.core.tensor import SparseTensor
 """
 
 WARM_UP = """
-from threefold.hooi import fit_hooi
-from threefold.implicit_tucker import fit_implicit_tucker
+from threefold.models.tucker.hooi import fit_hooi
+from threefold.models.tucker.implicit import fit_implicit_tucker
 warm = SparseTensor.from_arrays(np.array([[0, 1], [0, 1], [0, 1]]), [1.0, 2.0], (2, 2, 2), w0=0.5)
 fit_hooi(warm, rank=1, max_sweeps=1, tol=0.0)
 fit_implicit_tucker(warm, rank=1, max_sweeps=1, tol=0.0, core_solver="cg")

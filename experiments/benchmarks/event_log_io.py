@@ -38,15 +38,15 @@ CONTENDERS = {
         "n = sum(b.num_rows for b in r)",
     ),
     "threefold validate_events": (
-        "from threefold.validate import validate_events",
+        "from threefold.data.validate import validate_events",
         "n = validate_events(PATH, now=2_000_000_000).summary['rows_read']",
     ),
     "threefold load_events": (
-        "import warnings; from threefold.events import load_events; warnings.simplefilter('ignore')",
+        "import warnings; from threefold.data.events import load_events; warnings.simplefilter('ignore')",
         "n = len(load_events(PATH))",
     ),
     "threefold load_validated_events (one pass)": (
-        "from threefold.validate import load_validated_events",
+        "from threefold.data.validate import load_validated_events",
         "n = len(load_validated_events(PATH, now=2_000_000_000)[0])",
     ),
 }

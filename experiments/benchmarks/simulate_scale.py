@@ -26,7 +26,7 @@ def _peak_gb() -> float:
 
 
 def _simulate(n: int, queue) -> None:
-    from threefold.simulate import simulate_site, write_site
+    from threefold.demo.simulate import simulate_site, write_site
 
     start = time.perf_counter()
     site = simulate_site(n_events=n, random_state=20260323)

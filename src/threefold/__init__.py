@@ -11,32 +11,32 @@ The public API, by layer (see DEVELOPERS.md):
   :class:`ImplicitTuckerModel`, all implementing :class:`Scorer`;
 * evaluation: :func:`temporal_split`, :func:`evaluate_stage`, :func:`evaluate`, the baselines.
 
-Experiment tracking (MLflow) lives in :mod:`threefold.experiment`, :mod:`threefold.store`,
-:mod:`threefold.sweep` and :mod:`threefold.pyfunc_model`, imported on demand.
+Experiment tracking (MLflow) lives in :mod:`threefold.pipeline.experiment`, :mod:`threefold.tracking.store`,
+:mod:`threefold.pipeline.sweep` and :mod:`threefold.tracking.pyfunc`, imported on demand.
 """
 
-from threefold.baselines import PopularityBaseline, RandomBaseline, context_free_mf
-from threefold.build import BuildReport, build_tensor, select_window
-from threefold.context import ColumnContext, CrossedContext, Daypart, WeekPart, derive_contexts, parse_context
-from threefold.cp import CPModel, CPResult, SweepRecord, fit_cp, fold_in
-from threefold.diagnostics import factor_match_score
-from threefold.evaluate import EvaluationResult, evaluate, evaluate_stage, select_best
-from threefold.events import load_events, load_items, pseudonymize_ids
-from threefold.exceptions import ConvergenceWarning
-from threefold.feedback import CellEvidence, FeedbackWeighting, cell_weights
-from threefold.hooi import HOOIModel, fit_hooi
-from threefold.implicit_tucker import ImplicitTuckerModel, fit_implicit_tucker
-from threefold.model_io import load_model, save_model
-from threefold.propensity import PositionPropensity, estimate_position_propensity
-from threefold.scoring import Scorer, ScoreTerms
-from threefold.simulate import simulate_site, true_relevance, write_site
-from threefold.splits import EventSplit, last_n_split, temporal_split
-from threefold.structure import Structure, Term
-from threefold.tensor import SparseTensor
-from threefold.tensor_io import load_tensor, save_tensor
-from threefold.tucker import TuckerResult
-from threefold.validate import ValidationReport, load_validated_events, validate_events
-from threefold.vocabulary import UNKNOWN, Vocabulary
+from threefold.models.baselines import PopularityBaseline, RandomBaseline, context_free_mf
+from threefold.data.build import BuildReport, build_tensor, select_window
+from threefold.data.context import ColumnContext, CrossedContext, Daypart, WeekPart, derive_contexts, parse_context
+from threefold.models.cp.model import CPModel, CPResult, SweepRecord, fit_cp, fold_in
+from threefold.models.diagnostics import factor_match_score
+from threefold.evaluation.harness import EvaluationResult, evaluate, evaluate_stage, select_best
+from threefold.data.events import load_events, load_items, pseudonymize_ids
+from threefold.core.exceptions import ConvergenceWarning
+from threefold.core.feedback import CellEvidence, FeedbackWeighting, cell_weights
+from threefold.models.tucker.hooi import HOOIModel, fit_hooi
+from threefold.models.tucker.implicit import ImplicitTuckerModel, fit_implicit_tucker
+from threefold.models.model_io import load_model, save_model
+from threefold.data.propensity import PositionPropensity, estimate_position_propensity
+from threefold.core.scoring import Scorer, ScoreTerms
+from threefold.demo.simulate import simulate_site, true_relevance, write_site
+from threefold.evaluation.splits import EventSplit, last_n_split, temporal_split
+from threefold.models.cp.structure import Structure, Term
+from threefold.core.tensor import SparseTensor
+from threefold.core.tensor_io import load_tensor, save_tensor
+from threefold.models.tucker.result import TuckerResult
+from threefold.data.validate import ValidationReport, load_validated_events, validate_events
+from threefold.core.vocabulary import UNKNOWN, Vocabulary
 
 __version__ = "0.1.0"
 

@@ -30,7 +30,7 @@ def _add_weighting_flags(parser: argparse.ArgumentParser) -> None:
 
 
 def _weighting(args: argparse.Namespace):
-    from threefold.feedback import FeedbackWeighting
+    from threefold.core.feedback import FeedbackWeighting
 
     return FeedbackWeighting(
         alpha=args.alpha, transform=args.transform, signal=args.signal,
@@ -125,22 +125,24 @@ def _add_tracking_commands(commands) -> None:
 
 
 def cmd_train(args: argparse.Namespace) -> int:
-    from threefold.config import load_config, parse_overrides
-    from threefold.experiment import summary_text, train
-    from threefold.store import open_store
+    from threefold.pipeline.config import load_config, parse_overrides
+    from threefold.demo.simulate import site_truth
+    from threefold.pipeline.experiment import summary_text, train
+    from threefold.tracking.store import open_store
 
     config = load_config(args.config, parse_overrides(args.overrides))
-    print(summary_text(train(config, open_store(args.store))))
+    print(summary_text(train(config, open_store(args.store), truth=site_truth)))
     return 0
 
 
 def cmd_sweep(args: argparse.Namespace) -> int:
-    from threefold.config import load_config, parse_overrides
-    from threefold.store import open_store
-    from threefold.sweep import sweep
+    from threefold.pipeline.config import load_config, parse_overrides
+    from threefold.tracking.store import open_store
+    from threefold.demo.simulate import site_truth
+    from threefold.pipeline.sweep import sweep
 
     config = load_config(args.config, parse_overrides(args.overrides))
-    report = sweep(config, open_store(args.store), workers=args.workers, scheduler=args.scheduler)
+    report = sweep(config, open_store(args.store), workers=args.workers, scheduler=args.scheduler, truth=site_truth)
     print(report.trials.to_string(index=False))
     print(f"best trial: {report.best_run_id or 'none finished'} (validation {report.metric}); "
           f"parent run {report.parent_run_id}")
@@ -148,8 +150,8 @@ def cmd_sweep(args: argparse.Namespace) -> int:
 
 
 def cmd_runs(args: argparse.Namespace) -> int:
-    from threefold import runs as listing
-    from threefold.store import open_store, upgrade_store
+    from threefold.tracking import runs as listing
+    from threefold.tracking.store import open_store, upgrade_store
 
     if args.action == "upgrade":
         backup = upgrade_store(args.store)
@@ -183,7 +185,7 @@ def _print_warnings(caught: list) -> None:
 
 
 def cmd_validate(args: argparse.Namespace) -> int:
-    from threefold.validate import validate_events
+    from threefold.data.validate import validate_events
 
     report = validate_events(args.events, items=args.items, timezone=args.timezone,
                              chunk_rows=args.chunk_rows, strict=args.strict)
@@ -192,7 +194,7 @@ def cmd_validate(args: argparse.Namespace) -> int:
 
 
 def cmd_simulate(args: argparse.Namespace) -> int:
-    from threefold.simulate import simulate_site, write_site
+    from threefold.demo.simulate import simulate_site, site_truth, write_site
 
     started = time.perf_counter()
     site = simulate_site(n_events=args.n_events, random_state=args.seed)
@@ -205,7 +207,7 @@ def cmd_simulate(args: argparse.Namespace) -> int:
 
 
 def _contexts(names: Sequence[str], timezone: str, starts: str | None, labels: str | None):
-    from threefold.context import DEFAULT_DAYPART_LABELS, DEFAULT_DAYPART_STARTS, parse_context
+    from threefold.data.context import DEFAULT_DAYPART_LABELS, DEFAULT_DAYPART_STARTS, parse_context
 
     day_starts = tuple(float(x) for x in starts.split(",")) if starts else DEFAULT_DAYPART_STARTS
     day_labels = tuple(x.strip() for x in labels.split(",")) if labels else DEFAULT_DAYPART_LABELS
@@ -223,9 +225,9 @@ def build_from_log(events_path, contexts, weighting, *, negatives, timezone, ite
     -------
     tensor, build report, position propensity (or None), validation report
     """
-    from threefold.build import build_tensor
-    from threefold.propensity import PROPENSITY_COLUMNS, estimate_position_propensity
-    from threefold.validate import load_validated_events
+    from threefold.data.build import build_tensor
+    from threefold.data.propensity import PROPENSITY_COLUMNS, estimate_position_propensity
+    from threefold.data.validate import load_validated_events
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -256,7 +258,7 @@ def _print_tensor_summary(tensor, report, propensity) -> None:
 
 
 def cmd_build(args: argparse.Namespace) -> int:
-    from threefold.tensor_io import save_tensor
+    from threefold.core.tensor_io import save_tensor
 
     contexts = _contexts(args.context, args.timezone or "UTC", args.daypart_starts, args.daypart_labels)
     tensor, report, propensity, validation = build_from_log(
@@ -274,13 +276,13 @@ def cmd_build(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from threefold.context import Daypart, ColumnContext
-    from threefold.feedback import FeedbackWeighting
-    from threefold.simulate import simulate_site, write_site
-    from threefold.config import load_config
-    from threefold.experiment import summary_text, train
-    from threefold.store import open_store
-    from threefold.tensor_io import save_tensor
+    from threefold.data.context import Daypart, ColumnContext
+    from threefold.core.feedback import FeedbackWeighting
+    from threefold.demo.simulate import simulate_site, site_truth, write_site
+    from threefold.pipeline.config import load_config
+    from threefold.pipeline.experiment import summary_text, train
+    from threefold.tracking.store import open_store
+    from threefold.core.tensor_io import save_tensor
 
     out = Path(args.out)
     print(f"== 1. simulate an invented site ({args.n_events:,} log rows, seed {args.seed})")
@@ -310,7 +312,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     config_path = _write_demo_config(out, log_dir, site)
     print(f"   config {config_path}; run store {out / 'runs'}")
     config = load_config(config_path)
-    report = train(config, open_store(str(out / "runs")), echo=lambda line: print(f"   {line}"))
+    report = train(config, open_store(str(out / "runs")), echo=lambda line: print(f"   {line}"), truth=site_truth)
     print(summary_text(report))
     print(f"   list the runs: threefold runs --store {out / 'runs'}")
     return 0
@@ -318,7 +320,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
     """The demo's experiment config: last two days for test, the day before for validation."""
-    from threefold.config import to_toml
+    from threefold.pipeline.config import to_toml
 
     end = int(site.events["timestamp"].max())
     cutoff = end - 2 * 86_400

@@ -1,0 +1,334 @@
+"""The train pipeline: config -> data -> tensor -> fitted models -> evaluation -> logged runs.
+
+:func:`train` is what ``threefold train CONFIG`` runs. One parent run holds the
+config, the dataset fingerprint and the combined evaluation table; each model
+gets a child run with the flattened config as params (its own parameters as
+``model.*``), per-sweep loss and fit as step metrics, final metrics with their
+interval bounds (``ndcg_at_10``, ``ndcg_at_10_low``, ``ndcg_at_10_high``),
+wall time and peak memory, the metrics tables as CSV, plots, and the model
+itself as an MLflow pyfunc model written as code (see :mod:`threefold.tracking.pyfunc`).
+
+The data and fitting steps (:func:`load_dataset`, :func:`prepare_stage`,
+:func:`fit_and_evaluate`) know nothing of MLflow; the sweep workers of
+:mod:`threefold.pipeline.sweep` call them too.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from threefold.models.registry import FACTOR_METHODS, model_class
+from threefold.pipeline.config import ExperimentConfig
+from threefold.core.scoring import Scorer
+
+__all__ = ["Dataset", "StageData", "FitOutcome", "ModelRun", "TrainReport", "load_dataset", "prepare_stage",
+           "make_estimator", "fit_and_evaluate", "train", "key_metric_names", "TruthSource"]
+
+@dataclass(eq=False)
+class Dataset:
+    """The loaded input: events, the items catalog and their fingerprint."""
+
+    events: pd.DataFrame
+    items: pd.DataFrame | None
+    fingerprint: dict
+    warnings: list = field(default_factory=list)
+    true_relevance: object = None  # f(requests, item_ids) on a simulated site, else None
+
+
+@dataclass(eq=False)
+class StageData:
+    """One stage of the split with its training tensor."""
+
+    stage: object
+    tensor: object
+    build_report: object
+    contexts: list
+    build_options: dict
+
+
+@dataclass(eq=False)
+class FitOutcome:
+    """A fitted model and its evaluation."""
+
+    name: str
+    estimator: object
+    evaluation: object
+    seconds: float
+    peak_memory_mb: float
+
+    @property
+    def history(self) -> tuple:
+        return tuple(getattr(self.estimator, "history_", ()))
+
+
+#: ``truth(events_path)``: the true relevance ``f(requests, item_ids)`` of a simulated log, or None.
+TruthSource = Callable[[str], Callable | None]
+
+
+def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> Dataset:
+    """Load the events (and catalog) of ``[data]`` and fingerprint the files.
+
+    ``truth`` gives the true relevance of a simulated log (the command line
+    passes :func:`threefold.demo.simulate.site_truth`); the pipeline itself
+    never imports the demo.
+    """
+    from threefold.data.events import load_events, load_items
+    from threefold.tracking.runlog import dataset_fingerprint
+
+    data = config["data"]
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        events = load_events(data["events"], timezone=data["timezone"], errors=data["errors"],
+                             drop_activity_outliers=data["drop_activity_outliers"],
+                             hash_user_ids_salt=data["hash_user_ids_salt"])
+        items = load_items(data["items"], timezone=data["timezone"]) if data["items"] else None
+    fingerprint = dataset_fingerprint({"events": data["events"], "items": data["items"]}, events, items)
+    return Dataset(events=events, items=items, fingerprint=fingerprint, warnings=[str(w.message) for w in caught],
+                   true_relevance=truth(data["events"]) if truth is not None else None)
+
+
+def prepare_stage(config: ExperimentConfig, dataset: Dataset, stage_name: str) -> StageData:
+    """Split the events and build the training tensor of the ``"validation"`` or ``"test"`` stage."""
+    from threefold.data.propensity import estimate_position_propensity
+    from threefold.evaluation.splits import temporal_split
+
+    split_cfg, build = config["split"], config["build"]
+    if stage_name == "validation" and split_cfg["validation_window"] is None:
+        raise ValueError(f"{config.source}: selecting on the validation window needs [split] validation_window "
+                         "(e.g. \"24h\"); model selection on the test window is refused.")
+    split = temporal_split(dataset.events, split_cfg["cutoff"],
+                           validation_window=split_cfg["validation_window"] or "24h",
+                           test_window=split_cfg["test_window"])
+    stage = split.selection_stage() if stage_name == "validation" else split.final_stage()
+    contexts = config.contexts()
+    options = dict(weighting=config.weighting(), negatives=build["negatives"], dtype=np.dtype(build["dtype"]),
+                   drop_duplicates=build["drop_duplicates"])
+    if build["position_propensity"]:
+        options.update(click_propensity=estimate_position_propensity(stage.train).ratios,
+                       propensity_clip=build["propensity_clip"])
+    tensor, report = stage.train_tensor(contexts, **options)
+    return StageData(stage=stage, tensor=tensor, build_report=report, contexts=contexts, build_options=options)
+
+
+def make_estimator(spec: dict, callback: Callable | None = None):
+    """The estimator of a ``[models.NAME]`` table (``method`` and parameters)."""
+    params = {k: (tuple(v) if isinstance(v, list) else v) for k, v in spec.items() if k != "method"}
+    if spec["method"] in FACTOR_METHODS:
+        params["callback"] = callback
+    return model_class(spec["method"])(**params)
+
+
+def fit_and_evaluate(config: ExperimentConfig, data: StageData, dataset: Dataset, name: str, *,
+                     callback: Callable | None = None, with_baseline: bool = True) -> FitOutcome:
+    """Fit the model ``name`` on the stage's tensor and evaluate it (with the baseline beside it).
+
+    Factor models are fitted here; baselines (popularity, random) are fitted by
+    the evaluation on the stage's events, as of each request.
+    """
+    from threefold.evaluation.harness import evaluate_stage
+    from threefold.pipeline.config import evaluation_options
+
+    spec = config.models[name]
+    started = time.perf_counter()
+    estimator = make_estimator(spec, callback)
+    if spec["method"] in FACTOR_METHODS:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", category=UserWarning)  # convergence is recorded in the history
+            estimator.fit(data.tensor)
+    seconds = time.perf_counter() - started
+    models = {name: estimator}
+    baseline = config["evaluation"]["baseline"]
+    if with_baseline and baseline is not None and baseline != name:
+        models[baseline] = make_estimator(config.models[baseline])
+    options = evaluation_options(config, baseline=baseline if baseline in models and len(models) > 1 else None)
+    evaluation = evaluate_stage(data.stage, models, data.contexts, options, catalog=dataset.items,
+                                build_options=data.build_options, true_relevance=dataset.true_relevance)
+    from threefold.tracking.runlog import peak_memory_mb
+
+    return FitOutcome(name=name, estimator=estimator, evaluation=evaluation, seconds=seconds,
+                      peak_memory_mb=peak_memory_mb())
+
+
+def key_metric_names(config: ExperimentConfig) -> list[str]:
+    """The metrics a summary shows: each of ``[evaluation] metrics`` at the largest K."""
+    k = max(config["evaluation"]["ks"])
+    return [f"{m}_at_{k}" for m in config["evaluation"]["metrics"]]
+
+
+def serving_metadata(config: ExperimentConfig) -> dict:
+    """What a served model needs to derive its context levels from request columns."""
+    build = config["build"]
+    return {"contexts": list(build["contexts"]), "timezone": config["data"]["timezone"],
+            "daypart_starts": list(build["daypart_starts"]), "daypart_labels": list(build["daypart_labels"])}
+
+
+def model_params(config: ExperimentConfig, name: str) -> dict:
+    """Params of a model's child run: the config without ``[models]``, plus ``model.*``."""
+    flat = config.flat(exclude=("sweep", "models"))
+    flat.update({"model.name": name, **{f"model.{k}": v for k, v in config.models[name].items()}})
+    return flat
+
+
+# ---------------------------------------------------------------------- logging
+@dataclass
+class ModelRun:
+    """One logged model: its child run, metrics and model URI (None for baselines)."""
+
+    name: str
+    run_id: str
+    metrics: dict
+    model_uri: str | None
+    seconds: float
+
+
+@dataclass
+class TrainReport:
+    """What :func:`train` logged."""
+
+    parent_run_id: str
+    runs: list
+    table: pd.DataFrame
+    key_metrics: list
+    reaped: list
+
+
+def log_pyfunc_model(store, result, config: ExperimentConfig, dataset: Dataset, data: StageData, name: str) -> str:
+    """Log ``result`` as a pyfunc model of the active run, with the live interval of every item; returns its URI."""
+    from threefold.tracking.pyfunc import log_pyfunc
+    from threefold.evaluation.queries import catalog_times
+
+    published, expires = catalog_times(result.vocabularies[1], dataset.items, data.stage.train)
+    return log_pyfunc(store, result, serving_metadata(config), published=published, expires=expires,
+                      parameters=config.models[name], training_fingerprint=dataset.fingerprint)
+
+
+def log_outcome(store, run_id: str, outcome: FitOutcome, config: ExperimentConfig) -> dict:
+    """Log a fitted model's metrics, tables and plots to its run; returns the overall metrics."""
+    from threefold.tracking.runlog import context_levels_figure, log_metrics, loss_curve_figure, overall_metrics
+
+    table = outcome.evaluation.table
+    metrics = overall_metrics(table, outcome.name)
+    extra = {"wall_seconds": outcome.seconds, "peak_memory_mb": outcome.peak_memory_mb}
+    if outcome.history:
+        extra.update(n_sweeps=len(outcome.history) - 1, final_loss=outcome.history[-1].loss,
+                     final_fit=outcome.history[-1].fit)
+    log_metrics(store, run_id, {**metrics, **extra})
+    client = store.client
+    store.call(client.log_text, run_id, table[table["model"] == outcome.name].to_csv(index=False), "evaluation/metrics.csv")
+    if not outcome.evaluation.comparisons.empty:
+        store.call(client.log_text, run_id, outcome.evaluation.comparisons.to_csv(index=False),
+                   "evaluation/comparisons.csv")
+    store.call(client.log_dict, run_id, _jsonable(outcome.evaluation.report), "evaluation/report.json")
+    figures = []
+    if outcome.history:
+        figures.append((loss_curve_figure(outcome.history, outcome.name), "plots/loss_curve.png"))
+    k = max(config["evaluation"]["ks"])
+    fig = context_levels_figure(table, config["evaluation"]["metrics"][-1], k, list(dict.fromkeys(table["model"])),
+                                [c for c in outcome.evaluation.table["breakdown"].unique()
+                                 if c in {s for s in config["build"]["contexts"]}])
+    if fig is not None:
+        figures.append((fig, "plots/metrics_by_context_level.png"))
+    import matplotlib.pyplot as plt
+
+    for figure, path in figures:
+        store.call(client.log_figure, run_id, figure, path)
+        plt.close(figure)
+    return {**metrics, **extra}
+
+
+def _jsonable(value):
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.generic):
+        return value.item()
+    return value if isinstance(value, (str, int, float, bool, type(None))) else str(value)
+
+
+def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = print,
+          truth: TruthSource | None = None) -> TrainReport:
+    """Fit, evaluate and log every model of ``config``; see the module docstring.
+
+    Parameters
+    ----------
+    config : ExperimentConfig
+    store : threefold.tracking.store.RunStore
+    echo : callable, default=print
+        Receives progress lines.
+
+    Returns
+    -------
+    TrainReport
+    """
+    from threefold.tracking.runlog import SweepLogger, environment_tags, log_metrics, log_params
+
+    reaped = store.reap_stale_runs()
+    for run_id, reason in reaped:
+        echo(f"marked run {run_id} killed ({reason})")
+    dataset = load_dataset(config, truth)
+    for message in dataset.warnings:
+        echo(f"warning: {message}")
+    stage_name = config["evaluation"]["stage"]
+    experiment_id = store.experiment_id(config["experiment"]["name"])
+    keys = key_metric_names(config)
+    tags = {**config["experiment"]["tags"], **environment_tags(), "threefold.data_sha256": dataset.fingerprint["sha256"],
+            "threefold.config_sha256": config.fingerprint(), "threefold.key_metrics": ",".join(keys),
+            "threefold.stage": stage_name}
+    runs, tables = [], []
+    with store.run(experiment_id, run_name=f"train {Path(config.source).stem}",
+                   tags={**tags, "threefold.kind": "train"}) as parent_id:
+        log_params(store, parent_id, config.flat())
+        store.call(store.client.log_text, parent_id, config.to_toml(), "config.toml")
+        store.call(store.client.log_dict, parent_id, dataset.fingerprint, "dataset.json")
+        data = prepare_stage(config, dataset, stage_name)
+        store.call(store.client.log_dict, parent_id, data.build_report.to_dict(), "build_report.json")
+        log_metrics(store, parent_id, {"tensor_cells": data.tensor.nnz, "events_rows": len(dataset.events)})
+        echo(f"{stage_name} stage: {len(data.stage.train):,} training events, {len(data.stage.evaluate):,} evaluated; "
+             f"tensor {data.tensor}")
+        for name in config.models:
+            with store.run(experiment_id, run_name=name, nested=True,
+                           tags={**tags, "threefold.kind": "model", "threefold.model": name}) as run_id:
+                log_params(store, run_id, model_params(config, name))
+                logger = SweepLogger(store, run_id)
+                outcome = fit_and_evaluate(config, data, dataset, name, callback=logger)
+                logger.log_history(outcome.history)
+                metrics = log_outcome(store, run_id, outcome, config)
+                result = getattr(outcome.estimator, "result_", None)
+                uri = log_pyfunc_model(store, result, config, dataset, data, name) if isinstance(result, Scorer) else None
+                if uri is not None:
+                    store.call(store.client.set_tag, run_id, "threefold.model_uri", uri)
+            runs.append(ModelRun(name=name, run_id=run_id, metrics=metrics, model_uri=uri, seconds=outcome.seconds))
+            table = outcome.evaluation.table
+            tables.append(table[table["model"] == name])
+            echo(f"  {name}: " + "  ".join(_interval_text(metrics, m) for m in keys) + f"  ({outcome.seconds:.1f} s)")
+        combined = pd.concat(tables, ignore_index=True)
+        store.call(store.client.log_text, parent_id, combined.to_csv(index=False), "evaluation/metrics.csv")
+    return TrainReport(parent_run_id=parent_id, runs=runs, table=combined, key_metrics=keys, reaped=reaped)
+
+
+def _interval_text(metrics: dict, name: str) -> str:
+    if name not in metrics:
+        return f"{name} -"
+    low, high = metrics.get(f"{name}_low"), metrics.get(f"{name}_high")
+    bounds = f" [{low:.4f}, {high:.4f}]" if low is not None and high is not None else ""
+    return f"{name} {metrics[name]:.4f}{bounds}"
+
+
+def summary_text(report: TrainReport) -> str:
+    """The table ``threefold train`` prints: key metrics with 95% intervals and each model's URI."""
+    rows = [[run.name] + [_interval_text(run.metrics, m).split(" ", 1)[1] for m in report.key_metrics]
+            + [f"{run.seconds:.1f}", run.model_uri or "-"] for run in report.runs]
+    header = ["model"] + report.key_metrics + ["fit s", "model URI"]
+    widths = [max(len(str(r[i])) for r in rows + [header]) for i in range(len(header))]
+    lines = ["  ".join(str(c).ljust(w) for c, w in zip(header, widths))]
+    lines += ["  ".join(str(c).ljust(w) for c, w in zip(r, widths)) for r in rows]
+    lines.append(f"parent run {report.parent_run_id}; intervals are 95% percentile bootstrap over users")
+    return "\n".join(lines)

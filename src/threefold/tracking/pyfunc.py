@@ -1,0 +1,105 @@
+"""Serve a saved model to any MLflow client: ranked lists per request, with defined fallbacks.
+
+:class:`Recommender` ranks items for a DataFrame of requests; :class:`RecommenderPyfunc`
+wraps it as an MLflow pyfunc model *written as code* (models-from-code: MLflow
+runs ``_pyfunc_entry.py`` on load and unpickles nothing), reading the model
+folder of :mod:`threefold.models.model_io` that is logged beside it. Any MLflow client::
+
+    model = mlflow.pyfunc.load_model("models:/m-...")
+    model.predict(requests, params={"k": 10})
+
+Input rows, output columns and the status flags are those of
+:class:`threefold.ranking.recommender.Recommender`.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import mlflow
+import numpy as np
+import pandas as pd
+
+from threefold.ranking.recommender import OUTPUT_COLUMNS, Recommender, context_specs, raw_columns
+from threefold.data.context import spec_name
+
+__all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for", "pyfunc_entry_path", "log_pyfunc"]
+
+OUTPUT_COLUMNS = ("request_id", "user_id", "item_id", "rank", "score", "status")
+_FALLBACK_LABEL = "\x00threefold-fallback"
+_FLAG_ORDER = ("unknown_user", "unknown_context", "unknown_item", "no_candidates")
+_BLOCK_CELLS = 1 << 22
+
+
+def pyfunc_entry_path() -> Path:
+    """The models-from-code file MLflow copies into the logged model and runs on load."""
+    return Path(__file__).with_name("_pyfunc_entry.py")
+
+
+def signature_for(serving: dict):
+    """The MLflow signature of a served model: its input columns, the ``k`` parameter, the output columns."""
+    from mlflow.models import ModelSignature
+    from mlflow.types.schema import ColSpec, ParamSchema, ParamSpec, Schema
+
+    specs = context_specs(serving)
+    optional = ["item_id"] + [spec_name(s) for s in specs] + [c for s in specs for c in raw_columns(s)]
+    inputs = [ColSpec("string", "request_id"), ColSpec("string", "user_id"), ColSpec("long", "timestamp", required=False)]
+    inputs += [ColSpec("string", name, required=False) for name in dict.fromkeys(optional)]
+    outputs = [ColSpec("string", "request_id"), ColSpec("string", "user_id"), ColSpec("string", "item_id", required=False),
+               ColSpec("long", "rank"), ColSpec("double", "score", required=False), ColSpec("string", "status")]
+    return ModelSignature(inputs=Schema(inputs), outputs=Schema(outputs), params=ParamSchema([ParamSpec("k", "long", 10)]))
+
+
+def log_pyfunc(store, result, serving: dict, *, published: np.ndarray | None = None, expires: np.ndarray | None = None,
+               parameters: dict | None = None, training_fingerprint: dict | None = None, name: str = "model") -> str:
+    """Save ``result`` as a model folder and log it as a pyfunc model of the active run.
+
+    Parameters
+    ----------
+    store : threefold.tracking.store.RunStore
+    result : CPResult or TuckerResult
+    serving : dict
+        ``contexts``, ``timezone``, ``daypart_starts``, ``daypart_labels``: how
+        requests' context levels are derived (as in the config's ``[build]``).
+    published, expires : ndarray of shape (n_items,), int64, or None
+        Live interval of each item (see :class:`Recommender`).
+    parameters, training_fingerprint : dict or None
+        Recorded in the model folder's metadata.
+    name : str, default="model"
+
+    Returns
+    -------
+    str
+        The model URI MLflow returns (``models:/...``).
+    """
+    import importlib.metadata
+    import tempfile
+    import warnings
+
+    from threefold import __version__
+    from threefold.models.model_io import save_model
+
+    extra_arrays = {k: v for k, v in (("published_at", published), ("expires_at", expires)) if v is not None}
+    requirements = [f"threefold=={__version__}"] + [f"{lib}=={importlib.metadata.version(lib)}" for lib in
+                                                    ("mlflow", "numpy", "pandas", "scipy", "numba", "pyarrow")]
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp) / "model"
+        save_model(result, folder, parameters=parameters, training_fingerprint=training_fingerprint,
+                   extra={"serving": serving, "name": name}, extra_arrays=extra_arrays)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # MLflow's advice on type hints and input examples
+            info = store.call(mlflow.pyfunc.log_model, name=name, python_model=str(pyfunc_entry_path()),
+                              artifacts={"model": str(folder)}, signature=signature_for(serving),
+                              pip_requirements=requirements)
+    return info.model_uri
+
+
+class RecommenderPyfunc(mlflow.pyfunc.PythonModel):
+    """MLflow pyfunc model around :class:`Recommender`; its model folder is the ``model`` artifact."""
+
+    def load_context(self, context) -> None:
+        self.recommender = Recommender.from_folder(context.artifacts["model"])
+
+    def predict(self, context, model_input: pd.DataFrame, params: dict | None = None) -> pd.DataFrame:
+        k = (params or {}).get("k", 10)
+        return self.recommender.recommend(model_input, k=int(k) if isinstance(k, (int, np.integer)) else k)
