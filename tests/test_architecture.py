@@ -19,8 +19,8 @@ PACKAGE = Path(__file__).resolve().parents[1] / "src" / "threefold"
 LAYERS = ("core", "data", "models", "ranking", "evaluation", "tracking", "pipeline", "demo", "cli")
 
 
-def _module_name(path: Path) -> str:
-    parts = path.relative_to(PACKAGE.parent).with_suffix("").parts
+def _module_name(path: Path, package: Path = PACKAGE) -> str:
+    parts = path.relative_to(package.parent).with_suffix("").parts
     return ".".join(parts[:-1] if parts[-1] == "__init__" else parts)
 
 
@@ -29,9 +29,9 @@ def _layer(module: str) -> str | None:
     return parts[1] if len(parts) > 1 else None
 
 
-def _imports() -> dict[str, set[str]]:
+def _imports(package: Path = PACKAGE) -> dict[str, set[str]]:
     """Module -> the threefold modules it imports (``from threefold.x import y`` counts y when y is a module)."""
-    modules = {_module_name(p): p for p in PACKAGE.rglob("*.py")}
+    modules = {_module_name(p, package): p for p in package.rglob("*.py")}
     graph: dict[str, set[str]] = {}
     for name, path in modules.items():
         found: set[str] = set()
@@ -54,22 +54,26 @@ def test_every_module_lives_in_a_layer():
     assert not loose, f"modules outside the layer folders {LAYERS}: {loose}"
 
 
+def _upward(graph: dict, module: str) -> list[str]:
+    here = LAYERS.index(_layer(module))
+    return sorted(m for m in graph[module] if _layer(m) in LAYERS and LAYERS.index(_layer(m)) > here)
+
+
 @pytest.mark.parametrize("module", sorted(m for m in GRAPH if m != "threefold"))
 def test_imports_run_downward(module):
-    here = LAYERS.index(_layer(module))
-    upward = sorted(m for m in GRAPH[module] if _layer(m) in LAYERS and LAYERS.index(_layer(m)) > here)
-    assert not upward, f"{module} (layer {LAYERS[here]!r}) imports from a higher layer: {upward}"
+    upward = _upward(GRAPH, module)
+    assert not upward, f"{module} (layer {_layer(module)!r}) imports from a higher layer: {upward}"
 
 
-def test_no_import_circles():
+def _circle(graph: dict) -> list[str] | None:
     state: dict[str, int] = {}
     stack: list[str] = []
 
     def visit(node: str) -> list[str] | None:
         state[node] = 1
         stack.append(node)
-        for nxt in sorted(GRAPH.get(node, ())):
-            if nxt not in GRAPH or nxt == "threefold" or GRAPH is None:
+        for nxt in sorted(graph.get(node, ())):
+            if nxt not in graph or nxt == "threefold":
                 continue
             if state.get(nxt) == 1:
                 return stack[stack.index(nxt):] + [nxt]
@@ -79,15 +83,33 @@ def test_no_import_circles():
         state[node] = 2
         return None
 
-    for module in sorted(m for m in GRAPH if m != "threefold"):
+    for module in sorted(m for m in graph if m != "threefold"):
         if module not in state and (cycle := visit(module)):
-            pytest.fail("import circle: " + " -> ".join(cycle))
+            return cycle
+    return None
 
 
-def test_the_walker_sees_an_upward_import(tmp_path):
-    """The check itself can fail: an evaluation module importing the demo is caught (common practice: test the test)."""
-    source = "from threefold.demo.simulate import simulate_site\n"
-    tree = ast.parse(source)
-    node = tree.body[0]
-    assert isinstance(node, ast.ImportFrom) and _layer(node.module) == "demo"
-    assert LAYERS.index("demo") > LAYERS.index("evaluation")
+def test_no_import_circles():
+    cycle = _circle(GRAPH)
+    assert cycle is None, "import circle: " + " -> ".join(cycle or [])
+
+
+def test_the_walker_catches_an_upward_import_a_lazy_one_and_a_circle(tmp_path):
+    """The check itself can fail: on a made-up package, an evaluation module importing the demo
+    (at the top and inside a function) and two modules importing each other are all found."""
+    root = tmp_path / "threefold"
+    for folder in ("evaluation", "demo", "core"):
+        (root / folder).mkdir(parents=True)
+        (root / folder / "__init__.py").write_text("")
+    (root / "__init__.py").write_text("")
+    (root / "demo" / "simulate.py").write_text("X = 1\n")
+    (root / "evaluation" / "harness.py").write_text("from threefold.demo.simulate import X\n")
+    (root / "evaluation" / "lazy.py").write_text("def f():\n    from threefold.demo import simulate\n")
+    (root / "core" / "a.py").write_text("from threefold.core import b\n")
+    (root / "core" / "b.py").write_text("import threefold.core.a\n")
+    graph = _imports(root)
+    assert _upward(graph, "threefold.evaluation.harness") == ["threefold.demo.simulate"]
+    assert _upward(graph, "threefold.evaluation.lazy") == ["threefold.demo.simulate"]
+    assert _upward(graph, "threefold.demo.simulate") == []
+    assert _circle(graph) in (["threefold.core.a", "threefold.core.b", "threefold.core.a"],
+                              ["threefold.core.b", "threefold.core.a", "threefold.core.b"])

@@ -149,3 +149,26 @@ def test_missing_sections_and_keys_are_named(tmp_path):
         parse_config({"data": {"events": "x"}, "split": {}, "models": {"cp": {}}})
     with pytest.raises(FileNotFoundError, match=r"No experiment config at"):
         load_config(tmp_path / "missing.toml")
+
+
+# ---------------------------------------------------------------------- checked before any data is read
+BEFORE_DATA = [
+    ({"models.cp.structure": "user*itme + item*device:2"}, r"\[models\.cp\]: Structure term 'user\*itme' uses mode 'itme'"),
+    ({"models.cp.structure": "user*item + item*"}, r"\[models\.cp\]: .*"),
+    ({"models.cp.fixed_modes": ["devic"]}, r"fixed_modes names the mode 'devic', but the tensor's modes are"),
+    ({"models.tucker": {"method": "hooi", "rank": [2, 2, 2]}}, r"\[models\.tucker\]: rank lists 3 sizes, but the tensor has 4 modes"),
+    ({"models.popularity.context_modes": ["page_tone"]}, r"context_modes names 'page_tone', but the context modes of \[build\]"),
+    ({"sweep.space": {"models.cp.structure": ["user*item", "user*item*weather"]}},
+     r"\[models\.cp\] with \[sweep\.space\] structure = 'user\*item\*weather': Structure term"),
+    ({"sweep.space": {"models.tucker.rank": [[2, 2, 2, 2], [2, 2]]}, "models.tucker": {"method": "implicit_tucker"}},
+     r"\[models\.tucker\] with \[sweep\.space\] rank = \[2, 2\]: rank lists 2 sizes"),
+]
+
+
+@pytest.mark.parametrize("overrides, message", BEFORE_DATA)
+def test_model_settings_are_checked_against_the_modes_before_any_data_is_read(tmp_path, overrides, message):
+    """The config names no existing log here: the error must come from the config alone."""
+    text = SMALL_CONFIG.replace("events = ", "events = \"missing-on-purpose.parquet\"\n# ", 1)
+    config_path = write_config(tmp_path, text)
+    with pytest.raises(ConfigError, match=message):
+        load_config(config_path, overrides)
