@@ -21,7 +21,8 @@ from typing import Mapping
 import numpy as np
 
 from threefold.core.bundle import BundleError, read_bundle, write_bundle
-from threefold.models.cp.model import CPResult, SweepRecord
+from threefold.models.cp.model import CPResult
+from threefold.models.fitloop import SweepRecord
 from threefold.models.tucker.hooi import HOOIResult
 from threefold.models.tucker.implicit import ImplicitTuckerResult
 from threefold.models.tucker.result import TuckerResult

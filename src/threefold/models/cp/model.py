@@ -24,7 +24,6 @@ datasets", ICDM 2008 (fold-in).
 from __future__ import annotations
 
 import time
-import warnings
 from typing import Callable, Sequence
 
 import numpy as np
@@ -35,8 +34,8 @@ from threefold.models.cp import kernels
 from threefold.core.checks import check_choice
 from threefold.core.params import (Param, ParamModel, ParamTable, STRING, STRINGS, callable_rule, choice_rule,
                                     dtype_rule, float_rule, int_rule, optional, seed_rule)
-from threefold.models.cp.result import CPResult, SweepRecord, mode_position
-from threefold.core.exceptions import ConvergenceWarning
+from threefold.models.cp.result import CPResult, mode_position
+from threefold.models.fitloop import SweepRecord, run_sweeps
 from threefold.models.initialize import initial_factors
 from threefold.core.scoring import FittedScorer
 from threefold.models.cp.structure import Structure, resolve_structure
@@ -178,29 +177,16 @@ def fit_cp(
     factors = initial_factors(tensor, active, init, dtype=dtype, rng=rng)
     with kernels.threads(n_threads):
         problem = als.make_problem(tensor, factors, active, reg=reg, update_modes=update_modes)
-        history = [SweepRecord(0, *als.loss_and_fit(problem), time.perf_counter() - start)]
-        loss_floor = 1e-12 * max(problem.sum_wp2, np.finfo(float).tiny)  # an exact fit has loss ~ 0
-        stop_reason = "max_sweeps"
-        for sweep in range(1, max_sweeps + 1):
-            start = time.perf_counter()
+        first = SweepRecord(0, *als.loss_and_fit(problem), time.perf_counter() - start)
+
+        def sweep():
             for n in update_modes:
                 als.update_mode(problem, n, cg_steps if solver == "cg" else 0)
-            record = SweepRecord(sweep, *als.loss_and_fit(problem), time.perf_counter() - start)
-            history.append(record)
-            if callback is not None and callback(record, _read_only_views(problem)):
-                stop_reason = "callback"
-                break
-            change = abs(history[-2].loss - record.loss) / max(abs(history[-2].loss), loss_floor)
-            if tol > 0 and change < tol:
-                stop_reason = "converged"
-                break
-    if stop_reason == "max_sweeps" and tol > 0:
-        warnings.warn(
-            f"fit_cp stopped after max_sweeps={max_sweeps} sweeps before the relative loss change fell "
-            f"below tol={tol:g}; raise max_sweeps or tol.",
-            ConvergenceWarning,
-            stacklevel=2,
-        )
+            return als.loss_and_fit(problem)
+
+        history, stop_reason = run_sweeps(sweep, first, max_sweeps=max_sweeps, tol=tol, callback=callback,
+                                          loss_floor=1e-12 * max(problem.sum_wp2, np.finfo(float).tiny),
+                                          state=lambda: _read_only_views(problem), owner=owner)
     weights, normalized, norms = _normalize(
         [problem.factor(n).copy() for n in range(tensor.ndim)], active, structure.component_terms()
     )

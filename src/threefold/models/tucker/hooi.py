@@ -30,7 +30,7 @@ import scipy.linalg
 
 from threefold.models.cp import kernels
 from threefold.core.checks import check_choice
-from threefold.models.cp.result import SweepRecord
+from threefold.models.fitloop import SweepRecord, run_sweeps
 from threefold.core.tensor import SparseTensor
 from threefold.models.tucker.result import (
     TuckerEstimator,
@@ -38,7 +38,7 @@ from threefold.models.tucker.result import (
     check_fit_parameters,
     check_fold_in,
     hosvd_factors,
-    run_sweeps,
+    read_only_model,
     tucker_params,
 )
 from threefold.models.tucker.kernels import build_fiber_tree, ttmc
@@ -192,11 +192,12 @@ def fit_hooi(
                 y = ttmc(tree, tensor.coords, values, factors, tensor.shape[n])
                 factors[n] = leading_vectors(y, rank[n], rng)
             state["core"] = _fold_core(factors[-1].T @ y, trees[-1].levels, rank)
-            return (*_loss_and_fit(norm_sq, state["core"]), state["core"], factors)
+            return _loss_and_fit(norm_sq, state["core"])
 
         first = SweepRecord(0, *_loss_and_fit(norm_sq, state["core"]), time.perf_counter() - start)
         history, stop_reason = run_sweeps(sweep, first, max_sweeps=max_sweeps, tol=tol, loss_floor=1e-12 * norm_sq,
-                                          callback=callback, owner=owner)
+                                          callback=callback, owner=owner,
+                                          state=lambda: read_only_model(state["core"], factors))
     return HOOIResult(
         core=state["core"].astype(dtype), factors=tuple(f.astype(dtype) for f in factors),
         mode_names=tensor.mode_names, vocabularies=tensor.vocabularies, history=tuple(history),

@@ -43,7 +43,7 @@ import scipy.linalg
 from threefold.models.cp import kernels
 from threefold.core.checks import check_choice
 from threefold.core.params import Param, choice_rule, float_rule, int_rule
-from threefold.models.cp.result import SweepRecord
+from threefold.models.fitloop import SweepRecord, run_sweeps
 from threefold.core.tensor import SparseTensor
 from threefold.models.tucker.result import (
     TuckerEstimator,
@@ -51,7 +51,7 @@ from threefold.models.tucker.result import (
     check_fit_parameters,
     check_fold_in,
     hosvd_factors,
-    run_sweeps,
+    read_only_model,
     tucker_params,
 )
 from threefold.models.tucker.kernels import FiberTree, build_fiber_tree, ttmc_core
@@ -378,12 +378,13 @@ def fit_implicit_tucker(
                 factors[n] = update_rows(tensor, n, state["core"], factors, reg, trees=trees)
             state["core"] = update_core(tensor, state["core"], factors, reg, solver=core_solver,
                                         cg_steps=core_cg_steps, trees=trees)
-            return (*implicit_loss(tensor, state["core"], factors, reg, trees=trees), state["core"], factors)
+            return implicit_loss(tensor, state["core"], factors, reg, trees=trees)
 
         first = SweepRecord(0, *implicit_loss(tensor, core, factors, reg, trees=trees), time.perf_counter() - start)
         loss_floor = 1e-12 * float(np.sum(tensor.stored_confidence * tensor.stored_preference**2))
         history, stop_reason = run_sweeps(sweep, first, max_sweeps=max_sweeps, tol=tol, loss_floor=loss_floor,
-                                          callback=callback, owner=owner)
+                                          callback=callback, owner=owner,
+                                          state=lambda: read_only_model(state["core"], factors))
     return ImplicitTuckerResult(
         core=state["core"].astype(dtype), factors=tuple(f.astype(dtype) for f in factors),
         mode_names=tensor.mode_names, vocabularies=tensor.vocabularies, history=tuple(history),

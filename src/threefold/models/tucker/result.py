@@ -17,8 +17,6 @@ how to read the core.
 
 from __future__ import annotations
 
-import time
-import warnings
 from dataclasses import dataclass
 from typing import Callable, Sequence
 
@@ -27,8 +25,8 @@ import numpy as np
 from threefold.core.checks import check_choice, check_int
 from threefold.core.params import (Param, ParamModel, ParamTable, callable_rule, choice_rule, dtype_rule, float_rule,
                                     int_rule, ints_rule, optional, seed_rule)
-from threefold.models.cp.result import STOP_REASONS, FactorResultMixin, SweepRecord, mode_position
-from threefold.core.exceptions import ConvergenceWarning
+from threefold.models.base import FactorResultMixin, mode_position
+from threefold.models.fitloop import STOP_REASONS, SweepRecord
 from threefold.models.initialize import leading_left_vectors
 from threefold.core.scoring import FittedScorer, Scorer, ScoreTerms, check_queries
 from threefold.core.tensor import SparseTensor
@@ -367,46 +365,3 @@ def check_fit_parameters(table: ParamTable, tensor, values: dict, owner: str) ->
     checked["rank"] = check_tucker_rank(values["rank"], tensor.shape, owner)
     checked["dtype"] = tensor.dtype if values["dtype"] is None else np.dtype(values["dtype"])
     return checked
-
-
-def run_sweeps(sweep: Callable[[], tuple], first: SweepRecord, *, max_sweeps: int, tol: float, loss_floor: float,
-               callback, owner: str) -> tuple[list[SweepRecord], str]:
-    """Run sweeps until convergence, the cap, or the callback says stop.
-
-    Parameters
-    ----------
-    sweep : callable
-        Does one sweep; returns ``(loss, fit, core, factors)``.
-    first : SweepRecord
-        The initial state (sweep 0).
-    max_sweeps, tol : int, float
-        Stop when ``|Δ loss| / max(|previous loss|, loss_floor) < tol`` (never with ``tol = 0``).
-    loss_floor : float
-        Keeps the relative change finite near an exact fit.
-    callback : callable or None
-        ``callback(record, (core, factors))``; True stops.
-    owner : str
-
-    Returns
-    -------
-    history : list of SweepRecord
-    stop_reason : {"converged", "max_sweeps", "callback"}
-    """
-    history = [first]
-    stop_reason = "max_sweeps"
-    for number in range(1, max_sweeps + 1):
-        start = time.perf_counter()
-        loss, fit, core, factors = sweep()
-        record = SweepRecord(number, loss, fit, time.perf_counter() - start)
-        history.append(record)
-        if callback is not None and callback(record, read_only_model(core, factors)):
-            stop_reason = "callback"
-            break
-        change = abs(history[-2].loss - loss) / max(abs(history[-2].loss), loss_floor, np.finfo(float).tiny)
-        if tol > 0 and change < tol:
-            stop_reason = "converged"
-            break
-    if stop_reason == "max_sweeps" and tol > 0:
-        warnings.warn(f"{owner} stopped after max_sweeps={max_sweeps} sweeps before the relative loss change fell "
-                      f"below tol={tol:g}; raise max_sweeps or tol.", ConvergenceWarning, stacklevel=3)
-    return history, stop_reason

@@ -1,0 +1,74 @@
+"""What every factor result shares: the fit summary, growing a mode, naming modes.
+
+Both :class:`threefold.models.cp.result.CPResult` and
+:class:`threefold.models.tucker.result.TuckerResult` mix this in.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from typing import Sequence
+
+import numpy as np
+
+from threefold.core.vocabulary import Vocabulary
+
+__all__ = ["FactorResultMixin", "mode_position"]
+
+
+class FactorResultMixin:
+    """What CP and Tucker results share: the fit summary of a ``history`` of
+    :class:`SweepRecord` (sweep 0 being the initial state) with a ``stop_reason``,
+    and growing a mode's ``factors`` and ``vocabularies`` (a frozen dataclass)."""
+
+    def with_rows(self, mode: int | str, rows: np.ndarray, labels: Sequence[str] | None = None):
+        """The model with rows appended to one mode (e.g. folded-in newcomers).
+
+        Parameters
+        ----------
+        mode : int or str
+        rows : ndarray of shape (n_new, n_columns of that mode's factor)
+            As returned by the model's fold-in.
+        labels : sequence of str, optional
+            Their labels; required when the mode has a vocabulary.
+        """
+        n = mode_position(self.mode_names, mode)
+        factors = list(self.factors)
+        factors[n] = np.concatenate([factors[n], np.asarray(rows, dtype=factors[n].dtype)], axis=0)
+        vocabularies = list(self.vocabularies)
+        if vocabularies[n] is not None:
+            if labels is None or len(labels) != len(rows):
+                raise ValueError(f"Mode {self.mode_names[n]!r} has a vocabulary: give one label per new row.")
+            vocabularies[n] = Vocabulary(vocabularies[n].labels + tuple(labels), name=vocabularies[n].name)
+        return replace(self, factors=tuple(factors), vocabularies=tuple(vocabularies))
+
+    @property
+    def n_sweeps(self) -> int:
+        """Sweeps run (the initial state not counted)."""
+        return len(self.history) - 1
+
+    @property
+    def converged(self) -> bool:
+        """True when the relative loss change fell below ``tol``."""
+        return self.stop_reason == "converged"
+
+    @property
+    def loss(self) -> float:
+        """Final loss."""
+        return self.history[-1].loss
+
+    @property
+    def fit(self) -> float:
+        """Final relative fit (weighted for implicit models)."""
+        return self.history[-1].fit
+
+
+def mode_position(mode_names: Sequence[str], mode: int | str) -> int:
+    """Position of a mode given by name or (possibly negative) position."""
+    if isinstance(mode, str):
+        if mode not in mode_names:
+            raise KeyError(f"No mode named {mode!r}; modes are {tuple(mode_names)}.")
+        return list(mode_names).index(mode)
+    if isinstance(mode, bool) or not isinstance(mode, (int, np.integer)) or not -len(mode_names) <= mode < len(mode_names):
+        raise IndexError(f"Mode {mode!r} out of range for a {len(mode_names)}-way model.")
+    return int(mode) % len(mode_names)
