@@ -194,7 +194,7 @@ def cmd_validate(args: argparse.Namespace) -> int:
 
 
 def cmd_simulate(args: argparse.Namespace) -> int:
-    from threefold.demo.simulate import simulate_site, site_truth, write_site
+    from threefold.demo.simulate import simulate_site, write_site
 
     started = time.perf_counter()
     site = simulate_site(n_events=args.n_events, random_state=args.seed)
@@ -214,38 +214,6 @@ def _contexts(names: Sequence[str], timezone: str, starts: str | None, labels: s
     return [parse_context(n, timezone=timezone, daypart_starts=day_starts, daypart_labels=day_labels) for n in names]
 
 
-def build_from_log(events_path, contexts, weighting, *, negatives, timezone, items=None, salt=None,
-                   position_propensity=False):
-    """Validate and load a log in one pass, estimate position propensities, build its tensor.
-
-    Shared by ``build`` and ``demo``: the log is read once. Rows the validation
-    counts as bad are dropped and counted, so the tensor never sees them.
-
-    Returns
-    -------
-    tensor, build report, position propensity (or None), validation report
-    """
-    from threefold.data.build import build_tensor
-    from threefold.data.propensity import PROPENSITY_COLUMNS, estimate_position_propensity
-    from threefold.data.validate import load_validated_events
-
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        events, validation = load_validated_events(events_path, items=items, timezone=timezone,
-                                                   hash_user_ids_salt=salt)
-        propensity = None
-        if set(PROPENSITY_COLUMNS) <= set(events.columns):
-            propensity = estimate_position_propensity(events)
-        elif position_propensity:
-            raise ValueError(f"--position-propensity needs the columns {list(PROPENSITY_COLUMNS)} in the log.")
-        tensor, report = build_tensor(
-            events, contexts, weighting=weighting, negatives=negatives,
-            click_propensity=propensity.ratios if position_propensity else None,
-        )
-    _print_warnings(caught)
-    return tensor, report, propensity, validation
-
-
 def _print_tensor_summary(tensor, report, propensity) -> None:
     print(f"tensor: {tensor}  ({tensor.nbytes / max(tensor.nnz, 1):.0f} bytes per stored cell)")
     print(f"  rows in {report.rows_in:,}; clicks {report.clicks:,}; impressions {report.impressions:,}; "
@@ -259,12 +227,14 @@ def _print_tensor_summary(tensor, report, propensity) -> None:
 
 def cmd_build(args: argparse.Namespace) -> int:
     from threefold.core.tensor_io import save_tensor
+    from threefold.pipeline.prepare import build_from_log
 
     contexts = _contexts(args.context, args.timezone or "UTC", args.daypart_starts, args.daypart_labels)
-    tensor, report, propensity, validation = build_from_log(
+    tensor, report, propensity, validation, caught = build_from_log(
         args.events, contexts, _weighting(args), negatives=args.negatives, timezone=args.timezone,
         salt=args.hash_user_ids_salt, position_propensity=args.position_propensity,
     )
+    _print_warnings(caught)
     for problem in validation.problems:
         print(f"warning: {problem.severity} in column {problem.column!r}: {problem.count:,} row(s) "
               f"({problem.code}); see `threefold validate`", file=sys.stderr)
@@ -283,6 +253,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from threefold.pipeline.experiment import summary_text, train
     from threefold.tracking.store import open_store
     from threefold.core.tensor_io import save_tensor
+    from threefold.pipeline.prepare import build_from_log
 
     out = Path(args.out)
     print(f"== 1. simulate an invented site ({args.n_events:,} log rows, seed {args.seed})")
@@ -294,9 +265,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
     p = site.params
     contexts = [Daypart(timezone=p.timezone, starts=tuple(float(s) for s in p.daypart_starts), labels=p.daypart_labels),
                 ColumnContext("device"), ColumnContext("page_tone")]
-    tensor, build_report, propensity, validation = build_from_log(
+    tensor, build_report, propensity, validation, caught = build_from_log(
         log_dir / "events.parquet", contexts, FeedbackWeighting(), negatives="skip_above", timezone=p.timezone,
         items=log_dir / "items.parquet")
+    _print_warnings(caught)
     print("   " + validation.to_text().replace("\n", "\n   "))
     if not validation.ok:
         return 1

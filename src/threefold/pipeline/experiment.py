@@ -96,8 +96,8 @@ def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> 
 
 def prepare_stage(config: ExperimentConfig, dataset: Dataset, stage_name: str) -> StageData:
     """Split the events and build the training tensor of the ``"validation"`` or ``"test"`` stage."""
-    from threefold.data.propensity import estimate_position_propensity
     from threefold.evaluation.splits import temporal_split
+    from threefold.pipeline.prepare import tensor_options
 
     split_cfg, build = config["split"], config["build"]
     if stage_name == "validation" and split_cfg["validation_window"] is None:
@@ -108,11 +108,10 @@ def prepare_stage(config: ExperimentConfig, dataset: Dataset, stage_name: str) -
                            test_window=split_cfg["test_window"])
     stage = split.selection_stage() if stage_name == "validation" else split.final_stage()
     contexts = config.contexts()
-    options = dict(weighting=config.weighting(), negatives=build["negatives"], dtype=np.dtype(build["dtype"]),
-                   drop_duplicates=build["drop_duplicates"])
-    if build["position_propensity"]:
-        options.update(click_propensity=estimate_position_propensity(stage.train).ratios,
-                       propensity_clip=build["propensity_clip"])
+    options, _ = tensor_options(stage.train, weighting=config.weighting(), negatives=build["negatives"],
+                                dtype=build["dtype"], drop_duplicates=build["drop_duplicates"],
+                                position_propensity=build["position_propensity"],
+                                propensity_clip=build["propensity_clip"])
     tensor, report = stage.train_tensor(contexts, **options)
     return StageData(stage=stage, tensor=tensor, build_report=report, contexts=contexts, build_options=options)
 
