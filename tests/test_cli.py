@@ -57,3 +57,22 @@ def test_demo_runs_end_to_end(tmp_path):
     for step in ("== 1.", "== 2.", "== 3.", "== 4."):
         assert step in result.stdout
     assert "models:/" in result.stdout  # logged models any MLflow client can load
+
+
+def test_models_lists_every_parameter_from_the_tables(tmp_path):
+    """`threefold models` prints what a [models.NAME] table may hold, read from the parameter tables."""
+    import json
+
+    from threefold.models.registry import MODELS
+
+    listing = run("models", "--json", cwd=tmp_path)
+    assert listing.returncode == 0, listing.stderr
+    tables = json.loads(listing.stdout)
+    assert set(tables) == set(MODELS)
+    for method, params in tables.items():
+        assert [p["name"] for p in params] == list(MODELS[method].params.names)
+    assert {p["name"]: p["default"] for p in tables["cp"]}["rank"] == 16
+    text = run("models", "hooi", cwd=tmp_path)
+    assert text.returncode == 0 and "rank = 8" in text.stdout and "callback" in text.stdout
+    bad = run("models", "nope", cwd=tmp_path)
+    assert bad.returncode == 1 and "Unknown model method 'nope'; methods are cp" in bad.stderr

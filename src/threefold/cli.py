@@ -81,6 +81,13 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--out", default="threefold-demo", help="working folder (default ./threefold-demo)")
     demo.add_argument("--events", dest="n_events", type=int, default=60_000)
     demo.add_argument("--seed", type=int, default=7)
+    models = commands.add_parser(
+        "models", help="list the model methods and their parameters (the keys of a [models.NAME] table)",
+        description="Every model method with its parameters, defaults and meaning, read from the models' "
+                    "parameter tables. Example: threefold models cp",
+    )
+    models.add_argument("method", nargs="?", default=None, help="one method (default: all)")
+    models.add_argument("--json", action="store_true", help="print the tables as JSON")
     _add_tracking_commands(commands)
     return parser
 
@@ -146,6 +153,24 @@ def cmd_sweep(args: argparse.Namespace) -> int:
     print(report.trials.to_string(index=False))
     print(f"best trial: {report.best_run_id or 'none finished'} (validation {report.metric}); "
           f"parent run {report.parent_run_id}")
+    return 0
+
+
+def cmd_models(args: argparse.Namespace) -> int:
+    from threefold.models.registry import MODELS, param_table
+
+    methods = [args.method] if args.method else list(MODELS)
+    tables = {m: param_table(m) for m in methods}  # an unknown method is a clear error naming the methods
+    if args.json:
+        print(json.dumps({m: [{"name": p.name, "default": p.default, "help": p.doc,
+                               "configurable": p.config_rule is not None} for p in table]
+                          for m, table in tables.items()}, indent=2, default=str))
+        return 0
+    for method, table in tables.items():
+        print(f"[models.NAME] method = \"{method}\"   ({table.owner})")
+        for line in table.help_lines():
+            print(f"    {line}")
+        print()
     return 0
 
 
@@ -331,7 +356,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     # (MLflow's own setting, read when MLflow is imported; a user's explicit choice wins).
     os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
     handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
-                "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs}
+                "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models}
     try:
         return handlers[args.command](args)
     except (ValueError, KeyError, FileNotFoundError, MemoryError) as error:
