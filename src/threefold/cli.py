@@ -39,6 +39,8 @@ def _weighting(args: argparse.Namespace):
 
 
 def _parser() -> argparse.ArgumentParser:
+    from threefold.data.events import DEFAULT_CHUNK_ROWS
+
     parser = argparse.ArgumentParser(
         prog="threefold",
         description="Context-aware recommendation from implicit feedback: logs to tensors, models, evaluation.",
@@ -50,7 +52,8 @@ def _parser() -> argparse.ArgumentParser:
     validate.add_argument("events", help="CSV file, Parquet file or folder of Parquet files")
     validate.add_argument("--items", help="items catalog to check and to check the log against")
     validate.add_argument("--timezone", help="IANA zone of timestamps written without a UTC offset")
-    validate.add_argument("--chunk-rows", dest="chunk_rows", type=int, default=1_000_000)
+    validate.add_argument("--chunk-rows", dest="chunk_rows", type=int, default=DEFAULT_CHUNK_ROWS,
+                          help=f"rows read per chunk; memory grows with it, the report does not (default {DEFAULT_CHUNK_ROWS:,})")
     validate.add_argument("--strict", action="store_true", help="treat data-quality warnings as errors")
     validate.add_argument("--json", action="store_true", help="print the report as JSON")
 

@@ -44,11 +44,13 @@ from threefold.data.context import ColumnContext, CrossedContext, parse_context,
 from threefold.models.model_io import load_model
 from threefold.ranking.selection import top_k
 
-__all__ = ["Recommender", "OUTPUT_COLUMNS", "context_specs", "raw_columns"]
+__all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "context_specs", "raw_columns"]
 
 OUTPUT_COLUMNS = ("request_id", "user_id", "item_id", "rank", "score", "status")
 _FLAG_ORDER = ("unknown_user", "unknown_context", "unknown_item", "no_candidates")
 _BLOCK_CELLS = 1 << 22
+#: List length when a request or a caller names none (the one place this default lives).
+DEFAULT_K = 10
 
 
 def context_specs(serving: dict) -> list:
@@ -132,7 +134,7 @@ class Recommender:
         return out
 
     # ------------------------------------------------------------------ ranking
-    def recommend(self, requests: pd.DataFrame, k: int = 10) -> pd.DataFrame:
+    def recommend(self, requests: pd.DataFrame, k: int = DEFAULT_K) -> pd.DataFrame:
         """Top ``k`` items of every request; see the module docstring.
 
         Parameters

@@ -20,7 +20,7 @@ import mlflow
 import numpy as np
 import pandas as pd
 
-from threefold.ranking.recommender import OUTPUT_COLUMNS, Recommender, context_specs, raw_columns
+from threefold.ranking.recommender import DEFAULT_K, OUTPUT_COLUMNS, Recommender, context_specs, raw_columns
 from threefold.data.context import spec_name
 
 __all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for", "pyfunc_entry_path", "log_pyfunc"]
@@ -47,7 +47,7 @@ def signature_for(serving: dict):
     inputs += [ColSpec("string", name, required=False) for name in dict.fromkeys(optional)]
     outputs = [ColSpec("string", "request_id"), ColSpec("string", "user_id"), ColSpec("string", "item_id", required=False),
                ColSpec("long", "rank"), ColSpec("double", "score", required=False), ColSpec("string", "status")]
-    return ModelSignature(inputs=Schema(inputs), outputs=Schema(outputs), params=ParamSchema([ParamSpec("k", "long", 10)]))
+    return ModelSignature(inputs=Schema(inputs), outputs=Schema(outputs), params=ParamSchema([ParamSpec("k", "long", DEFAULT_K)]))
 
 
 def log_pyfunc(store, result, serving: dict, *, published: np.ndarray | None = None, expires: np.ndarray | None = None,
@@ -101,5 +101,5 @@ class RecommenderPyfunc(mlflow.pyfunc.PythonModel):
         self.recommender = Recommender.from_folder(context.artifacts["model"])
 
     def predict(self, context, model_input: pd.DataFrame, params: dict | None = None) -> pd.DataFrame:
-        k = (params or {}).get("k", 10)
+        k = (params or {}).get("k", DEFAULT_K)
         return self.recommender.recommend(model_input, k=int(k) if isinstance(k, (int, np.integer)) else k)
