@@ -141,7 +141,7 @@ def test_the_logged_pyfunc_model_ranks_requests_from_another_process(model, tmp_
     assert child.returncode == 0, child.stderr[-3000:]
     answer = json.loads(child.stdout.strip().splitlines()[-1])
     served = pd.DataFrame(answer["rows"])
-    assert answer["params"] == ["k"]
+    assert answer["params"] == ["k", "explain"]  # reasons behind params={"explain": ...}
     assert served.groupby("request_id").size().to_dict() == {"p": 3, "q": 3}
     local = Recommender(result, specs).recommend(requests, k=3)
     assert list(served.columns) == list(OUTPUT_COLUMNS)

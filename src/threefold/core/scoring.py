@@ -132,6 +132,22 @@ class Scorer(Ranker):
         return resolved.bind(np.asarray(queries.users, dtype=object), contexts,
                              np.asarray(queries.items.labels, dtype=object))
 
+    def reason_groups(self) -> tuple[tuple[str, ...], np.ndarray]:
+        """How the columns of ``Q`` and ``V`` group into named reasons.
+
+        ``score = Σ_g Σ_{r in g} Q[r] V[i, r] (+ bias)``: each group's partial sum
+        is one reason term, and the terms add up to the score without the bias.
+
+        Returns
+        -------
+        labels : tuple of str
+            One label per group.
+        group : ndarray of shape (R',), int64
+            The group of each column.
+        """
+        width = np.asarray(self.item_matrix()).shape[1]
+        return tuple(f"component {r}" for r in range(width)), np.arange(width, dtype=np.int64)
+
     def owned_columns(self, mode: int) -> np.ndarray:
         """ndarray of shape (R',), bool: the factor columns a mode owns (all of them unless a structure says otherwise)."""
         return np.ones(np.asarray(self.fitted().factors[mode]).shape[1], dtype=bool)
@@ -209,6 +225,9 @@ class FittedScorer(Scorer):
 
     def owned_columns(self, mode: int) -> np.ndarray:
         return self._fitted().owned_columns(mode)
+
+    def reason_groups(self) -> tuple[tuple[str, ...], np.ndarray]:
+        return self._fitted().reason_groups()
 
     @property
     def shape(self) -> tuple[int, ...]:

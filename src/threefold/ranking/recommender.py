@@ -38,7 +38,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from threefold.core.checks import check_int
+from threefold.core.checks import check_choice, check_int
 from threefold.core.resolve import FALLBACK_LABEL, ResolvedScorer
 from threefold.data.context import ColumnContext, CrossedContext, parse_context, spec_name
 from threefold.models.model_io import load_model
@@ -49,6 +49,8 @@ __all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "context_specs", "raw_c
 OUTPUT_COLUMNS = ("request_id", "user_id", "item_id", "rank", "score", "status")
 _FLAG_ORDER = ("unknown_user", "unknown_context", "unknown_item", "no_candidates")
 _BLOCK_CELLS = 1 << 22
+#: What ``explain`` may ask for: no reasons, the three largest, all of them.
+EXPLAIN_CHOICES = ("none", "top3", "all")
 #: List length when a request or a caller names none (the one place this default lives).
 DEFAULT_K = 10
 
@@ -90,6 +92,7 @@ class Recommender:
         self.resolved = ResolvedScorer(result)
         scorer = self.resolved.scorer
         self.item_factors = np.asarray(scorer.item_matrix(), dtype=np.float64)
+        self.reason_labels, self.reason_group = result.reason_groups()
         bias = scorer.item_bias()
         self.item_bias = None if bias is None else np.asarray(bias, dtype=np.float64)
         n_items = len(self.items)
@@ -134,7 +137,7 @@ class Recommender:
         return out
 
     # ------------------------------------------------------------------ ranking
-    def recommend(self, requests: pd.DataFrame, k: int = DEFAULT_K) -> pd.DataFrame:
+    def recommend(self, requests: pd.DataFrame, k: int = DEFAULT_K, explain: str = "none") -> pd.DataFrame:
         """Top ``k`` items of every request; see the module docstring.
 
         Parameters
@@ -143,12 +146,16 @@ class Recommender:
             Rows with ``request_id`` and ``user_id``, optional ``timestamp``,
             context columns and ``item_id``.
         k : int, default=10
+        explain : {"none", "top3", "all"}, default="none"
+            Reason columns to add (:meth:`reasons`): none, the three largest, or every reason.
 
         Returns
         -------
-        DataFrame with the columns of :data:`OUTPUT_COLUMNS`, requests in order of first appearance.
+        DataFrame with the columns of :data:`OUTPUT_COLUMNS` (then ``reason_1``,
+        ``reason_1_share``, ... with ``explain``), requests in order of first appearance.
         """
         k = check_int("k", k, low=1, owner="predict")
+        check_choice("explain", explain, EXPLAIN_CHOICES, owner="predict")
         missing = [c for c in ("request_id", "user_id") if c not in requests.columns]
         if missing:
             raise ValueError(f"The requests need the column(s) {missing}; they have {list(requests.columns)}.")
@@ -177,7 +184,7 @@ class Recommender:
         for flag in _FLAG_ORDER:
             status = np.where(flags[flag], np.where(status == "", flag, status + ";" + flag), status)
         status[status == ""] = "ok"
-        return pd.DataFrame({
+        out = pd.DataFrame({
             "request_id": np.asarray(request_ids, dtype=object)[request],
             "user_id": first["user_id"].astype(object).where(first["user_id"].notna(), None).to_numpy()[request],
             "item_id": ranked["item_id"].to_numpy(dtype=object),
@@ -185,6 +192,56 @@ class Recommender:
             "score": ranked["score"].to_numpy(dtype=np.float64),
             "status": status.astype(str),
         }, columns=list(OUTPUT_COLUMNS))
+        if explain != "none":
+            codes = ranked["item_code"].to_numpy(dtype=np.int64)
+            reasons = self.reasons(queries[request], codes, top=3 if explain == "top3" else None)
+            out = pd.concat([out, reasons], axis=1)
+        return out
+
+    def reasons(self, queries: np.ndarray, item_codes: np.ndarray, top: int | None = 3) -> pd.DataFrame:
+        """The reason terms of scored (query, item) pairs, largest first, as flat columns.
+
+        Every score splits into one term per reason group of the model
+        (:meth:`threefold.core.scoring.Scorer.reason_groups`: a CP structure's
+        terms, a Tucker model's item factor columns); the terms add up to the
+        score minus any item bias. ``reason_j_share`` is the term divided by the
+        sum of the absolute terms, so the shares of a score made only of
+        positive terms add up to 1, and a negative term shows as a negative share.
+
+        Parameters
+        ----------
+        queries : ndarray of shape (n, R'), float64
+            The query row of each pair.
+        item_codes : ndarray of shape (n,), int64
+            The model's item index of each pair (-1: unknown item, zero row, no reasons).
+        top : int or None, default=3
+            How many reasons per pair (None: all), ordered by absolute term.
+
+        Returns
+        -------
+        DataFrame with columns ``reason_1, reason_1_term, reason_1_share, ...``
+            ``reason_j`` names the group (None past the groups a pair has).
+        """
+        labels, group = self.reason_labels, self.reason_group
+        n_groups = len(labels)
+        items = np.where(item_codes[:, None] >= 0, self.item_factors[np.maximum(item_codes, 0)], 0.0)
+        products = np.asarray(queries, dtype=np.float64) * items
+        terms = np.zeros((products.shape[0], n_groups))
+        for g in range(n_groups):
+            terms[:, g] = products[:, group == g].sum(axis=1)
+        count = n_groups if top is None else min(top, n_groups)
+        order = np.argsort(-np.abs(terms), axis=1, kind="stable")[:, :count]
+        chosen = np.take_along_axis(terms, order, axis=1)
+        magnitude = np.abs(terms).sum(axis=1, keepdims=True)
+        shares = np.divide(chosen, magnitude, out=np.zeros_like(chosen), where=magnitude > 0)
+        names = np.asarray(labels, dtype=object)[order]
+        names[magnitude[:, 0] == 0] = None
+        columns = {}
+        for j in range(count):
+            columns[f"reason_{j + 1}"] = names[:, j]
+            columns[f"reason_{j + 1}_term"] = chosen[:, j]
+            columns[f"reason_{j + 1}_share"] = shares[:, j]
+        return pd.DataFrame(columns)
 
     def _rank_candidates(self, frame, request_codes, item_ids, queries, with_candidates, k) -> pd.DataFrame:
         """Rank each request's own candidate rows (duplicates kept once, ties in the order given)."""
@@ -210,7 +267,8 @@ class Recommender:
         r, c = np.nonzero(best >= 0)
         chosen = pair_index[r, best[r, c]]
         return pd.DataFrame({"request": requests[r], "item_id": pairs["item_id"].to_numpy(dtype=object)[chosen],
-                             "rank": c + 1, "score": scores[chosen], "unknown_item": ~known[chosen]})
+                             "rank": c + 1, "score": scores[chosen], "unknown_item": ~known[chosen],
+                             "item_code": codes[chosen]})
 
     def _rank_catalog(self, first: pd.DataFrame, queries: np.ndarray, requests: np.ndarray, k: int) -> pd.DataFrame:
         """Rank the items live at each request's time (all items without a timestamp), in blocks."""
@@ -229,9 +287,10 @@ class Recommender:
             best = top_k(scores, min(k, n_items), live)
             r, c = np.nonzero(best >= 0)
             out.append(pd.DataFrame({"request": sel[r], "item_id": np.asarray(self.items.labels, dtype=object)[best[r, c]],
-                                     "rank": c + 1, "score": scores[r, best[r, c]], "unknown_item": False}))
+                                     "rank": c + 1, "score": scores[r, best[r, c]], "unknown_item": False,
+                                     "item_code": best[r, c]}))
             empty = sel[best[:, 0] < 0]
             if empty.size:
                 out.append(pd.DataFrame({"request": empty, "item_id": None, "rank": 0, "score": np.nan,
-                                         "unknown_item": False}))
+                                         "unknown_item": False, "item_code": -1}))
         return pd.concat(out, ignore_index=True)

@@ -47,7 +47,7 @@ def signature_for(serving: dict):
     inputs += [ColSpec("string", name, required=False) for name in dict.fromkeys(optional)]
     outputs = [ColSpec("string", "request_id"), ColSpec("string", "user_id"), ColSpec("string", "item_id", required=False),
                ColSpec("long", "rank"), ColSpec("double", "score", required=False), ColSpec("string", "status")]
-    return ModelSignature(inputs=Schema(inputs), outputs=Schema(outputs), params=ParamSchema([ParamSpec("k", "long", DEFAULT_K)]))
+    return ModelSignature(inputs=Schema(inputs), outputs=Schema(outputs), params=ParamSchema([ParamSpec("k", "long", DEFAULT_K), ParamSpec("explain", "string", "none")]))
 
 
 def log_pyfunc(store, result, serving: dict, *, published: np.ndarray | None = None, expires: np.ndarray | None = None,
@@ -102,4 +102,6 @@ class RecommenderPyfunc(mlflow.pyfunc.PythonModel):
 
     def predict(self, context, model_input: pd.DataFrame, params: dict | None = None) -> pd.DataFrame:
         k = (params or {}).get("k", DEFAULT_K)
-        return self.recommender.recommend(model_input, k=int(k) if isinstance(k, (int, np.integer)) else k)
+        explain = (params or {}).get("explain", "none")
+        return self.recommender.recommend(model_input, k=int(k) if isinstance(k, (int, np.integer)) else k,
+                                          explain=explain)

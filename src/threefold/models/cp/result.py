@@ -170,6 +170,12 @@ class CPResult(FactorResultMixin, Scorer):
         return cls(weights=arrays["weights"], column_norms=arrays["column_norms"],
                    structure=Structure.parse(meta["structure"], rank=1), **common)
 
+    def reason_groups(self) -> tuple[tuple[str, ...], np.ndarray]:
+        """One reason per structure term, named by the modes it spans (``"user*item*daypart"``)."""
+        names = ["*".join(term.modes) for term in self.structure.terms]
+        labels = tuple(name if names.count(name) == 1 else f"{name} ({j + 1})" for j, name in enumerate(names))
+        return labels, self.structure.component_terms().astype(np.int64)
+
     def owned_columns(self, mode: int) -> np.ndarray:
         """ndarray of shape (R,), bool: the components whose term spans ``mode``."""
         return self.structure.active_mask(self.mode_names)[mode]

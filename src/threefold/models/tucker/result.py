@@ -104,6 +104,11 @@ class TuckerResult(FactorResultMixin, Scorer):
     def __iter__(self):
         return iter((self.core, self.factors))
 
+    def reason_groups(self) -> tuple[tuple[str, ...], np.ndarray]:
+        """One reason per item factor column (``"item factor 2"``): the core contracted with the query's rows."""
+        width = self.core.shape[1]
+        return tuple(f"item factor {r}" for r in range(width)), np.arange(width, dtype=np.int64)
+
     def file_contents(self) -> tuple[str, dict[str, np.ndarray], dict]:
         """``(model type, arrays, metadata)`` this result adds to a model file (:mod:`threefold.models.model_io`)."""
         return "tucker", {"core": self.core}, {"method": self.method}
