@@ -7,13 +7,35 @@ Both :class:`threefold.models.cp.result.CPResult` and
 from __future__ import annotations
 
 from dataclasses import replace
-from typing import Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 
+from threefold.core.params import ParamModel
+from threefold.core.scoring import FittedScorer
 from threefold.core.vocabulary import Vocabulary
 
-__all__ = ["FactorResultMixin", "mode_position"]
+__all__ = ["FactorEstimator", "FactorResultMixin", "mode_position"]
+
+
+class FactorEstimator(ParamModel, FittedScorer):
+    """An estimator around a fit function: parameters from its table, fitted state ending in ``_``.
+
+    A subclass names its fit function (``_fit_function``), its parameter table
+    (``params``, the fit function's keyword parameters; checked by a test) and
+    the result attributes it exposes as ``<name>_`` (``_result_attributes``).
+    """
+
+    _fit_function: Callable
+    _result_attributes: tuple[str, ...] = ("factors", "history", "n_sweeps", "converged")
+
+    def fit(self, tensor) -> "FactorEstimator":
+        """Fit to a tensor; returns self."""
+        result = type(self)._fit_function(tensor, **self.get_params())
+        self.result_ = result
+        for name in type(self)._result_attributes:
+            setattr(self, f"{name}_", getattr(result, name))
+        return self
 
 
 class FactorResultMixin:

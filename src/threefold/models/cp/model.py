@@ -32,12 +32,12 @@ from threefold.models.cp import als
 
 from threefold.models.cp import kernels
 from threefold.core.checks import check_choice
-from threefold.core.params import (Param, ParamModel, ParamTable, STRING, STRINGS, callable_rule, choice_rule,
+from threefold.core.params import (Param, ParamTable, STRING, STRINGS, callable_rule, choice_rule,
                                     dtype_rule, float_rule, int_rule, optional, seed_rule)
 from threefold.models.cp.result import CPResult, mode_position
 from threefold.models.fitloop import SweepRecord, run_sweeps
 from threefold.models.initialize import initial_factors
-from threefold.core.scoring import FittedScorer
+from threefold.models.base import FactorEstimator
 from threefold.models.cp.structure import Structure, resolve_structure
 from threefold.core.tensor import SparseTensor
 
@@ -264,7 +264,7 @@ def fold_in(result: CPResult, tensor: SparseTensor, mode: int | str, *, n_thread
 
 
 # ---------------------------------------------------------------------- estimator
-class CPModel(ParamModel, FittedScorer):
+class CPModel(FactorEstimator):
     """Estimator around :func:`fit_cp`; parameters as there (:data:`CP_PARAMS`), fitted state ending in ``_``.
 
     Attributes
@@ -279,18 +279,8 @@ class CPModel(ParamModel, FittedScorer):
     """
 
     params = CP_PARAMS
-
-    def fit(self, tensor: SparseTensor) -> "CPModel":
-        """Fit to a tensor; returns self."""
-        result = fit_cp(tensor, **self.get_params())
-        self.result_ = result
-        self.weights_ = result.weights
-        self.factors_ = result.factors
-        self.structure_ = result.structure
-        self.history_ = result.history
-        self.n_sweeps_ = result.n_sweeps
-        self.converged_ = result.converged
-        return self
+    _fit_function = staticmethod(fit_cp)
+    _result_attributes = ("weights", "factors", "structure", "history", "n_sweeps", "converged")
 
     def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
         """Rows for new users, items or context levels; see :func:`fold_in`."""

@@ -18,17 +18,17 @@ how to read the core.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable, Sequence
+from typing import Sequence
 
 import numpy as np
 
 from threefold.core.checks import check_choice, check_int
-from threefold.core.params import (Param, ParamModel, ParamTable, callable_rule, choice_rule, dtype_rule, float_rule,
+from threefold.core.params import (Param, ParamTable, callable_rule, choice_rule, dtype_rule, float_rule,
                                     int_rule, ints_rule, optional, seed_rule)
-from threefold.models.base import FactorResultMixin, mode_position
+from threefold.models.base import FactorEstimator, FactorResultMixin, mode_position
 from threefold.models.fitloop import STOP_REASONS, SweepRecord
 from threefold.models.initialize import leading_left_vectors
-from threefold.core.scoring import FittedScorer, Scorer, ScoreTerms, check_queries
+from threefold.core.scoring import Scorer, ScoreTerms, check_queries
 from threefold.core.tensor import SparseTensor
 from threefold.core.vocabulary import Vocabulary
 
@@ -251,7 +251,7 @@ def core_slice(result: TuckerResult, levels: dict[int, int]) -> np.ndarray:
     return out
 
 
-class TuckerEstimator(ParamModel, FittedScorer):
+class TuckerEstimator(FactorEstimator):
     """Shared plumbing of the Tucker estimators: parameters, fit, fitted state, scoring by delegation.
 
     A subclass names its fit function in ``_fit_function`` and its parameter
@@ -267,18 +267,7 @@ class TuckerEstimator(ParamModel, FittedScorer):
     converged_ : bool
     """
 
-    _fit_function: Callable
-
-    def fit(self, tensor: SparseTensor) -> "TuckerEstimator":
-        """Fit to a tensor; returns self."""
-        result = type(self)._fit_function(tensor, **self.get_params())
-        self.result_ = result
-        self.core_ = result.core
-        self.factors_ = result.factors
-        self.history_ = result.history
-        self.n_sweeps_ = result.n_sweeps
-        self.converged_ = result.converged
-        return self
+    _result_attributes = ("core", "factors", "history", "n_sweeps", "converged")
 
 
 def _tucker_init_rule(*choices: str):
