@@ -1,4 +1,4 @@
-"""Specifications of top-K ranking and the per-query accuracy metrics."""
+"""Specifications of the per-query accuracy metrics (top-k itself: tests/test_topk.py)."""
 
 import numpy as np
 import pytest
@@ -7,18 +7,7 @@ from numpy.testing import assert_allclose, assert_array_equal
 from sklearn.metrics import ndcg_score
 
 from threefold.evaluation.metrics import graded_ndcg, ranked_gains, ranking_metrics
-from threefold.ranking.selection import top_k, top_k_from_factors
-
-
-def slow_top_k(scores, k, mask=None):
-    """Reference: sort the valid candidates by (score descending, index ascending)."""
-    q, n = scores.shape
-    out = np.full((q, k), -1)
-    for i in range(q):
-        valid = [j for j in range(n) if (mask is None or mask[i, j]) and scores[i, j] > -np.inf]
-        best = sorted(valid, key=lambda j: (-scores[i, j], j))[:k]
-        out[i, : len(best)] = best
-    return out
+from threefold.ranking.topk import top_k
 
 
 def slow_metrics(ranked, relevance, k):
@@ -43,87 +32,6 @@ def slow_metrics(ranked, relevance, k):
         ap = sum(sum(hits[: i + 1]) / (i + 1) * hits[i] for i in range(k))
         out["ap"].append(ap / min(k, n_rel))
     return {name: np.array(v) for name, v in out.items()}
-
-
-# ---------------------------------------------------------------- top-K ranking
-def test_top_k_matches_slow_reference_with_ties_masks_and_inf():
-    rng = np.random.default_rng(0)
-    scores = rng.integers(0, 4, size=(60, 12)).astype(np.float64)  # many ties
-    scores[rng.random(scores.shape) < 0.1] = -np.inf
-    mask = rng.random(scores.shape) < 0.7
-    for k in (1, 3, 5, 12, 15):
-        assert_array_equal(top_k(scores, k), slow_top_k(scores, k))
-        assert_array_equal(top_k(scores, k, candidate_mask=mask), slow_top_k(scores, k, mask))
-
-
-def test_top_k_on_wide_rows_matches_slow_reference():
-    # Rows wide enough for the prefilter (>= 64 k columns), including the worst case for the
-    # strided sample (scores rising with the index) and ties at the threshold.
-    rng = np.random.default_rng(5)
-    n = 700
-    scores = rng.integers(0, 50, size=(30, n)).astype(np.float32)
-    scores[0] = np.arange(n)
-    scores[1] = 0.0
-    scores[2, ::3] = -np.inf
-    mask = rng.random(scores.shape) < 0.9
-    mask[3, 5:] = False  # fewer than k candidates
-    for k in (1, 4, 10):
-        assert_array_equal(top_k(scores, k), slow_top_k(scores, k))
-        assert_array_equal(top_k(scores, k, candidate_mask=mask), slow_top_k(scores, k, mask))
-    wide_nan = np.zeros((2, n))
-    wide_nan[1, 11] = np.nan
-    with pytest.raises(ValueError, match="NaN"):
-        top_k(wide_nan, 3)
-
-
-def test_top_k_breaks_ties_by_lower_item_index():
-    scores = np.array([[0.5, 0.9, 0.5, 0.9, 0.1, 0.5]])
-    assert_array_equal(top_k(scores, 4), [[1, 3, 0, 2]])
-    assert_array_equal(top_k(np.zeros((1, 5)), 3), [[0, 1, 2]])
-
-
-def test_top_k_never_ranks_masked_or_minus_inf_candidates():
-    scores = np.array([[3.0, -np.inf, 2.0, 1.0]])
-    mask = np.array([[True, True, False, True]])
-    assert_array_equal(top_k(scores, 4, candidate_mask=mask), [[0, 3, -1, -1]])
-
-
-def test_top_k_rejects_bad_input():
-    with pytest.raises(ValueError, match="NaN"):
-        top_k(np.array([[1.0, np.nan, 0.0]]), 2)
-    with pytest.raises(ValueError, match="'k' parameter of top_k must be an int"):
-        top_k(np.zeros((2, 3)), 0)
-    with pytest.raises(ValueError, match="candidate_mask must be a bool array"):
-        top_k(np.zeros((2, 3)), 1, candidate_mask=np.ones((2, 3)))
-    with pytest.raises(ValueError, match="2-D float array"):
-        top_k(np.zeros((2, 3), dtype=int), 1)
-
-
-def test_top_k_from_factors_equals_top_k_of_the_full_score_matrix():
-    rng = np.random.default_rng(1)
-    query, items = rng.normal(size=(23, 4)), rng.normal(size=(17, 4))
-    bias = rng.normal(size=17)
-    mask = rng.random((23, 17)) < 0.5
-    full = query @ items.T + bias
-    for block in (1, 5, 64):
-        assert_array_equal(top_k_from_factors(query, items, 6, item_bias=bias, block_size=block), top_k(full, 6))
-        assert_array_equal(
-            top_k_from_factors(query, items, 6, item_bias=bias, candidates=mask, block_size=block),
-            top_k(full, 6, candidate_mask=mask),
-        )
-        assert_array_equal(
-            top_k_from_factors(query, items, 6, item_bias=bias, candidates=sp.csr_array(mask), block_size=block),
-            top_k(full, 6, candidate_mask=mask),
-        )
-
-
-def test_top_k_from_factors_rejects_mismatched_shapes():
-    with pytest.raises(ValueError, match="must share R"):
-        top_k_from_factors(np.zeros((2, 3)), np.zeros((4, 2)), 1)
-    with pytest.raises(ValueError, match="candidates must have shape"):
-        top_k_from_factors(np.zeros((2, 3)), np.zeros((4, 3)), 1, candidates=np.ones((2, 3), dtype=bool))
-    with pytest.raises(ValueError, match="item_bias must have shape"):
-        top_k_from_factors(np.zeros((2, 3)), np.zeros((4, 3)), 1, item_bias=np.zeros(3))
 
 
 # ---------------------------------------------------------------- NDCG

@@ -11,7 +11,7 @@ import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 
 from threefold.data.context import Daypart
-from threefold.tracking.pyfunc import OUTPUT_COLUMNS, Recommender, log_pyfunc
+from threefold.tracking.pyfunc import Recommender, log_pyfunc
 from threefold.tracking.store import open_store
 
 from _tracking import SERVING, child_env, tiny_cp
@@ -40,8 +40,11 @@ def test_k_rows_per_request_in_the_models_order(model):
     result, specs = model
     requests = pd.DataFrame({"request_id": ["r1", "r2", "r3"], "user_id": ["u01", "u05", "u11"],
                              "timestamp": [T0, T0 + 5 * 3600, T0 + 13 * 3600], "device": ["mobile", "desktop", "mobile"]})
-    out = Recommender(result, specs).recommend(requests, k=3)
-    assert list(out.columns) == list(OUTPUT_COLUMNS)
+    recommender = Recommender(result, specs)
+    out = recommender.recommend(requests, k=3)
+    assert list(out.columns) == ["request_id", "user_id", "rank", "item_id", "score", "daypart", "device",
+                                 "user_status", "item_status", "status"] == recommender.output_columns()
+    assert set(out["user_status"]) == set(out["item_status"]) == {"known"}
     assert out.groupby("request_id").size().to_dict() == {"r1": 3, "r2": 3, "r3": 3}
     for _, request in requests.iterrows():
         got = out[out["request_id"] == request["request_id"]]
@@ -144,7 +147,7 @@ def test_the_logged_pyfunc_model_ranks_requests_from_another_process(model, tmp_
     assert answer["params"] == ["k", "explain"]  # reasons behind params={"explain": ...}
     assert served.groupby("request_id").size().to_dict() == {"p": 3, "q": 3}
     local = Recommender(result, specs).recommend(requests, k=3)
-    assert list(served.columns) == list(OUTPUT_COLUMNS)
+    assert list(served.columns) == list(local.columns)
     assert_array_equal(served["item_id"], local["item_id"])
     assert_allclose(served["score"], local["score"], rtol=1e-12)
     model_dir = tmp_path / "store" / "artifacts" / "models" / uri.removeprefix("models:/") / "artifacts"

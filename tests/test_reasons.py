@@ -72,9 +72,19 @@ def test_tucker_scores_equal_tensorly_reconstruction_and_reasons_sum_to_them():
     out = Recommender(result, specs).recommend(requests, k=5, explain="all")
     dense = tl.tucker_to_tensor((result.core, list(result.factors)))  # reference library
     assert_allclose(out["score"], dense[tuple(_cells(result, specs, out, requests))], rtol=1e-10, atol=1e-12)
-    terms = out[[f"reason_{j}_term" for j in range(1, 4)]].to_numpy()
+    n_entries = 3 * 3 * 2 * 2
+    terms = out[[f"reason_{j}_term" for j in range(1, n_entries + 1)]].to_numpy()
     assert_allclose(terms.sum(axis=1), out["score"], rtol=1e-6, atol=1e-9)
-    assert set(out["reason_1"]) <= {"item factor 0", "item factor 1", "item factor 2"}
+    # each reason is one core entry G[r] * prod_n F_n[cell_n, r_n] (Tucker 1966's model, term by term)
+    cells = _cells(result, specs, out, requests)
+    for (_, row), cell in zip(out.iterrows(), cells.T):
+        for j in (1, 2, n_entries):
+            r = [int(part.split(" ")[-1]) for part in row[f"reason_{j}"].removeprefix("core ").split(" × ")]
+            expected = result.core[tuple(r)] * np.prod([result.factors[n][cell[n], r[n]] for n in range(4)])
+            assert_allclose(row[f"reason_{j}_term"], expected, rtol=1e-10, atol=1e-14)
+    assert out["reason_1"].str.match(r"core user \d × item \d × daypart \d × device \d").all()
+    top3 = Recommender(result, specs).recommend(requests, k=5, explain="top3")
+    assert_allclose(top3["reason_1_term"], out["reason_1_term"], rtol=1e-12)
 
 
 def test_top3_keeps_three_reasons_and_unknown_items_have_none():

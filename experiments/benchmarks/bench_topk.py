@@ -5,7 +5,7 @@ rank R = 64, float32 factors, 1-3 clicked items per query (CSR relevance).
 
 Contenders, each in its own child process (peak RSS from resource.getrusage):
 
-* ``threefold``: :func:`threefold.ranking.selection.top_k_from_factors` (blocks of
+* ``threefold``: :func:`threefold.ranking.topk.top_k_product` (blocks of
   queries, deterministic tie-break by item index, sorted lists) followed by
   :func:`threefold.evaluation.metrics.ranking_metrics` at K = 3, 5, 10 from the CSR clicks.
 * ``numpy reference``: the same blocks of ``Q @ V.T`` followed by a bare
@@ -51,11 +51,11 @@ def make_data(n_queries: int, n_items: int, rank: int, seed: int):
 
 def run_threefold(args, queue) -> None:
     from threefold.evaluation.metrics import ranking_metrics
-    from threefold.ranking.selection import top_k_from_factors
+    from threefold.ranking.topk import top_k_product
 
     query, items, clicks = make_data(args.queries, args.items, args.rank, args.seed)
     t0 = time.perf_counter()
-    ranked = top_k_from_factors(query, items, args.k, block_size=args.block)
+    ranked, _ = top_k_product(query, items, args.k, block_queries=args.block)
     t1 = time.perf_counter()
     metrics = ranking_metrics(ranked, clicks, ks=(3, 5, 10))
     t2 = time.perf_counter()

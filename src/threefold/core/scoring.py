@@ -148,6 +148,34 @@ class Scorer(Ranker):
         width = np.asarray(self.item_matrix()).shape[1]
         return tuple(f"component {r}" for r in range(width)), np.arange(width, dtype=np.int64)
 
+    def reason_terms(self, users: np.ndarray, contexts: np.ndarray | None, items: np.ndarray) -> tuple[tuple[str, ...], np.ndarray]:
+        """The named additive terms of the scores of (user, context levels, item) cells.
+
+        The default splits ``Q[r] V[i, r]`` by :meth:`reason_groups`; models whose
+        reasons are finer than the columns of ``Q`` (Tucker: core entries) override it.
+
+        Parameters
+        ----------
+        users : ndarray of shape (n,), int
+        contexts : ndarray of shape (n, n_context_modes), int, or None
+        items : ndarray of shape (n,), int
+            Item index of each cell; ``-1`` is an item with a zero row (no terms).
+
+        Returns
+        -------
+        labels : tuple of str, one per term
+        terms : ndarray of shape (n, n_terms), float64
+            ``terms.sum(axis=1)`` is the score without the item bias.
+        """
+        labels, group = self.reason_groups()
+        items = np.asarray(items, dtype=np.int64)
+        queries = np.asarray(self.query_matrix(users, contexts), dtype=np.float64)
+        rows = np.asarray(self.item_matrix(), dtype=np.float64)[np.maximum(items, 0)]
+        products = queries * np.where(items[:, None] >= 0, rows, 0.0)
+        terms = np.zeros((products.shape[0], len(labels)))
+        np.add.at(terms.T, group, products.T)
+        return labels, terms
+
     def owned_columns(self, mode: int) -> np.ndarray:
         """ndarray of shape (R',), bool: the factor columns a mode owns (all of them unless a structure says otherwise)."""
         return np.ones(np.asarray(self.fitted().factors[mode]).shape[1], dtype=bool)
@@ -228,6 +256,9 @@ class FittedScorer(Scorer):
 
     def reason_groups(self) -> tuple[tuple[str, ...], np.ndarray]:
         return self._fitted().reason_groups()
+
+    def reason_terms(self, users, contexts, items) -> tuple[tuple[str, ...], np.ndarray]:
+        return self._fitted().reason_terms(users, contexts, items)
 
     @property
     def shape(self) -> tuple[int, ...]:

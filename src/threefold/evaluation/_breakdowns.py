@@ -15,7 +15,7 @@ from threefold.evaluation.beyond_accuracy import (
     catalog_coverage, context_sensitivity, exposure_counts, gini_index, intra_list_diversity, novelty,
     temporal_diversity,
 )
-from threefold.ranking.selection import top_k
+from threefold.ranking.topk import top_k
 from threefold.evaluation.queries import QuerySet, catalog_times
 from threefold.core.vocabulary import UNKNOWN
 

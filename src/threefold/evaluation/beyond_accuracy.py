@@ -2,7 +2,7 @@
 
 Every function takes ranked lists as an int array of shape ``(q, K)`` of item
 indices, best first, with ``-1`` marking an empty slot (as returned by
-:func:`threefold.evaluation.metrics.top_k`), and is vectorized over lists.
+:func:`threefold.ranking.topk.top_k`), and is vectorized over lists.
 
 References
 ----------

@@ -1,6 +1,6 @@
 """Per-query accuracy metrics of ranked lists, vectorized over blocks of queries.
 
-Ranked lists come from :mod:`threefold.ranking.selection` (the one top-k of the tool).
+Ranked lists come from :mod:`threefold.ranking.topk` (the one top-k of the tool).
 
 Metrics
 -------

@@ -25,7 +25,7 @@ Item indices
 All models rank the items of one universe: the training item vocabulary first
 (indices kept), then every other item of the catalog and the evaluation events
 in sorted label order (:meth:`Vocabulary.extend`). Ties between equal scores
-are broken by this index (lower first; :func:`threefold.evaluation.metrics.top_k`), so a
+are broken by this index (lower first; :func:`threefold.ranking.topk.top_k`), so a
 model that cannot tell items apart favors items seen in training, in label order.
 """
 

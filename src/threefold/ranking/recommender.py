@@ -2,19 +2,27 @@
 
 :class:`Recommender` ranks items for a DataFrame of requests. It resolves ids to
 factor rows through :class:`threefold.core.resolve.ResolvedScorer`, the same
-rule offline evaluation uses, and selects with :mod:`threefold.ranking.selection`.
+rule offline evaluation uses, and selects with :mod:`threefold.ranking.topk`.
 It imports nothing of MLflow; :mod:`threefold.tracking.pyfunc` wraps it for any
-MLflow client.
+MLflow client, and :mod:`threefold.ranking.batch` runs it over files in parts.
 
-Input rows: ``request_id``, ``user_id``, the context columns (a column named
-like a context mode gives its level; otherwise the level is derived from the
-raw columns the mode is built from and ``timestamp``, int64 epoch seconds UTC)
-and optionally ``item_id``: the rows of one request that carry an ``item_id``
-are its candidates, ranked as given; a request without one ranks the whole
-catalog of items live at its ``timestamp`` (every item when there is none).
+Input rows: ``request_id``, ``user_id``, optional ``timestamp`` (every form the
+event-log reader accepts: ISO 8601 with a UTC offset, epoch seconds, or
+wall-clock ISO 8601 in the model's time zone), optional ``k`` (the request's
+list length), the context columns (a column named like a context mode gives its
+level; otherwise the level is derived from the raw columns the mode is built
+from and ``timestamp``, by the training build's own code) and optionally
+``item_id``: the rows of one request that carry an ``item_id`` are its
+candidates, ranked as given; a request without one ranks the catalog items live
+at its ``timestamp`` (published, not expired; every item when there is no time).
 
-Output: ``request_id``, ``user_id``, ``item_id``, ``rank`` (1 = best), ``score``
-and ``status``, the top ``k`` per request. Nothing unknown fails the batch:
+Output, one row per (request, rank): ``request_id``, ``user_id``, ``rank``
+(1 = best), ``item_id``, ``score``, one column per context mode with the level
+used (empty where it fell back), ``user_status`` and ``item_status``
+(``known``, or ``unknown:<rule>`` naming the fallback of
+:class:`~threefold.core.resolve.UnknownPolicy`), ``status``, and with
+``explain`` the reason columns (:meth:`Recommender.reasons`). Nothing unknown
+fails the batch; ``status`` joins the flags that apply with ``;``:
 
 ===================  ==========================================================
 ``unknown_user``     user missing or not seen in training: scored as the
@@ -27,7 +35,8 @@ and ``status``, the top ``k`` per request. Nothing unknown fails the batch:
 ``ok``               none of the above
 ===================  ==========================================================
 
-Several flags join with ``;`` (``unknown_user;unknown_context``).
+Scores of the catalog path are computed in the model's dtype (float32 models
+in float32); explicit candidates are scored in float64.
 """
 
 from __future__ import annotations
@@ -37,22 +46,27 @@ from typing import Sequence
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 
 from threefold.core.checks import check_choice, check_int
+from threefold.core.exceptions import InputRowsError
 from threefold.core.resolve import FALLBACK_LABEL, ResolvedScorer
 from threefold.data.context import ColumnContext, CrossedContext, parse_context, spec_name
+from threefold.data.timestamps import check_timezone, parse_timestamps
 from threefold.models.model_io import load_model
-from threefold.ranking.selection import top_k
+from threefold.ranking.topk import ALWAYS_LIVE, top_k, top_k_product
 
-__all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "context_specs", "raw_columns"]
+__all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "EXPLAIN_CHOICES", "context_specs", "raw_columns"]
 
-OUTPUT_COLUMNS = ("request_id", "user_id", "item_id", "rank", "score", "status")
+#: Columns of every output, in order; the context modes' level columns follow ``score``
+#: and reason columns follow ``status`` (see :meth:`Recommender.output_columns`).
+OUTPUT_COLUMNS = ("request_id", "user_id", "rank", "item_id", "score", "user_status", "item_status", "status")
 _FLAG_ORDER = ("unknown_user", "unknown_context", "unknown_item", "no_candidates")
-_BLOCK_CELLS = 1 << 22
 #: What ``explain`` may ask for: no reasons, the three largest, all of them.
 EXPLAIN_CHOICES = ("none", "top3", "all")
 #: List length when a request or a caller names none (the one place this default lives).
 DEFAULT_K = 10
+_TOP3 = 3
 
 
 def context_specs(serving: dict) -> list:
@@ -62,11 +76,25 @@ def context_specs(serving: dict) -> list:
 
 
 def raw_columns(spec) -> list[str]:
+    """The request columns a context mode's level is derived from (besides ``timestamp``)."""
     if isinstance(spec, ColumnContext):
         return [spec.column]
     if isinstance(spec, CrossedContext):
         return [c for part in spec.parts for c in raw_columns(part)]
     return []
+
+
+def _arrow(column: pd.Series) -> pa.Array:
+    """A request column as Arrow (object columns as text, so mixed ints and strings parse alike)."""
+    if column.dtype == object:
+        column = column.astype("string")
+    return pa.array(column, from_pandas=True)
+
+
+def _blank(column: pd.Series) -> np.ndarray:
+    """ndarray of shape (n,), bool: missing or blank values."""
+    text = column.astype("string")
+    return (text.isna() | (text.str.strip() == "")).to_numpy(dtype=bool)
 
 
 class Recommender:
@@ -80,21 +108,31 @@ class Recommender:
         How each context mode's level is derived from request columns.
     published, expires : ndarray of shape (n_items,), int64, or None
         Live interval of every item of the model (epoch seconds); None: always live.
+    timezone : str or None
+        IANA zone that timestamps without a UTC offset are local to (the
+        training build's ``timezone``); None refuses such timestamps.
     """
 
     def __init__(self, result, contexts: Sequence, published: np.ndarray | None = None,
-                 expires: np.ndarray | None = None):
+                 expires: np.ndarray | None = None, timezone: str | None = None):
         names = tuple(spec_name(s) for s in contexts)
         if tuple(result.mode_names[2:]) != names:
             raise ValueError(f"The model's context modes {result.mode_names[2:]} differ from the specifications {names}.")
         self.contexts = list(contexts)
+        self.context_names = names
+        self.zone = check_timezone(timezone)
         self.items = result.vocabularies[1]
+        self.item_labels = np.asarray(self.items.labels, dtype=object)
         self.resolved = ResolvedScorer(result)
+        self.policy = self.resolved.policy
         scorer = self.resolved.scorer
-        self.item_factors = np.asarray(scorer.item_matrix(), dtype=np.float64)
-        self.reason_labels, self.reason_group = result.reason_groups()
+        matrix = np.asarray(scorer.item_matrix())
+        self.dtype = np.float32 if matrix.dtype == np.float32 else np.float64
+        self.item_factors = np.ascontiguousarray(matrix, dtype=self.dtype)
         bias = scorer.item_bias()
-        self.item_bias = None if bias is None else np.asarray(bias, dtype=np.float64)
+        self.item_bias = None if bias is None else np.ascontiguousarray(bias, dtype=self.dtype)
+        one = np.zeros(1, np.int64)
+        self.reason_labels = scorer.reason_terms(one, np.zeros((1, len(names)), np.int64) if names else None, one - 1)[0]
         n_items = len(self.items)
         self.published = np.full(n_items, np.iinfo(np.int64).min) if published is None else np.asarray(published, np.int64)
         self.expires = np.full(n_items, np.iinfo(np.int64).max) if expires is None else np.asarray(expires, np.int64)
@@ -107,33 +145,77 @@ class Recommender:
         if serving is None:
             raise ValueError(f"The model at {path} has no serving metadata (context specifications); "
                              "save it with extra={'serving': ...} as the train pipeline does.")
-        return cls(result, context_specs(serving), extra.get("published_at"), extra.get("expires_at"))
+        return cls(result, context_specs(serving), extra.get("published_at"), extra.get("expires_at"),
+                   timezone=serving.get("timezone"))
+
+    def output_columns(self, explain: str = "none") -> list[str]:
+        """The output's columns, in order, for an ``explain`` setting."""
+        check_choice("explain", explain, EXPLAIN_CHOICES, owner="predict")
+        columns = list(OUTPUT_COLUMNS[:5]) + list(self.context_names) + list(OUTPUT_COLUMNS[5:])
+        count = 0 if explain == "none" else len(self.reason_labels)
+        if explain == "top3":
+            count = min(count, _TOP3)
+        return columns + [f"reason_{j}{s}" for j in range(1, count + 1) for s in ("", "_term", "_share")]
 
     # ------------------------------------------------------------------ inputs
-    def _query_codes(self, first: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """User and context rows of each request (fallback rows for unknowns), and their flags."""
-        users = first["user_id"].astype("string").fillna(FALLBACK_LABEL).to_numpy(dtype=object)
-        labels = [self._context_labels(spec, first) for spec in self.contexts]
-        return self.resolved.resolve_queries(users, labels)
+    def request_times(self, first: pd.DataFrame) -> np.ndarray:
+        """ndarray of shape (n,), int64: each request's epoch seconds, :data:`ALWAYS_LIVE` where none is given.
 
-    @staticmethod
-    def _context_labels(spec, first: pd.DataFrame) -> np.ndarray:
+        Every form the event-log reader accepts: ISO 8601 with an offset, epoch
+        seconds, or wall-clock ISO 8601 in the model's time zone (daylight-saving
+        folds take the earlier time, as the training build does).
+
+        Raises
+        ------
+        InputRowsError
+            On a value in no accepted form (rows are positions in ``first``).
+        """
+        times = np.full(len(first), ALWAYS_LIVE, dtype=np.int64)
+        if "timestamp" not in first.columns or not len(first):
+            return times
+        column = first["timestamp"]
+        blank = _blank(column)
+        parsed = parse_timestamps(_arrow(column), self.zone)
+        bad = ~parsed.valid & ~blank
+        if bad.any():
+            naive = parsed.naive & bad
+            problem = ("a time without UTC offset, and the model has no time zone" if naive.all()
+                       else "not a timestamp (ISO 8601 with offset, or epoch seconds)")
+            raise InputRowsError("timestamp", np.flatnonzero(bad), problem, column[bad].astype(str).tolist())
+        times[parsed.valid] = parsed.seconds[parsed.valid]
+        return times
+
+    def request_k(self, first: pd.DataFrame, k: int) -> np.ndarray:
+        """ndarray of shape (n,), int64: each request's list length (its ``k`` column, else ``k``)."""
+        out = np.full(len(first), k, dtype=np.int64)
+        if "k" not in first.columns:
+            return out
+        column = first["k"]
+        given = ~_blank(column)
+        values = pd.to_numeric(column.where(given), errors="coerce").to_numpy(dtype=np.float64)
+        bad = given & ~(np.isfinite(values) & (values >= 1) & (values == np.round(values)))
+        if bad.any():
+            raise InputRowsError("k", np.flatnonzero(bad), "not a whole number of at least 1",
+                                 column[bad].astype(str).tolist())
+        out[given] = values[given].astype(np.int64)
+        return out
+
+    def _context_labels(self, spec, first: pd.DataFrame, times: np.ndarray) -> np.ndarray:
+        """Level label of each request in one context mode (the fallback label where none can be had)."""
         name = spec_name(spec)
         out = np.full(len(first), FALLBACK_LABEL, dtype=object)
         if name in first.columns:
             values = first[name].astype("string")
-            ok = values.notna() & (values.str.strip() != "")
-            out[ok.to_numpy(dtype=bool)] = values[ok].to_numpy(dtype=object)
+            ok = ~_blank(first[name])
+            out[ok] = values[ok].to_numpy(dtype=object)
             return out
-        rows = first
-        if "timestamp" in first.columns:
-            stamps = pd.to_numeric(first["timestamp"], errors="coerce")
-            rows = first.loc[stamps.notna()].assign(timestamp=stamps[stamps.notna()].astype("int64"))
+        timed = times != ALWAYS_LIVE
+        rows = first.loc[timed].assign(timestamp=times[timed])
         try:
             derived = spec.labels_for(rows)
         except (KeyError, ValueError):  # a column the mode needs is absent: every level falls back
             return out
-        out[first.index.get_indexer(rows.index)] = derived.to_numpy(dtype=object)
+        out[np.flatnonzero(timed)] = derived.to_numpy(dtype=object)
         return out
 
     # ------------------------------------------------------------------ ranking
@@ -144,98 +226,131 @@ class Recommender:
         ----------
         requests : DataFrame
             Rows with ``request_id`` and ``user_id``, optional ``timestamp``,
-            context columns and ``item_id``.
+            ``k``, context columns and ``item_id``.
         k : int, default=10
+            List length of requests without their own ``k``.
         explain : {"none", "top3", "all"}, default="none"
             Reason columns to add (:meth:`reasons`): none, the three largest, or every reason.
 
         Returns
         -------
-        DataFrame with the columns of :data:`OUTPUT_COLUMNS` (then ``reason_1``,
-        ``reason_1_share``, ... with ``explain``), requests in order of first appearance.
+        DataFrame with the columns of :meth:`output_columns`, requests in order
+        of first appearance, ranks ascending.
+
+        Raises
+        ------
+        ValueError
+            A required column is missing; :class:`InputRowsError` names the rows
+            of a bad ``timestamp`` or ``k``.
         """
         k = check_int("k", k, low=1, owner="predict")
-        check_choice("explain", explain, EXPLAIN_CHOICES, owner="predict")
+        columns = self.output_columns(explain)
         missing = [c for c in ("request_id", "user_id") if c not in requests.columns]
         if missing:
             raise ValueError(f"The requests need the column(s) {missing}; they have {list(requests.columns)}.")
         frame = requests.reset_index(drop=True)
         request_codes, request_ids = pd.factorize(frame["request_id"].astype("string").fillna(""), sort=False)
-        first = frame.iloc[np.unique(request_codes, return_index=True)[1]].reset_index(drop=True)
-        users, contexts, unknown_user, unknown_context = self._query_codes(first)
-        queries = np.asarray(self.resolved.query_matrix(users, contexts), dtype=np.float64)
-        has_items = "item_id" in frame.columns
-        item_ids = frame["item_id"].astype("string") if has_items else None
+        first_rows = np.unique(request_codes, return_index=True)[1]
+        first = frame.iloc[first_rows].reset_index(drop=True)
+        try:
+            times = self.request_times(first)
+            lengths = self.request_k(first, k)
+        except InputRowsError as error:  # rows of ``first`` back to rows of ``requests``
+            raise InputRowsError(error.column, first_rows[error.rows], error.problem, error.examples) from None
+        users = first["user_id"].astype("string").fillna(FALLBACK_LABEL).to_numpy(dtype=object)
+        labels = [self._context_labels(spec, first, times) for spec in self.contexts]
+        user_rows, context_rows, unknown_user, unknown_context = self.resolved.resolve_queries(users, labels)
+        queries = np.asarray(self.resolved.query_matrix(user_rows, context_rows))
+        item_ids = frame["item_id"].astype("string") if "item_id" in frame.columns else None
         with_candidates = np.zeros(len(first), dtype=bool)
-        if has_items:
+        if item_ids is not None:
             with_candidates[np.unique(request_codes[item_ids.notna().to_numpy(dtype=bool)])] = True
         parts = []
         if with_candidates.any():
-            parts.append(self._rank_candidates(frame, request_codes, item_ids, queries, with_candidates, k))
+            parts.append(self._rank_candidates(request_codes, item_ids, queries, with_candidates, lengths))
         catalog = np.flatnonzero(~with_candidates)
         if catalog.size:
-            parts.append(self._rank_catalog(first, queries, catalog, k))
-        ranked = pd.concat(parts, ignore_index=True).sort_values(["request", "rank"], kind="stable")
-        request = ranked["request"].to_numpy()
+            parts.append(self._rank_catalog(queries, times, catalog, lengths))
+        ranked = [np.concatenate(v) for v in zip(*parts)]
+        order = np.lexsort((ranked[1], ranked[0]))
+        request, rank, item_code, item_label, score = (v[order] for v in ranked)
+        out = self._frame(first, request_ids, labels, context_rows, request, rank, item_code, item_label, score,
+                          unknown_user, unknown_context)
+        if explain != "none":
+            reasons = self.reasons(user_rows[request], context_rows[request], item_code,
+                                   top=_TOP3 if explain == "top3" else None)
+            out = pd.concat([out, reasons], axis=1)
+        return out[columns]
+
+    def _frame(self, first, request_ids, labels, context_rows, request, rank, item_code, item_label, score,
+               unknown_user, unknown_context) -> pd.DataFrame:
+        """The output rows (without reasons) from the ranked (request, rank, item) triples."""
+        empty = rank == 0
+        unknown_item = (item_code < 0) & ~empty
         flags = {"unknown_user": unknown_user[request], "unknown_context": unknown_context[request],
-                 "unknown_item": ranked["unknown_item"].to_numpy(dtype=bool),
-                 "no_candidates": ranked["rank"].to_numpy() == 0}
-        status = np.full(len(ranked), "", dtype=object)
+                 "unknown_item": unknown_item, "no_candidates": empty}
+        status = np.full(request.size, "", dtype=object)
         for flag in _FLAG_ORDER:
             status = np.where(flags[flag], np.where(status == "", flag, status + ";" + flag), status)
         status[status == ""] = "ok"
-        out = pd.DataFrame({
+        user_status = np.where(flags["unknown_user"], f"unknown:{self.policy.user}", "known").astype(object)
+        item_status = np.where(unknown_item, f"unknown:{self.policy.item}", "known").astype(object)
+        item_status[empty] = None
+        out = {
             "request_id": np.asarray(request_ids, dtype=object)[request],
             "user_id": first["user_id"].astype(object).where(first["user_id"].notna(), None).to_numpy()[request],
-            "item_id": ranked["item_id"].to_numpy(dtype=object),
-            "rank": ranked["rank"].to_numpy(dtype=np.int64),
-            "score": ranked["score"].to_numpy(dtype=np.float64),
-            "status": status.astype(str),
-        }, columns=list(OUTPUT_COLUMNS))
-        if explain != "none":
-            codes = ranked["item_code"].to_numpy(dtype=np.int64)
-            reasons = self.reasons(queries[request], codes, top=3 if explain == "top3" else None)
-            out = pd.concat([out, reasons], axis=1)
-        return out
+            "rank": rank.astype(np.int64),
+            "item_id": item_label,
+            "score": score.astype(np.float64),
+        }
+        fallback = self.resolved.sizes
+        for j, name in enumerate(self.context_names):
+            used = context_rows[:, j] != fallback[2 + j]
+            out[name] = np.where(used, labels[j], None)[request]
+        out.update(user_status=user_status, item_status=item_status, status=status.astype(str))
+        return pd.DataFrame(out)
 
-    def reasons(self, queries: np.ndarray, item_codes: np.ndarray, top: int | None = 3) -> pd.DataFrame:
-        """The reason terms of scored (query, item) pairs, largest first, as flat columns.
+    def reasons(self, users: np.ndarray, contexts: np.ndarray, item_codes: np.ndarray, top: int | None = 3) -> pd.DataFrame:
+        """The reason terms of scored (user, context, item) cells, largest first, as flat columns.
 
-        Every score splits into one term per reason group of the model
-        (:meth:`threefold.core.scoring.Scorer.reason_groups`: a CP structure's
-        terms, a Tucker model's item factor columns); the terms add up to the
-        score minus any item bias. ``reason_j_share`` is the term divided by the
-        sum of the absolute terms, so the shares of a score made only of
-        positive terms add up to 1, and a negative term shows as a negative share.
+        Every score splits into the model's named terms
+        (:meth:`threefold.core.scoring.Scorer.reason_terms`: a CP structure's
+        terms, a Tucker model's core entries); the terms add up to the score
+        minus any item bias. ``reason_j_share`` is the term divided by the sum
+        of the absolute terms, so the shares of a score made only of positive
+        terms add up to 1, and a negative term shows as a negative share.
 
         Parameters
         ----------
-        queries : ndarray of shape (n, R'), float64
-            The query row of each pair.
+        users : ndarray of shape (n,), int64
+            Resolved user rows (the fallback row included).
+        contexts : ndarray of shape (n, n_context_modes), int64
+            Resolved context rows.
         item_codes : ndarray of shape (n,), int64
-            The model's item index of each pair (-1: unknown item, zero row, no reasons).
+            The model's item index of each cell (< 0: not in the model, zero row, no reasons).
         top : int or None, default=3
-            How many reasons per pair (None: all), ordered by absolute term.
+            How many reasons per cell (None: all), ordered by absolute term.
 
         Returns
         -------
         DataFrame with columns ``reason_1, reason_1_term, reason_1_share, ...``
-            ``reason_j`` names the group (None past the groups a pair has).
+            ``reason_j`` names the term (None where the cell has no terms).
         """
-        labels, group = self.reason_labels, self.reason_group
-        n_groups = len(labels)
-        items = np.where(item_codes[:, None] >= 0, self.item_factors[np.maximum(item_codes, 0)], 0.0)
-        products = np.asarray(queries, dtype=np.float64) * items
-        terms = np.zeros((products.shape[0], n_groups))
-        for g in range(n_groups):
-            terms[:, g] = products[:, group == g].sum(axis=1)
-        count = n_groups if top is None else min(top, n_groups)
-        order = np.argsort(-np.abs(terms), axis=1, kind="stable")[:, :count]
+        labels, terms = self.resolved.scorer.reason_terms(users, contexts if contexts.shape[1] else None,
+                                                          np.where(item_codes >= 0, item_codes, -1))
+        count = len(labels) if top is None else min(top, len(labels))
+        magnitude = np.abs(terms)
+        if count < len(labels):
+            order = np.argpartition(-magnitude, count - 1, axis=1)[:, :count]
+            picked = np.take_along_axis(magnitude, order, axis=1)
+            order = np.take_along_axis(order, np.lexsort((order, -picked), axis=1), axis=1)
+        else:
+            order = np.argsort(-magnitude, axis=1, kind="stable")
         chosen = np.take_along_axis(terms, order, axis=1)
-        magnitude = np.abs(terms).sum(axis=1, keepdims=True)
-        shares = np.divide(chosen, magnitude, out=np.zeros_like(chosen), where=magnitude > 0)
+        total = magnitude.sum(axis=1, keepdims=True)
+        shares = np.divide(chosen, total, out=np.zeros_like(chosen), where=total > 0)
         names = np.asarray(labels, dtype=object)[order]
-        names[magnitude[:, 0] == 0] = None
+        names[total[:, 0] == 0] = None
         columns = {}
         for j in range(count):
             columns[f"reason_{j + 1}"] = names[:, j]
@@ -243,54 +358,50 @@ class Recommender:
             columns[f"reason_{j + 1}_share"] = shares[:, j]
         return pd.DataFrame(columns)
 
-    def _rank_candidates(self, frame, request_codes, item_ids, queries, with_candidates, k) -> pd.DataFrame:
-        """Rank each request's own candidate rows (duplicates kept once, ties in the order given)."""
+    def _rank_candidates(self, request_codes, item_ids, queries, with_candidates, lengths):
+        """Rank each request's own candidate rows (duplicates kept once, ties in the order given).
+
+        Returns ``(request, rank, item code, item label, score)`` per ranked row;
+        items outside the model have code -1 and score 0 (the zero item row).
+        """
         rows = np.flatnonzero(item_ids.notna().to_numpy(dtype=bool))
         pairs = pd.DataFrame({"request": request_codes[rows], "item_id": item_ids.to_numpy(dtype=object)[rows]})
         pairs = pairs.drop_duplicates().reset_index(drop=True)
-        codes = self.resolved.item_codes(pairs["item_id"].to_numpy(dtype=object))
+        labels = pairs["item_id"].to_numpy(dtype=object)
+        codes = self.resolved.item_codes(labels)
         known = codes >= 0
+        request = pairs["request"].to_numpy()
         scores = np.zeros(len(pairs))
-        scores[known] = np.einsum("ij,ij->i", queries[pairs["request"].to_numpy()[known]], self.item_factors[codes[known]])
+        scores[known] = np.einsum("ij,ij->i", np.asarray(queries[request[known]], np.float64),
+                                  np.asarray(self.item_factors[codes[known]], np.float64))
         if self.item_bias is not None:
             scores[known] += self.item_bias[codes[known]]
         slot = pairs.groupby("request", sort=False).cumcount().to_numpy()
         requests = np.flatnonzero(with_candidates)
         row_of = np.full(len(with_candidates), -1)
         row_of[requests] = np.arange(requests.size)
-        at = (row_of[pairs["request"].to_numpy()], slot)
+        at = (row_of[request], slot)
         matrix = np.full((requests.size, int(slot.max()) + 1), -np.inf)
         matrix[at] = scores
         pair_index = np.full(matrix.shape, -1)
         pair_index[at] = np.arange(len(pairs))
-        best = top_k(matrix, min(k, matrix.shape[1]))
-        r, c = np.nonzero(best >= 0)
+        best = top_k(matrix, int(min(lengths[requests].max(), matrix.shape[1])))
+        r, c = np.nonzero((best >= 0) & (np.arange(best.shape[1])[None, :] < lengths[requests][:, None]))
         chosen = pair_index[r, best[r, c]]
-        return pd.DataFrame({"request": requests[r], "item_id": pairs["item_id"].to_numpy(dtype=object)[chosen],
-                             "rank": c + 1, "score": scores[chosen], "unknown_item": ~known[chosen],
-                             "item_code": codes[chosen]})
+        return requests[r], c + 1, codes[chosen], labels[chosen], scores[chosen]
 
-    def _rank_catalog(self, first: pd.DataFrame, queries: np.ndarray, requests: np.ndarray, k: int) -> pd.DataFrame:
-        """Rank the items live at each request's time (all items without a timestamp), in blocks."""
-        times = (pd.to_numeric(first["timestamp"], errors="coerce") if "timestamp" in first.columns
-                 else pd.Series(np.nan, index=first.index)).to_numpy(dtype=np.float64)
+    def _rank_catalog(self, queries, times, requests, lengths):
+        """Rank the items live at each request's time (every item where no time is given); as :meth:`_rank_candidates`."""
         n_items = self.item_factors.shape[0]
-        out = []
-        block = max(1, _BLOCK_CELLS // max(n_items, 1))
-        for start in range(0, requests.size, block):
-            sel = requests[start:start + block]
-            scores = queries[sel] @ self.item_factors.T
-            if self.item_bias is not None:
-                scores += self.item_bias
-            t = times[sel][:, None]
-            live = np.isnan(t) | ((self.published[None, :] <= t) & (t < self.expires[None, :]))
-            best = top_k(scores, min(k, n_items), live)
-            r, c = np.nonzero(best >= 0)
-            out.append(pd.DataFrame({"request": sel[r], "item_id": np.asarray(self.items.labels, dtype=object)[best[r, c]],
-                                     "rank": c + 1, "score": scores[r, best[r, c]], "unknown_item": False,
-                                     "item_code": best[r, c]}))
-            empty = sel[best[:, 0] < 0]
-            if empty.size:
-                out.append(pd.DataFrame({"request": empty, "item_id": None, "rank": 0, "score": np.nan,
-                                         "unknown_item": False, "item_code": -1}))
-        return pd.concat(out, ignore_index=True)
+        kmax = int(min(lengths[requests].max(), max(n_items, 1)))
+        best, scores = top_k_product(np.asarray(queries[requests], dtype=self.dtype), self.item_factors, kmax,
+                                     item_bias=self.item_bias, live=(self.published, self.expires, times[requests]))
+        keep = (best >= 0) & (np.arange(kmax)[None, :] < lengths[requests][:, None])
+        r, c = np.nonzero(keep)
+        empty = np.flatnonzero(~keep[:, 0])
+        request = np.concatenate([requests[r], requests[empty]])
+        rank = np.concatenate([c + 1, np.zeros(empty.size, np.int64)])
+        codes = np.concatenate([best[r, c], np.full(empty.size, -1)])
+        score = np.concatenate([scores[r, c].astype(np.float64), np.full(empty.size, np.nan)])
+        labels = np.where(codes >= 0, self.item_labels[np.maximum(codes, 0)], None)
+        return request, rank, codes, labels, score

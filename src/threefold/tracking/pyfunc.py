@@ -20,15 +20,10 @@ import mlflow
 import numpy as np
 import pandas as pd
 
-from threefold.ranking.recommender import DEFAULT_K, OUTPUT_COLUMNS, Recommender, context_specs, raw_columns
 from threefold.data.context import spec_name
+from threefold.ranking.recommender import DEFAULT_K, OUTPUT_COLUMNS, Recommender, context_specs, raw_columns
 
 __all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for", "pyfunc_entry_path", "log_pyfunc"]
-
-OUTPUT_COLUMNS = ("request_id", "user_id", "item_id", "rank", "score", "status")
-_FALLBACK_LABEL = "\x00threefold-fallback"
-_FLAG_ORDER = ("unknown_user", "unknown_context", "unknown_item", "no_candidates")
-_BLOCK_CELLS = 1 << 22
 
 
 def pyfunc_entry_path() -> Path:
@@ -39,14 +34,19 @@ def pyfunc_entry_path() -> Path:
 def signature_for(serving: dict):
     """The MLflow signature of a served model: its input columns, the ``k`` parameter, the output columns."""
     from mlflow.models import ModelSignature
-    from mlflow.types.schema import ColSpec, ParamSchema, ParamSpec, Schema
+    from mlflow.types.schema import AnyType, ColSpec, ParamSchema, ParamSpec, Schema
 
     specs = context_specs(serving)
     optional = ["item_id"] + [spec_name(s) for s in specs] + [c for s in specs for c in raw_columns(s)]
-    inputs = [ColSpec("string", "request_id"), ColSpec("string", "user_id"), ColSpec("long", "timestamp", required=False)]
+    # timestamp and k: any type, parsed by the recommender (ISO 8601 text or epoch seconds, as the event reader)
+    inputs = [ColSpec("string", "request_id"), ColSpec("string", "user_id"),
+              ColSpec(AnyType(), "timestamp", required=False), ColSpec(AnyType(), "k", required=False)]
     inputs += [ColSpec("string", name, required=False) for name in dict.fromkeys(optional)]
-    outputs = [ColSpec("string", "request_id"), ColSpec("string", "user_id"), ColSpec("string", "item_id", required=False),
-               ColSpec("long", "rank"), ColSpec("double", "score", required=False), ColSpec("string", "status")]
+    outputs = [ColSpec("string", "request_id"), ColSpec("string", "user_id"), ColSpec("long", "rank"),
+               ColSpec("string", "item_id", required=False), ColSpec("double", "score", required=False)]
+    outputs += [ColSpec("string", spec_name(s), required=False) for s in specs]
+    outputs += [ColSpec("string", "user_status"), ColSpec("string", "item_status", required=False),
+                ColSpec("string", "status")]
     return ModelSignature(inputs=Schema(inputs), outputs=Schema(outputs), params=ParamSchema([ParamSpec("k", "long", DEFAULT_K), ParamSpec("explain", "string", "none")]))
 
 

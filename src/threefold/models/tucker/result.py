@@ -109,6 +109,27 @@ class TuckerResult(FactorResultMixin, Scorer):
         width = self.core.shape[1]
         return tuple(f"item factor {r}" for r in range(width)), np.arange(width, dtype=np.int64)
 
+    def reason_terms(self, users, contexts, items) -> tuple[tuple[str, ...], np.ndarray]:
+        """One term per core entry, ``G[r] · Π_n F_n[cell_n, r_n]`` (:func:`core_contributions`).
+
+        Labels name each entry by its component in every mode, e.g.
+        ``"core user 2 × item 0 × daypart 1"``. Cells with item ``-1`` (a zero
+        item row) have no terms. Computed in batches of about 2**22 values.
+        """
+        users, contexts = check_queries(users, contexts, self.shape)
+        items = np.asarray(items, dtype=np.int64).reshape(-1)
+        names = self.mode_names or tuple(f"mode {n}" for n in range(self.core.ndim))
+        labels = tuple("core " + " × ".join(f"{names[n]} {r}" for n, r in enumerate(idx))
+                       for idx in np.ndindex(*self.core.shape))
+        terms = np.zeros((users.shape[0], len(labels)))
+        known = np.flatnonzero(items >= 0)
+        batch = max(1, (1 << 22) // max(len(labels), 1))
+        for start in range(0, known.size, batch):
+            sel = known[start:start + batch]
+            cells = np.column_stack([users[sel], items[sel], contexts[sel]])
+            terms[sel] = core_contributions(self.core, self.factors, cells).reshape(sel.size, -1)
+        return labels, terms
+
     def file_contents(self) -> tuple[str, dict[str, np.ndarray], dict]:
         """``(model type, arrays, metadata)`` this result adds to a model file (:mod:`threefold.models.model_io`)."""
         return "tucker", {"core": self.core}, {"method": self.method}
