@@ -92,6 +92,7 @@ def _parser() -> argparse.ArgumentParser:
     models.add_argument("method", nargs="?", default=None, help="one method (default: all)")
     models.add_argument("--json", action="store_true", help="print the tables as JSON")
     _add_tracking_commands(commands)
+    _add_score_command(commands)
     return parser
 
 
@@ -132,6 +133,50 @@ def _add_tracking_commands(commands) -> None:
     for name, text in (("cleanup", "mark runs whose process is gone as killed"),
                        ("upgrade", "back up the store's database, then migrate it to this MLflow's schema")):
         _add_store_flag(actions.add_parser(name, help=text), default=argparse.SUPPRESS)
+
+
+def _add_score_command(commands) -> None:
+    """``score`` (docs/scoring.md)."""
+    from threefold.ranking.batch import DEFAULT_CHUNK_ROWS
+    from threefold.ranking.recommender import DEFAULT_K
+
+    score = commands.add_parser(
+        "score", help="ranked lists with reasons for a file of requests (resumable; on Dask with --workers)",
+        description="Rank items for every request with a saved model and write part files plus a manifest "
+                    "to OUT. Rerun the same command to resume a killed job. Example: threefold score "
+                    "runs:/<run id>/model --requests requests.csv --k 10 --explain top3 --out lists/")
+    score.add_argument("model", metavar="MODEL",
+                       help="a model folder, a run id, or an MLflow model URI (runs:/<id>/model, models:/<name>/<version>)")
+    score.add_argument("--requests", required=True,
+                       help="CSV or Parquet: request_id, user_id, optional timestamp, k and context columns")
+    score.add_argument("--candidates", default=None, help="CSV or Parquet: request_id, item_id (default: the live catalog)")
+    score.add_argument("--k", type=int, default=DEFAULT_K, help=f"list length (default {DEFAULT_K}; a k column wins)")
+    score.add_argument("--explain", choices=("none", "top3", "all"), default="none",
+                       help="reason columns per ranked item (default none)")
+    score.add_argument("--out", required=True, help="job folder: part files, then _manifest.json when done")
+    score.add_argument("--format", choices=("parquet", "csv"), default="parquet", help="part files (default parquet)")
+    score.add_argument("--chunk-rows", dest="chunk_rows", type=int, default=DEFAULT_CHUNK_ROWS,
+                       help=f"requests per part (default {DEFAULT_CHUNK_ROWS:,})")
+    where = score.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=int, default=None, help="run the parts on a local Dask cluster of N processes")
+    where.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="run the parts on an existing Dask cluster, e.g. tcp://10.0.0.5:8786")
+    _add_store_flag(score)
+
+
+def cmd_score(args: argparse.Namespace) -> int:
+    from threefold.pipeline.score import SchedulerUnreachable, score_requests
+
+    try:
+        manifest = score_requests(args.model, args.requests, out=args.out, candidates=args.candidates, k=args.k,
+                                  explain=args.explain, format=args.format, chunk_rows=args.chunk_rows,
+                                  workers=args.workers, scheduler=args.scheduler, store=args.store, load=False)
+    except SchedulerUnreachable as error:
+        print(f"threefold score: error: {error}", file=sys.stderr)
+        return 1
+    print(f"{manifest['requests']:,} requests, {manifest['rows']:,} rows in {len(manifest['parts'])} part(s): "
+          f"{Path(args.out) / '_manifest.json'}")
+    return 0
 
 
 def cmd_train(args: argparse.Namespace) -> int:
@@ -359,7 +404,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     # (MLflow's own setting, read when MLflow is imported; a user's explicit choice wins).
     os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
     handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
-                "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models}
+                "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models, "score": cmd_score}
     try:
         return handlers[args.command](args)
     except (ValueError, KeyError, FileNotFoundError, MemoryError) as error:

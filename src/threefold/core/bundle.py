@@ -32,7 +32,7 @@ from typing import Mapping
 
 import numpy as np
 
-__all__ = ["BundleError", "sha256_file", "write_bundle", "read_bundle", "bundle_versions", "FORMAT_NAME", "FORMAT_VERSION"]
+__all__ = ["BundleError", "sha256_file", "write_bundle", "read_bundle", "bundle_fingerprint", "bundle_versions", "FORMAT_NAME", "FORMAT_VERSION"]
 
 FORMAT_NAME = "threefold-bundle"
 FORMAT_VERSION = 1
@@ -132,6 +132,17 @@ def write_bundle(
     for old in bundle_versions(root)[: -max(2, keep_versions + 1)]:
         shutil.rmtree(root / old, ignore_errors=True)
     return final
+
+
+def bundle_fingerprint(root: str | os.PathLike) -> str:
+    """The SHA-256 of a bundle's current manifest (from its ``CURRENT`` pointer): one id for its whole content."""
+    pointer = Path(root) / "CURRENT"
+    if not pointer.is_file():
+        raise BundleError(f"{root} is not a threefold bundle (no CURRENT pointer).")
+    parts = pointer.read_text().split()
+    if len(parts) != 2 or not _VERSION.match(parts[0]):
+        raise BundleError(f"{pointer} is malformed: {pointer.read_text()!r}.")
+    return parts[1]
 
 
 def read_bundle(root: str | os.PathLike, kind: str) -> tuple[dict, dict[str, np.ndarray]]:

@@ -201,10 +201,15 @@ class Recommender:
         return out
 
     def _context_labels(self, spec, first: pd.DataFrame, times: np.ndarray) -> np.ndarray:
-        """Level label of each request in one context mode (the fallback label where none can be had)."""
+        """Level label of each request in one context mode (the fallback label where none can be had).
+
+        A column named like a derived mode (``daypart``) gives its level directly;
+        otherwise the training build's own code derives it (an event column mode
+        such as ``device`` included, so a blank value is the level ``unknown`` there too).
+        """
         name = spec_name(spec)
         out = np.full(len(first), FALLBACK_LABEL, dtype=object)
-        if name in first.columns:
+        if name in first.columns and not isinstance(spec, ColumnContext):  # a level given directly
             values = first[name].astype("string")
             ok = ~_blank(first[name])
             out[ok] = values[ok].to_numpy(dtype=object)
@@ -219,7 +224,8 @@ class Recommender:
         return out
 
     # ------------------------------------------------------------------ ranking
-    def recommend(self, requests: pd.DataFrame, k: int = DEFAULT_K, explain: str = "none") -> pd.DataFrame:
+    def recommend(self, requests: pd.DataFrame, k: int = DEFAULT_K, explain: str = "none",
+                  catalog: bool = True) -> pd.DataFrame:
         """Top ``k`` items of every request; see the module docstring.
 
         Parameters
@@ -231,6 +237,9 @@ class Recommender:
             List length of requests without their own ``k``.
         explain : {"none", "top3", "all"}, default="none"
             Reason columns to add (:meth:`reasons`): none, the three largest, or every reason.
+        catalog : bool, default=True
+            Whether a request without candidate rows ranks the live catalog;
+            False gives it a ``no_candidates`` row (batch jobs with a candidates table).
 
         Returns
         -------
@@ -268,9 +277,9 @@ class Recommender:
         parts = []
         if with_candidates.any():
             parts.append(self._rank_candidates(request_codes, item_ids, queries, with_candidates, lengths))
-        catalog = np.flatnonzero(~with_candidates)
-        if catalog.size:
-            parts.append(self._rank_catalog(queries, times, catalog, lengths))
+        rest = np.flatnonzero(~with_candidates)
+        if rest.size:
+            parts.append(self._rank_catalog(queries, times, rest, lengths) if catalog else self._empty(rest))
         ranked = [np.concatenate(v) for v in zip(*parts)]
         order = np.lexsort((ranked[1], ranked[0]))
         request, rank, item_code, item_label, score = (v[order] for v in ranked)
@@ -390,6 +399,12 @@ class Recommender:
         chosen = pair_index[r, best[r, c]]
         return requests[r], c + 1, codes[chosen], labels[chosen], scores[chosen]
 
+    @staticmethod
+    def _empty(requests):
+        """One ``no_candidates`` row per request; as :meth:`_rank_candidates`."""
+        n = requests.size
+        return requests, np.zeros(n, np.int64), np.full(n, -1), np.full(n, None, dtype=object), np.full(n, np.nan)
+
     def _rank_catalog(self, queries, times, requests, lengths):
         """Rank the items live at each request's time (every item where no time is given); as :meth:`_rank_candidates`."""
         n_items = self.item_factors.shape[0]
@@ -398,10 +413,7 @@ class Recommender:
                                      item_bias=self.item_bias, live=(self.published, self.expires, times[requests]))
         keep = (best >= 0) & (np.arange(kmax)[None, :] < lengths[requests][:, None])
         r, c = np.nonzero(keep)
-        empty = np.flatnonzero(~keep[:, 0])
-        request = np.concatenate([requests[r], requests[empty]])
-        rank = np.concatenate([c + 1, np.zeros(empty.size, np.int64)])
-        codes = np.concatenate([best[r, c], np.full(empty.size, -1)])
-        score = np.concatenate([scores[r, c].astype(np.float64), np.full(empty.size, np.nan)])
-        labels = np.where(codes >= 0, self.item_labels[np.maximum(codes, 0)], None)
-        return request, rank, codes, labels, score
+        codes = best[r, c]
+        ranked = (requests[r], c + 1, codes, self.item_labels[codes], scores[r, c].astype(np.float64))
+        empty = self._empty(requests[~keep[:, 0]])
+        return tuple(np.concatenate([a, b]) for a, b in zip(ranked, empty))

@@ -14,6 +14,7 @@ Input rows, output columns and the status flags are those of
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import mlflow
@@ -23,7 +24,8 @@ import pandas as pd
 from threefold.data.context import spec_name
 from threefold.ranking.recommender import DEFAULT_K, OUTPUT_COLUMNS, Recommender, context_specs, raw_columns
 
-__all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for", "pyfunc_entry_path", "log_pyfunc"]
+__all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for", "pyfunc_entry_path", "log_pyfunc",
+           "model_folder"]
 
 
 def pyfunc_entry_path() -> Path:
@@ -105,3 +107,65 @@ class RecommenderPyfunc(mlflow.pyfunc.PythonModel):
         explain = (params or {}).get("explain", "none")
         return self.recommender.recommend(model_input, k=int(k) if isinstance(k, (int, np.integer)) else k,
                                           explain=explain)
+
+
+def model_folder(model: str | os.PathLike, *, store=None, download_to: str | os.PathLike | None = None) -> Path:
+    """The local model folder behind a model folder path, a run id, or an MLflow model URI.
+
+    Parameters
+    ----------
+    model : str or path
+        * a model folder written by :func:`threefold.models.model_io.save_model`;
+        * a downloaded MLflow model (a folder with ``MLmodel`` and ``artifacts/model``);
+        * ``runs:/<run id>/<name>`` or ``models:/<name or id>/<version>``: any MLflow model URI;
+        * a run id of ``threefold train`` (full, or a unique prefix of 6+ characters):
+          the model logged by that run (its ``threefold.model_uri`` tag).
+    store : RunStore or None
+        Needed for run ids and URIs (:func:`threefold.tracking.store.open_store`).
+    download_to : path or None
+        Where a model from the store is downloaded (default: a new temporary folder).
+
+    Raises
+    ------
+    ValueError
+        When ``model`` is none of these, or names no model.
+    """
+    import tempfile
+
+    path = Path(model)
+    if path.is_dir():
+        if (path / "CURRENT").is_file():
+            return path
+        if (path / "MLmodel").is_file() and (path / "artifacts" / "model" / "CURRENT").is_file():
+            return path / "artifacts" / "model"
+        raise ValueError(f"{path} is neither a threefold model folder (no CURRENT) nor a downloaded MLflow model "
+                         "of threefold (no MLmodel with artifacts/model).")
+    text = str(model)
+    if store is None:
+        raise ValueError(f"{text!r} is not a folder; a run id or model URI needs the run store (--store).")
+    if "://" in text or text.startswith(("runs:/", "models:/")):
+        uri = text
+    else:
+        from threefold.tracking.runs import resolve_run
+
+        if not all(c in "0123456789abcdef" for c in text) or len(text) < 6:
+            raise ValueError(f"{text!r} is not a model folder, a run id or an MLflow model URI "
+                             "(runs:/<run id>/model, models:/<name>/<version>).")
+        run = resolve_run(store, text)
+        uri = run.data.tags.get("threefold.model_uri")
+        if not uri:
+            raise ValueError(f"Run {run.info.run_id} logged no model (no threefold.model_uri tag); "
+                             "baselines and parent runs have none. Pick a model's run (`threefold runs`).")
+    from mlflow.exceptions import MlflowException
+
+    target = Path(download_to) if download_to is not None else Path(tempfile.mkdtemp(prefix="threefold-model-"))
+    target.mkdir(parents=True, exist_ok=True)
+    try:
+        local = Path(store.call(mlflow.artifacts.download_artifacts, artifact_uri=uri, dst_path=str(target)))
+    except (MlflowException, OSError) as error:
+        raise ValueError(f"Could not fetch the model {uri!r} from {store.location.tracking_uri}: "
+                         f"{getattr(error, 'message', error)}") from None
+    for candidate in (local / "artifacts" / "model", local / "model", local):
+        if (candidate / "CURRENT").is_file():
+            return candidate
+    raise ValueError(f"The MLflow model {uri!r} holds no threefold model folder (artifacts/model).")

@@ -101,7 +101,7 @@ def format_runs(runs: Sequence[dict], metrics: Sequence[str] | None = None) -> s
     return "\n".join("  ".join(str(c).ljust(w) for c, w in zip(row, widths)).rstrip() for row in [header] + rows)
 
 
-def _resolve(store, run_id: str):
+def resolve_run(store, run_id: str):
     """A run by its full id or a unique prefix of at least 6 characters (as ``threefold runs`` prints)."""
     from mlflow.exceptions import MlflowException
 
@@ -128,7 +128,7 @@ def compare_runs(store, run_a: str, run_b: str) -> dict:
         every metric both runs logged (interval bounds where logged);
         ``overlap`` says whether the two intervals overlap.
     """
-    a, b = _resolve(store, run_a), _resolve(store, run_b)
+    a, b = resolve_run(store, run_a), resolve_run(store, run_b)
     pa, pb = a.data.params, b.data.params
     params = [{"key": k, "a": pa.get(k), "b": pb.get(k)} for k in sorted(set(pa) | set(pb)) if pa.get(k) != pb.get(k)]
     ma, mb = a.data.metrics, b.data.metrics
