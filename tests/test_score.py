@@ -194,20 +194,25 @@ def test_scoring_derives_context_as_the_training_build_across_a_dst_change(tmp_p
     epochs = [str(1_774_746_000), str(1_761_350_400)]
     stamps = wall + aware + epochs
     n = len(stamps)
+    devices = ["mobile", "", "desktop"] * n
     log = pd.DataFrame({"user_id": [f"u{i % 3}" for i in range(n)], "item_id": [f"i{i % 4}" for i in range(n)],
-                        "timestamp": stamps})
+                        "timestamp": stamps, "device": devices[:n]})
     log.to_csv(tmp_path / "events.csv", index=False)
     events = load_events(tmp_path / "events.csv", timezone=zone)  # the training build's reader
-    specs = [parse_context("daypart", timezone=zone)]
+    specs = [parse_context("daypart", timezone=zone), parse_context("device")]
     training = specs[0].labels_for(events).to_numpy()  # the labels build_tensor gives these events
+    training_device = specs[1].labels_for(events).to_numpy()  # a blank device is the level "unknown"
     from threefold.data.build import build_tensor
     from threefold.models.cp.model import fit_cp
 
     tensor, _ = build_tensor(events, specs, negatives="none")
     result = fit_cp(tensor, rank=2, max_sweeps=2, tol=0, random_state=0)
-    requests = pd.DataFrame({"request_id": [f"q{i}" for i in range(n)], "user_id": "u0", "timestamp": stamps})
+    requests = pd.DataFrame({"request_id": [f"q{i}" for i in range(n)], "user_id": "u0", "timestamp": stamps,
+                             "device": devices[:n]})
     out = Recommender(result, specs, timezone=zone).recommend(requests, k=1)
     assert_array_equal(out["daypart"].to_numpy(), training)
+    assert_array_equal(out["device"].to_numpy(), training_device)
+    assert "unknown" in set(training_device) and set(out["status"]) == {"ok"}
     assert len(set(training)) >= 3  # the times span several dayparts
 
 
@@ -250,3 +255,30 @@ def test_a_job_killed_at_random_points_resumes_exactly(saved, tmp_path, seed):
     assert got.groupby("request_id").size().eq(5).all() and got["request_id"].nunique() == len(big)
     for part in sorted((tmp_path / "reference").glob("part-*")):
         assert pq.read_table(part).equals(pq.read_table(target / part.name))
+
+
+def test_model_by_folder_run_id_or_mlflow_uri_and_the_pyfunc_agree(saved, tmp_path):
+    """One code path: the command's lists equal the served pyfunc's, reasons and ISO timestamps included."""
+    import mlflow
+
+    from threefold.tracking.pyfunc import log_pyfunc
+    from threefold.tracking.store import open_store
+
+    folder, result, specs, requests = saved
+    store = open_store(tmp_path / "store")
+    with store.run(store.experiment_id("serving"), run_name="serving") as run_id:
+        uri = log_pyfunc(store, result, SERVING)
+        store.call(store.client.set_tag, run_id, "threefold.model_uri", uri)  # as `threefold train` tags it
+    iso = requests.iloc[:40].assign(timestamp=pd.to_datetime(requests["timestamp"].iloc[:40], unit="s", utc=True)
+                                    .dt.tz_convert("Europe/Paris").map(lambda t: t.isoformat()))
+    reference = score_requests(folder / "model", iso, out=tmp_path / "folder", k=3, explain="top3", show_progress=False)
+    for i, model in enumerate([run_id, run_id[:8], uri, f"runs:/{run_id}/model"]):
+        got = score_requests(model, iso, out=tmp_path / f"m{i}", k=3, explain="top3", store=store, show_progress=False)
+        pd.testing.assert_frame_equal(got, reference)
+        assert not (tmp_path / f"m{i}" / "_model").exists()
+    served = mlflow.pyfunc.load_model(uri).predict(iso, params={"k": 3, "explain": "top3"})
+    pd.testing.assert_frame_equal(served.reset_index(drop=True), reference, check_dtype=False)
+    with pytest.raises(ValueError, match=r"'nonsense!' is not a model folder, a run id or an MLflow model URI"):
+        score_requests("nonsense!", iso, out=tmp_path / "bad", store=store, show_progress=False)
+    with pytest.raises(ValueError, match=r"Could not fetch the model 'models:/m-0000'"):
+        score_requests("models:/m-0000", iso, out=tmp_path / "bad2", store=store, show_progress=False)

@@ -9,7 +9,9 @@ The public API, by layer (see DEVELOPERS.md):
 * the tensor: :class:`SparseTensor`, :class:`Vocabulary`, :func:`save_tensor` / :func:`load_tensor`;
 * models: :class:`CPModel` (structures via :class:`Structure`), :class:`HOOIModel`,
   :class:`ImplicitTuckerModel`, all implementing :class:`Scorer`;
-* evaluation: :func:`temporal_split`, :func:`evaluate_stage`, :func:`evaluate`, the baselines.
+* evaluation: :func:`temporal_split`, :func:`evaluate_stage`, :func:`evaluate`, the baselines;
+* ranking: :func:`top_k`, :func:`top_k_product`, :class:`Recommender`, and the batch job
+  :func:`score_requests` (``threefold score``).
 
 Experiment tracking (MLflow) lives in :mod:`threefold.pipeline.experiment`, :mod:`threefold.tracking.store`,
 :mod:`threefold.pipeline.sweep` and :mod:`threefold.tracking.pyfunc`, imported on demand.
@@ -37,18 +39,22 @@ from threefold.core.tensor_io import load_tensor, save_tensor
 from threefold.models.tucker.result import TuckerResult
 from threefold.data.validate import ValidationReport, load_validated_events, validate_events
 from threefold.core.vocabulary import UNKNOWN, Vocabulary
+from threefold.pipeline.score import score_requests
+from threefold.ranking.recommender import Recommender
+from threefold.ranking.topk import top_k, top_k_product
 
 __version__ = "0.1.0"
 
 __all__ = [
     "BuildReport", "CPModel", "CPResult", "CellEvidence", "ColumnContext", "ConvergenceWarning",
     "CrossedContext", "Daypart", "EvaluationResult", "EventSplit", "FeedbackWeighting", "HOOIModel",
-    "ImplicitTuckerModel", "PopularityBaseline", "PositionPropensity", "RandomBaseline", "ScoreTerms",
+    "ImplicitTuckerModel", "PopularityBaseline", "PositionPropensity", "RandomBaseline", "Recommender", "ScoreTerms",
     "Scorer", "SparseTensor", "Structure", "SweepRecord", "Term", "TuckerResult", "UNKNOWN",
     "ValidationReport", "Vocabulary", "WeekPart", "build_tensor", "cell_weights", "context_free_mf",
     "derive_contexts", "estimate_position_propensity", "evaluate", "evaluate_stage", "factor_match_score",
     "fit_cp", "fit_hooi", "fit_implicit_tucker", "fold_in", "last_n_split", "load_events", "load_items",
     "load_model", "load_tensor", "load_validated_events", "parse_context", "pseudonymize_ids",
-    "save_model", "save_tensor", "select_best", "select_window", "simulate_site", "temporal_split",
+    "save_model", "save_tensor", "score_requests", "select_best", "select_window", "simulate_site", "temporal_split",
+    "top_k", "top_k_product",
     "true_relevance", "validate_events", "write_site", "__version__",
 ]

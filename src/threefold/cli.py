@@ -357,10 +357,40 @@ def cmd_demo(args: argparse.Namespace) -> int:
     config_path = _write_demo_config(out, log_dir, site)
     print(f"   config {config_path}; run store {out / 'runs'}")
     config = load_config(config_path)
-    report = train(config, open_store(str(out / "runs")), echo=lambda line: print(f"   {line}"), truth=site_truth)
+    store = open_store(str(out / "runs"))
+    report = train(config, store, echo=lambda line: print(f"   {line}"), truth=site_truth)
     print(summary_text(report))
     print(f"   list the runs: threefold runs --store {out / 'runs'}")
+    _demo_score(out, log_dir, report, store)
     return 0
+
+
+def _demo_score(out: Path, log_dir: Path, report, store) -> None:
+    """Step 5: the nightly job on the last day's requests, with the reasons behind every item."""
+    import pandas as pd
+
+    from threefold.pipeline.score import score_requests
+
+    scored = [r for r in report.runs if r.model_uri and r.name != "mf"] or [r for r in report.runs if r.model_uri]
+    if not scored:
+        return
+    run = scored[0]
+    events = pd.read_parquet(log_dir / "events.parquet", columns=["request_id", "user_id", "timestamp", "device",
+                                                                  "page_tone"])
+    last_day = events[events["timestamp"] >= events["timestamp"].max() - 86_400]
+    requests = last_day.drop_duplicates("request_id").head(2_000)
+    requests_path = out / "requests.parquet"
+    requests.to_parquet(requests_path, index=False)
+    print(f"== 5. score {len(requests):,} requests of the last day with {run.name!r}: top 10 with reasons")
+    print(f"   threefold score {run.run_id} --requests {requests_path} --k 10 --explain top3 "
+          f"--out {out / 'lists'} --store {out / 'runs'}")
+    lists = score_requests(run.run_id, requests_path, out=out / "lists", k=10, explain="top3", store=store,
+                           show_progress=False)
+    first = lists[lists["request_id"] == lists["request_id"].iloc[0]].head(3)
+    columns = ["rank", "item_id", "score", "daypart", "device", "page_tone", "status", "reason_1", "reason_1_share"]
+    print("   " + first[[c for c in columns if c in first.columns]].to_string(index=False).replace("\n", "\n   "))
+    print(f"   {lists['request_id'].nunique():,} lists, {len(lists):,} rows in {out / 'lists'} "
+          "(a rerun of the same command resumes; see docs/scoring.md)")
 
 
 def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
@@ -403,6 +433,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     # MLflow's schema-creation chatter is not for our users; its warnings and errors still show
     # (MLflow's own setting, read when MLflow is imported; a user's explicit choice wins).
     os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
+    # threefold draws its own progress (threefold.core.progress); MLflow's download bars would interleave with it
+    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
                 "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models, "score": cmd_score}
     try:

@@ -24,7 +24,8 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from threefold.models.registry import FACTOR_METHODS, model_class
+from threefold.core.progress import progress
+from threefold.models.registry import FACTOR_METHODS, model_class, param_table
 from threefold.pipeline.config import ExperimentConfig
 from threefold.core.scoring import Scorer
 
@@ -252,6 +253,12 @@ def _jsonable(value):
     return value if isinstance(value, (str, int, float, bool, type(None))) else str(value)
 
 
+def _default_sweeps(method: str) -> int | None:
+    """The ``max_sweeps`` default of a model method (None for models fitted without sweeps)."""
+    table = param_table(method)
+    return table["max_sweeps"].default if "max_sweeps" in table else None
+
+
 def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = print,
           truth: TruthSource | None = None) -> TrainReport:
     """Fit, evaluate and log every model of ``config``; see the module docstring.
@@ -297,7 +304,13 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
                            tags={**tags, "threefold.kind": "model", "threefold.model": name}) as run_id:
                 log_params(store, run_id, model_params(config, name))
                 logger = SweepLogger(store, run_id)
-                outcome = fit_and_evaluate(config, data, dataset, name, callback=logger)
+                sweeps = config.models[name].get("max_sweeps", _default_sweeps(config.models[name]["method"]))
+                with progress(sweeps, f"fit {name}", "sweeps") as bar:
+                    def on_sweep(record, model=None, logger=logger, bar=bar):
+                        logger(record, model)
+                        bar.update(1)
+
+                    outcome = fit_and_evaluate(config, data, dataset, name, callback=on_sweep)
                 logger.log_history(outcome.history)
                 metrics = log_outcome(store, run_id, outcome, config)
                 result = getattr(outcome.estimator, "result_", None)

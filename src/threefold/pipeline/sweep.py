@@ -41,6 +41,7 @@ import numpy as np
 import pandas as pd
 
 from threefold.pipeline.config import ExperimentConfig, parse_config
+from threefold.core.progress import progress
 from threefold.evaluation.splits import check_selection
 
 __all__ = ["SweepReport", "trial_overrides", "trial_hash", "run_trial", "sweep"]
@@ -287,7 +288,9 @@ def _run_trials(store, experiment_id, parent_id, todo, metric, workers, schedule
         futures = {client.submit(run_trial, t["config"].sections, t["config"].source, t["model"], truth, pure=False): t
                    for t in todo}
         started = time.perf_counter()
+        bar = progress(len(todo), "sweep", "trials")
         for future in as_completed(futures):
+            bar.update(1)
             trial = futures[future]
             try:
                 result = future.result()
@@ -300,6 +303,7 @@ def _run_trials(store, experiment_id, parent_id, todo, metric, workers, schedule
             shown = f"{value:.4f}" if value is not None else result.get("error", "").splitlines()[0][:120]
             echo(f"  trial {trial['index']} {status.lower()} after {time.perf_counter() - started:.0f} s: "
                  f"{trial['overrides']} -> {shown}")
+        bar.close()
     finally:
         client.close()
         if cluster is not None:

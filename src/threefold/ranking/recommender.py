@@ -84,6 +84,15 @@ def raw_columns(spec) -> list[str]:
     return []
 
 
+def _needs_time(spec) -> bool:
+    """Whether a context mode's level depends on the timestamp (dayparts, week parts, crosses with them)."""
+    if isinstance(spec, ColumnContext):
+        return False
+    if isinstance(spec, CrossedContext):
+        return any(_needs_time(part) for part in spec.parts)
+    return True
+
+
 def _arrow(column: pd.Series) -> pa.Array:
     """A request column as Arrow (object columns as text, so mixed ints and strings parse alike)."""
     if column.dtype == object:
@@ -214,7 +223,7 @@ class Recommender:
             ok = ~_blank(first[name])
             out[ok] = values[ok].to_numpy(dtype=object)
             return out
-        timed = times != ALWAYS_LIVE
+        timed = times != ALWAYS_LIVE if _needs_time(spec) else np.ones(len(first), dtype=bool)
         rows = first.loc[timed].assign(timestamp=times[timed])
         try:
             derived = spec.labels_for(rows)

@@ -158,6 +158,7 @@ def model_folder(model: str | os.PathLike, *, store=None, download_to: str | os.
                              "baselines and parent runs have none. Pick a model's run (`threefold runs`).")
     from mlflow.exceptions import MlflowException
 
+    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")  # our own progress reporting only
     target = Path(download_to) if download_to is not None else Path(tempfile.mkdtemp(prefix="threefold-model-"))
     target.mkdir(parents=True, exist_ok=True)
     try:
