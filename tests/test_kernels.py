@@ -118,6 +118,44 @@ def test_loss_equals_dense_sum_over_all_cells():
     assert_allclose(fit, 1 - np.sqrt(data / np.sum(W * P**2)), rtol=1e-12)
 
 
+def _pair_cells(seed):
+    """Random cells of a (6, 5, 4, 3) tensor; user 0 holds none."""
+    rng = np.random.default_rng(seed)
+    mask = rng.random((6, 5, 4, 3)) < 0.3
+    mask[0] = False
+    coords = np.array(np.nonzero(mask))
+    return coords, rng.random(coords.shape[1])
+
+
+def test_loss_with_w0_per_pair_equals_the_dense_weighted_sum():
+    """w0_scope="pair": each (user, item) pair weighs w0 in all, spread over its context cells (dense brute force)."""
+    from dataclasses import replace
+
+    from threefold.core.feedback import FeedbackWeighting
+
+    base = SparseTensor.from_arrays(*_pair_cells(9), (6, 5, 4, 3), w0=1.0, mode_names=("user", "item", "daypart", "device"))
+    stored_p = base.preference
+    stored_w = np.random.default_rng(11).uniform(0.05, 3.0, stored_p.size)
+    tensor = SparseTensor.from_arrays(base.coords, stored_p, base.shape, confidence=stored_w, w0=1.0,
+                                      mode_names=("user", "item", "daypart", "device"))
+    tensor = replace(tensor, weighting=FeedbackWeighting(w0=0.6, w0_scope="pair"))
+    assert tensor.w0 == pytest.approx(0.6 / 12) and tensor.weighting.w0_scope == "cell"
+    active = np.ones((4, 3), dtype=bool)
+    factors = _factors(10, tensor.shape, active)
+    problem = als.make_problem(tensor, factors, active, reg=0.2, update_modes=())
+    loss, _ = als.loss_and_fit(problem)
+    W = np.full(tensor.shape, 0.6 / (4 * 3))  # unshown cells: the pair's 0.6 over its 12 context cells
+    P = np.zeros(tensor.shape)
+    W[tuple(base.coords)] = stored_w
+    P[tuple(base.coords)] = stored_p
+    xhat = np.einsum("ir,jr,kr,lr->ijkl", *factors)
+    data = np.sum(W * (P - xhat) ** 2)
+    unshown = np.ones(tensor.shape, dtype=bool)
+    unshown[tuple(base.coords)] = False
+    assert_allclose(W[0, 0][unshown[0, 0]].sum(), 0.6, rtol=1e-12)  # user 0 holds no cell: the whole pair weight
+    assert_allclose(loss, data + 0.2 * sum(np.sum(f**2) for f in factors), rtol=1e-12)
+
+
 @pytest.mark.parametrize("block_cells", [als.BLOCK_CELLS, 4])
 def test_thread_count_does_not_change_the_update(block_cells):
     tensor = _weighted_tensor(7, shape=(40, 30, 4), density=0.3)

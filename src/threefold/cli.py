@@ -25,6 +25,8 @@ def _add_weighting_flags(parser: argparse.ArgumentParser) -> None:
     group.add_argument("--signal", choices=("clicks", "dwell"), default="clicks")
     group.add_argument("--w-skip", dest="w_skip", type=float, default=2.0, help="confidence of each skip (default 2)")
     group.add_argument("--w0", type=float, default=1.0, help="weight of cells never shown (default 1)")
+    group.add_argument("--w0-scope", dest="w0_scope", choices=("cell", "pair"), default="cell",
+                       help="w0 per unshown cell, or per (user, item) pair spread over its context cells")
     group.add_argument("--half-life-hours", dest="half_life_hours", type=float, default=None)
     group.add_argument("--negatives", choices=("skip_above", "all_exposures", "none"), default="skip_above")
 
@@ -34,7 +36,7 @@ def _weighting(args: argparse.Namespace):
 
     return FeedbackWeighting(
         alpha=args.alpha, transform=args.transform, signal=args.signal,
-        w_skip=args.w_skip, w0=args.w0, half_life_hours=args.half_life_hours,
+        w_skip=args.w_skip, w0=args.w0, w0_scope=args.w0_scope, half_life_hours=args.half_life_hours,
     )
 
 
@@ -105,12 +107,17 @@ def _add_store_flag(parser: argparse.ArgumentParser, default=None) -> None:
 def _add_tracking_commands(commands) -> None:
     """``train``, ``sweep`` and ``runs`` (docs/experiments.md)."""
     for name, text in (("train", "fit, evaluate and log every model of an experiment config"),
-                       ("sweep", "search settings on Dask workers, selecting on the validation window")):
+                       ("sweep", "search settings on Dask workers, selecting on the validation window"),
+                       ("select", "choose the structure of every structure = \"auto\" CP model on the validation window")):
         sub = commands.add_parser(name, help=text)
         sub.add_argument("config", help="experiment config (TOML)")
         sub.add_argument("--set", dest="overrides", action="append", default=[], metavar="SECTION.KEY=VALUE",
                          help="override a config value, e.g. --set models.cp.rank=8 (repeatable)")
         _add_store_flag(sub)
+        if name == "select":
+            sub.add_argument("--model", action="append", default=[], metavar="NAME",
+                             help="only this model (repeatable; default every \"auto\" model)")
+            sub.add_argument("--json", action="store_true", help="print the selections as JSON")
         if name == "sweep":
             sub.add_argument("--workers", type=int, default=2, help="local Dask worker processes (default 2)")
             sub.add_argument("--scheduler", default=None, metavar="ADDRESS",
@@ -187,6 +194,23 @@ def cmd_train(args: argparse.Namespace) -> int:
 
     config = load_config(args.config, parse_overrides(args.overrides))
     print(summary_text(train(config, open_store(args.store), truth=site_truth)))
+    return 0
+
+
+def cmd_select(args: argparse.Namespace) -> int:
+    from threefold.demo.simulate import site_truth
+    from threefold.pipeline.config import load_config, parse_overrides
+    from threefold.pipeline.select import auto_models, select_and_log
+    from threefold.tracking.store import open_store
+
+    config = load_config(args.config, parse_overrides(args.overrides))
+    if not auto_models(config):
+        raise ValueError(f"{args.config}: no CP model has structure = \"auto\"; set it in a [models.NAME] table "
+                         "with method = \"cp\" (see docs/models.md, choosing a structure).")
+    quiet = (lambda line: None) if args.json else print
+    _, selections = select_and_log(config, open_store(args.store), truth=site_truth, models=args.model, echo=quiet)
+    if args.json:
+        print(json.dumps([s.to_dict() for s in selections], indent=2, default=str))
     return 0
 
 
@@ -436,7 +460,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     # threefold draws its own progress (threefold.core.progress); MLflow's download bars would interleave with it
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
-                "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models, "score": cmd_score}
+                "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models, "score": cmd_score,
+                "select": cmd_select}
     try:
         return handlers[args.command](args)
     except (ValueError, KeyError, FileNotFoundError, MemoryError) as error:

@@ -20,7 +20,7 @@ The math (see ``docs/feedback.md`` for a hand-worked table):
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import Literal
 
 import numpy as np
@@ -31,6 +31,8 @@ __all__ = ["CellEvidence", "FeedbackWeighting", "cell_weights"]
 
 Transform = Literal["log1p", "linear", "none"]
 Signal = Literal["clicks", "dwell"]
+#: What ``w0`` weighs: each unshown cell, or each (user, item) pair over its context cells.
+W0_SCOPES = ("cell", "pair")
 
 
 @dataclass(frozen=True, eq=False)
@@ -101,7 +103,14 @@ class FeedbackWeighting:
     w_skip : float, default=2.0
         Confidence of each exposure that counts as a negative; in [0, inf).
     w0 : float, default=1.0
-        Weight of every cell that was never shown (not stored); in [0, inf).
+        Weight of the cells that were never shown (not stored); in [0, inf).
+    w0_scope : {"cell", "pair"}, default="cell"
+        What ``w0`` weighs: every unshown cell (``"cell"``), or every (user,
+        item) pair, spread evenly over its context cells (``"pair"``: each
+        unshown cell weighs ``w0 / Π_{c >= 2} I_c``). With ``"pair"`` the
+        unshown mass stays that of a two-way model whatever the context modes;
+        a tensor resolves it to the per-cell weight when it is built
+        (:meth:`per_cell`).
     half_life_hours : float or None, default=None
         Time decay of a cell's confidence by the age of its last event at
         ``reference_time``; ``None`` disables decay.
@@ -114,6 +123,7 @@ class FeedbackWeighting:
     signal: Signal = "clicks"
     w_skip: float = 2.0
     w0: float = 1.0
+    w0_scope: str = "cell"
     half_life_hours: float | None = None
     reference_time: int | None = None
 
@@ -123,12 +133,20 @@ class FeedbackWeighting:
         check_choice("signal", self.signal, ("clicks", "dwell"), owner="FeedbackWeighting")
         check_number("w_skip", self.w_skip, low=0.0, owner="FeedbackWeighting")
         check_number("w0", self.w0, low=0.0, owner="FeedbackWeighting")
+        check_choice("w0_scope", self.w0_scope, W0_SCOPES, owner="FeedbackWeighting")
         if self.half_life_hours is not None:
             check_number("half_life_hours", self.half_life_hours, low=0.0, low_open=True, owner="FeedbackWeighting")
 
     def to_dict(self) -> dict:
         """Plain dict of the parameters (JSON-serializable)."""
         return asdict(self)
+
+    def per_cell(self, shape: tuple[int, ...]) -> "FeedbackWeighting":
+        """The same weighting with ``w0`` per cell of a tensor of ``shape`` (user, item, context...)."""
+        if self.w0_scope == "cell":
+            return self
+        context_cells = float(np.prod([int(s) for s in shape[2:]], dtype=np.float64)) if len(shape) > 2 else 1.0
+        return replace(self, w0=self.w0 / max(context_cells, 1.0), w0_scope="cell")
 
 
 def cell_weights(

@@ -85,6 +85,7 @@ class SparseTensor:
         object.__setattr__(self, "dtype", dtype)
         shape = tuple(int(s) for s in self.shape)
         object.__setattr__(self, "shape", shape)
+        object.__setattr__(self, "weighting", self.weighting.per_cell(shape))  # w0 per cell from here on
         coords = np.ascontiguousarray(self.coords, dtype=np.int32)
         if coords.ndim != 2 or coords.shape[0] != len(shape):
             raise ValueError(

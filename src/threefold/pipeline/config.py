@@ -88,7 +88,7 @@ def _model_rule(method: str, key: str) -> Rule:
 
 _WEIGHTING_RULES: dict[str, Rule] = {
     "alpha": _float(low=0.0), "transform": _choice("log1p", "linear", "none"), "signal": _choice("clicks", "dwell"),
-    "w_skip": _float(low=0.0), "w0": _float(low=0.0), "half_life_hours": _float(low=0.0, low_open=True),
+    "w_skip": _float(low=0.0), "w0": _float(low=0.0), "w0_scope": _choice("cell", "pair"), "half_life_hours": _float(low=0.0, low_open=True),
     "reference_time": _int(low=0),
 }
 
@@ -116,10 +116,14 @@ _SECTIONS: dict[str, dict[str, tuple[Rule, object]]] = {
                    "n_resamples": (_int(low=1), _EVAL.n_resamples), "random_state": (_SEED, _EVAL.random_state),
                    "propensity_clip": (_float(low=1.0), _EVAL.propensity_clip),
                    "sensitivity_users": (_int(low=1), _EVAL.sensitivity_users)},
+    "select": {"context_ranks": (_list(_int(low=1), "ints", 1), [2, 4]), "metric": (_metric, "ndcg"),
+               "k": (_int(low=1), 10)},
     "sweep": {"model": (_STR, None), "search": (_choice("grid", "random"), "grid"), "n_trials": (_int(low=1), None),
               "metric": (_metric, "ndcg"), "k": (_int(low=1), 10), "random_state": (_SEED, 0), "space": (None, {})},
 }
 _REQUIRED_SECTIONS = ("data", "split", "models")
+#: ``structure = "auto"`` in a CP model table: chosen on the validation window (threefold.pipeline.select).
+AUTO = "auto"
 
 
 # ---------------------------------------------------------------------- the config
@@ -277,6 +281,10 @@ def parse_config(raw: Mapping, *, source: str = "<config>", base: Path | None = 
                           f"models are {sorted(out['models'])}.")
     sweep["space"] = _check_space(sweep["space"], out, source)
     _check_models_against_modes(out, source)
+    auto = [name for name, spec in out["models"].items() if spec["method"] == "cp" and spec.get("structure") == AUTO]
+    if auto and out["split"]["validation_window"] is None:
+        raise ConfigError(f"{source}: [models.{auto[0]}] structure = \"auto\" is chosen on the validation window; "
+                          "set [split] validation_window (e.g. \"24h\").")
     if sweep["model"] is not None and sweep["model"] not in out["models"]:
         raise ConfigError(f"{source}: [sweep] model {sweep['model']!r} is not a model; models are {sorted(out['models'])}.")
     return ExperimentConfig(sections=out, source=source)
@@ -355,7 +363,7 @@ def _check_model_modes(name: str, spec: Mapping, modes: tuple[str, ...], source:
     owner = f"[models.{name}]{where}"
     method = spec["method"]
     try:
-        if method == "cp" and spec.get("structure") is not None:
+        if method == "cp" and spec.get("structure") not in (None, AUTO):
             Structure.parse(spec["structure"], rank=spec["rank"]).check_modes(modes)
         for mode in spec.get("fixed_modes") or ():
             if mode not in modes:

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
@@ -25,34 +25,14 @@ import numpy as np
 import pandas as pd
 
 from threefold.core.progress import progress
-from threefold.models.registry import FACTOR_METHODS, model_class, param_table
+from threefold.models.registry import FACTOR_METHODS, param_table
 from threefold.pipeline.config import ExperimentConfig
+from threefold.pipeline.select import auto_models, select_and_log
+from threefold.pipeline.stages import Dataset, StageData, TruthSource, load_dataset, make_estimator, prepare_stage
 from threefold.core.scoring import Scorer
 
 __all__ = ["Dataset", "StageData", "FitOutcome", "ModelRun", "TrainReport", "load_dataset", "prepare_stage",
            "make_estimator", "fit_and_evaluate", "train", "key_metric_names", "TruthSource"]
-
-@dataclass(eq=False)
-class Dataset:
-    """The loaded input: events, the items catalog and their fingerprint."""
-
-    events: pd.DataFrame
-    items: pd.DataFrame | None
-    fingerprint: dict
-    warnings: list = field(default_factory=list)
-    true_relevance: object = None  # f(requests, item_ids) on a simulated site, else None
-
-
-@dataclass(eq=False)
-class StageData:
-    """One stage of the split with its training tensor."""
-
-    stage: object
-    tensor: object
-    build_report: object
-    contexts: list
-    build_options: dict
-
 
 @dataclass(eq=False)
 class FitOutcome:
@@ -67,62 +47,6 @@ class FitOutcome:
     @property
     def history(self) -> tuple:
         return tuple(getattr(self.estimator, "history_", ()))
-
-
-#: ``truth(events_path)``: the true relevance ``f(requests, item_ids)`` of a simulated log, or None.
-TruthSource = Callable[[str], Callable | None]
-
-
-def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> Dataset:
-    """Load the events (and catalog) of ``[data]`` and fingerprint the files.
-
-    ``truth`` gives the true relevance of a simulated log (the command line
-    passes :func:`threefold.demo.simulate.site_truth`); the pipeline itself
-    never imports the demo.
-    """
-    from threefold.data.events import load_events, load_items
-    from threefold.tracking.runlog import dataset_fingerprint
-
-    data = config["data"]
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        events = load_events(data["events"], timezone=data["timezone"], errors=data["errors"],
-                             drop_activity_outliers=data["drop_activity_outliers"],
-                             hash_user_ids_salt=data["hash_user_ids_salt"])
-        items = load_items(data["items"], timezone=data["timezone"]) if data["items"] else None
-    fingerprint = dataset_fingerprint({"events": data["events"], "items": data["items"]}, events, items)
-    return Dataset(events=events, items=items, fingerprint=fingerprint, warnings=[str(w.message) for w in caught],
-                   true_relevance=truth(data["events"]) if truth is not None else None)
-
-
-def prepare_stage(config: ExperimentConfig, dataset: Dataset, stage_name: str) -> StageData:
-    """Split the events and build the training tensor of the ``"validation"`` or ``"test"`` stage."""
-    from threefold.evaluation.splits import temporal_split
-    from threefold.pipeline.prepare import tensor_options
-
-    split_cfg, build = config["split"], config["build"]
-    if stage_name == "validation" and split_cfg["validation_window"] is None:
-        raise ValueError(f"{config.source}: selecting on the validation window needs [split] validation_window "
-                         "(e.g. \"24h\"); model selection on the test window is refused.")
-    split = temporal_split(dataset.events, split_cfg["cutoff"],
-                           validation_window=split_cfg["validation_window"] or "24h",
-                           test_window=split_cfg["test_window"])
-    stage = split.selection_stage() if stage_name == "validation" else split.final_stage()
-    contexts = config.contexts()
-    options, _ = tensor_options(stage.train, weighting=config.weighting(), negatives=build["negatives"],
-                                dtype=build["dtype"], drop_duplicates=build["drop_duplicates"],
-                                position_propensity=build["position_propensity"],
-                                propensity_clip=build["propensity_clip"])
-    tensor, report = stage.train_tensor(contexts, **options)
-    return StageData(stage=stage, tensor=tensor, build_report=report, contexts=contexts, build_options=options)
-
-
-def make_estimator(spec: dict, callback: Callable | None = None):
-    """The estimator of a ``[models.NAME]`` table (``method`` and parameters)."""
-    params = {k: (tuple(v) if isinstance(v, list) else v) for k, v in spec.items() if k != "method"}
-    if spec["method"] in FACTOR_METHODS:
-        params["callback"] = callback
-    return model_class(spec["method"])(**params)
 
 
 def fit_and_evaluate(config: ExperimentConfig, data: StageData, dataset: Dataset, name: str, *,
@@ -294,6 +218,8 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
         log_params(store, parent_id, config.flat())
         store.call(store.client.log_text, parent_id, config.to_toml(), "config.toml")
         store.call(store.client.log_dict, parent_id, dataset.fingerprint, "dataset.json")
+        if auto_models(config):  # structure = "auto": chosen on the validation window, logged as child runs
+            config, _ = select_and_log(config, store, dataset=dataset, echo=echo, parent_id=parent_id)
         data = prepare_stage(config, dataset, stage_name)
         store.call(store.client.log_dict, parent_id, data.build_report.to_dict(), "build_report.json")
         log_metrics(store, parent_id, {"tensor_cells": data.tensor.nnz, "events_rows": len(dataset.events)})

@@ -102,7 +102,7 @@ def _stage_data(config: ExperimentConfig, truth=None):
     """Dataset and validation stage of a config, cached per worker process; re-weighted per trial."""
     from dataclasses import replace
 
-    from threefold.pipeline.experiment import load_dataset, prepare_stage
+    from threefold.pipeline.stages import load_dataset, prepare_stage
 
     data_key = repr(sorted(config["data"].items()))
     if data_key not in _CACHE:
@@ -226,7 +226,7 @@ def sweep(config: ExperimentConfig, store, *, workers: int = 2, scheduler: str |
     SweepReport
     """
     from threefold.core.checks import check_int
-    from threefold.pipeline.experiment import load_dataset
+    from threefold.pipeline.stages import load_dataset
     from threefold.tracking.runlog import environment_tags, log_metrics, log_params
 
     workers = check_int("workers", workers, low=1, owner="sweep")

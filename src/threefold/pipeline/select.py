@@ -1,0 +1,263 @@
+"""Choosing a CP structure on the validation window: ``structure = "auto"`` and ``threefold select``.
+
+A context model is worth its extra terms only if it ranks better than
+context-free MF on data it has not seen. :func:`select_structure` fits a
+documented family of structures on the selection stage's training tensor,
+evaluates them all on the validation window against the family's MF (the same
+queries, a paired comparison per user), and keeps MF unless a context
+structure wins with the evaluation's confidence (the 95% paired bootstrap
+interval of the difference lies above zero). The winner is a structure string
+like any other: ``train`` fits it as the model.
+
+The family, for context modes ``c_1 .. c_n``, MF rank ``R`` (the model's
+``rank``) and each context rank ``r`` of ``[select] context_ranks``::
+
+    mf               user*item:R
+    mf+<c>:r         user*item:R + user*item*<c>:r              one per context mode
+    mf+all:r         user*item:R + user*item*c_1*...*c_n:r      every context mode at once
+    mf+item×ctx:r    user*item:R + item*c_1:r + ... + item*c_n:r  item-by-context terms
+    split+<best>:r   the best of the above with user*item:(R - r) (same total rank)
+
+Every candidate shares the model's other parameters (``reg``, ``max_sweeps``,
+``random_state``...). Selecting on ``ndcg_true`` is refused: true relevance
+exists only on simulated sites, and choosing by it would not be possible on a
+real one.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from threefold.core.progress import progress
+from threefold.pipeline.config import AUTO, ExperimentConfig
+
+__all__ = ["candidate_structures", "select_structure", "Selection", "auto_models"]
+
+
+def candidate_structures(contexts: list[str], rank: int, context_ranks) -> dict[str, str]:
+    """Name -> structure of the family (without the rank splits, which depend on the winner); see the module docstring."""
+    family = {"mf": f"user*item:{rank}"}
+    for r in context_ranks:
+        for c in contexts:
+            family[f"mf+{c}:{r}"] = f"user*item:{rank} + user*item*{c}:{r}"
+        if len(contexts) > 1:
+            family[f"mf+all:{r}"] = f"user*item:{rank} + user*item*{'*'.join(contexts)}:{r}"
+        if contexts:
+            family[f"mf+item×ctx:{r}"] = f"user*item:{rank} + " + " + ".join(f"item*{c}:{r}" for c in contexts)
+    return family
+
+
+def _split(structure: str, rank: int, r: int) -> str | None:
+    """The same structure with the MF term at ``rank - r`` (None when nothing would be left)."""
+    if rank - r < 1:
+        return None
+    head = f"user*item:{rank}"
+    return structure.replace(head, f"user*item:{rank - r}", 1) if structure.startswith(head) else None
+
+
+def auto_models(config: ExperimentConfig) -> list[str]:
+    """The CP models of a config whose ``structure`` is ``"auto"``."""
+    return [n for n, s in config.models.items() if s["method"] == "cp" and s.get("structure") == AUTO]
+
+
+@dataclass
+class Selection:
+    """The outcome of :func:`select_structure`.
+
+    Attributes
+    ----------
+    model : str
+        The config's model name.
+    chosen : str
+        Candidate name of the winner (``"mf"`` when no context structure wins).
+    structure : str
+        The winner's structure string.
+    table : DataFrame
+        One row per candidate: ``candidate, structure, value, mean_difference,
+        low, high, p_value, wins`` (difference and interval against ``mf``).
+    metric : str
+        E.g. ``"ndcg@10"`` on the validation window.
+    """
+
+    model: str
+    chosen: str
+    structure: str
+    table: pd.DataFrame
+    metric: str
+    evaluation: object = field(repr=False, default=None)
+
+    def to_text(self) -> str:
+        shown = self.table.copy()
+        lines = [f"structure selection for [models.{self.model}] on the validation window ({self.metric}, "
+                 f"paired with mf, 95% bootstrap intervals):",
+                 shown.to_string(index=False, float_format=lambda x: f"{x:.4f}"),
+                 f"chosen: {self.chosen}  ({self.structure})"]
+        if self.chosen == "mf":
+            lines.append("no context structure beat mf with 95% confidence: context-free MF is kept.")
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict:
+        return {"model": self.model, "chosen": self.chosen, "structure": self.structure, "metric": self.metric,
+                "candidates": json.loads(self.table.to_json(orient="records"))}
+
+
+def select_structure(config: ExperimentConfig, dataset, model: str, *, data=None,
+                     echo: Callable[[str], None] = print, show_progress: bool = True) -> Selection:
+    """Choose the structure of the ``"auto"`` CP model ``model`` on the validation window.
+
+    Parameters
+    ----------
+    config : ExperimentConfig
+    dataset : threefold.pipeline.experiment.Dataset
+    model : str
+        A ``[models.NAME]`` with ``method = "cp"`` and ``structure = "auto"``.
+    data : StageData or None
+        The validation stage (prepared here when None).
+
+    Returns
+    -------
+    Selection
+    """
+    from threefold.evaluation.harness import evaluate_stage
+    from threefold.pipeline.config import evaluation_options
+    from threefold.pipeline.stages import make_estimator, prepare_stage
+
+    select = config["select"]
+    if select["metric"] == "ndcg_true":
+        raise ValueError(f"{config.source}: [select] metric = \"ndcg_true\" is refused: true relevance exists only on "
+                         "simulated sites; select on an observed metric (ndcg, recall, ...).")
+    spec = config.models[model]
+    if spec["method"] != "cp" or spec.get("structure") != AUTO:
+        raise ValueError(f"[models.{model}] is not a CP model with structure = \"auto\".")
+    data = data if data is not None else prepare_stage(config, dataset, "validation")
+    contexts = list(data.tensor.mode_names[2:])
+    family = candidate_structures(contexts, int(spec["rank"]), select["context_ranks"])
+    fitted = _fit_all(family, spec, data.tensor, make_estimator, show_progress)
+    evaluation = _evaluate(fitted, config, data, dataset, evaluate_stage, evaluation_options)
+    table = _table(family, evaluation, select)
+    best = _winner(table)
+    if best != "mf":  # the rank split of the winner, same total rank as mf
+        splits = {f"split+{best}:{r}": s for r in select["context_ranks"]
+                  if (s := _split(family[best], int(spec["rank"]), r)) is not None and s != family[best]}
+        if splits:
+            fitted.update(_fit_all(splits, spec, data.tensor, make_estimator, show_progress))
+            family.update(splits)
+            evaluation = _evaluate(fitted, config, data, dataset, evaluate_stage, evaluation_options)
+            table = _table(family, evaluation, select)
+            best = _winner(table)
+    selection = Selection(model=model, chosen=best, structure=family[best], table=table,
+                          metric=f"{select['metric']}@{select['k']}", evaluation=evaluation)
+    echo(selection.to_text())
+    return selection
+
+
+def _fit_all(family: dict, spec: dict, tensor, make_estimator, show_progress: bool) -> dict:
+    fitted = {}
+    with progress(len(family), "select", "candidates", enabled=show_progress) as bar:
+        for name, structure in family.items():
+            estimator = make_estimator({**spec, "structure": structure})
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", category=UserWarning)  # convergence is in the history
+                estimator.fit(tensor)
+            fitted[name] = estimator
+            bar.update(1)
+    return fitted
+
+
+def _evaluate(fitted: dict, config, data, dataset, evaluate_stage, evaluation_options):
+    options = evaluation_options(config, baseline="mf", stage="validation")
+    return evaluate_stage(data.stage, fitted, data.contexts, options, catalog=dataset.items,
+                          build_options=data.build_options, true_relevance=dataset.true_relevance)
+
+
+def _table(family: dict, evaluation, select: dict) -> pd.DataFrame:
+    metric, k = select["metric"], select["k"]
+    comparisons = evaluation.comparisons
+    rows = []
+    for name, structure in family.items():
+        row = {"candidate": name, "structure": structure, "value": evaluation.value(name, metric, k)}
+        if name != "mf":
+            c = comparisons[(comparisons["model"] == name) & (comparisons["metric"] == metric) & (comparisons["k"] == k)]
+            if len(c):
+                c = c.iloc[0]
+                row.update(mean_difference=c["mean_difference"], low=c["low"], high=c["high"], p_value=c["p_value"])
+        rows.append(row)
+    table = pd.DataFrame(rows)
+    for column in ("mean_difference", "low", "high", "p_value"):
+        if column not in table:
+            table[column] = np.nan
+    table["wins"] = table["low"] > 0
+    return table
+
+
+def _winner(table: pd.DataFrame) -> str:
+    """The candidate with the largest mean difference among those whose interval lies above zero; else mf."""
+    winners = table[table["wins"]]
+    if winners.empty:
+        return "mf"
+    return str(winners.sort_values(["mean_difference", "candidate"], ascending=[False, True])["candidate"].iloc[0])
+
+
+def log_selection(store, experiment_id: str, parent_id: str, selection: Selection, tags: dict) -> None:
+    """One child run per candidate under ``parent_id`` (its structure, validation value and paired difference)."""
+    from threefold.tracking.runlog import log_metrics, log_params
+
+    for row in selection.table.to_dict(orient="records"):
+        with store.run(experiment_id, run_name=f"{selection.model}/{row['candidate']}", nested=True,
+                       tags={**tags, "threefold.kind": "select-candidate", "threefold.model": selection.model,
+                             "threefold.chosen": str(row["candidate"] == selection.chosen).lower()}) as run_id:
+            log_params(store, run_id, {"candidate": row["candidate"], "structure": row["structure"]})
+            metric = selection.metric.replace("@", "_at_")
+            log_metrics(store, run_id, {metric: row["value"], f"{metric}_minus_mf": row["mean_difference"],
+                                        f"{metric}_minus_mf_low": row["low"], f"{metric}_minus_mf_high": row["high"],
+                                        "p_value": row["p_value"]})
+    store.call(store.client.log_dict, parent_id, selection.to_dict(), f"selection/{selection.model}.json")
+    store.call(store.client.set_tag, parent_id, f"threefold.selected.{selection.model}", selection.structure)
+
+
+def select_and_log(config: ExperimentConfig, store, *, dataset=None, truth=None, models=None,
+                   echo: Callable[[str], None] = print, parent_id: str | None = None) -> tuple[ExperimentConfig, list]:
+    """Resolve every ``"auto"`` model of ``config`` and log the candidates; return the resolved config and selections.
+
+    With ``parent_id`` the candidates are logged under that run (``train``);
+    otherwise under a new ``select`` parent run (``threefold select``).
+    """
+    from threefold.pipeline.stages import load_dataset, prepare_stage
+    from threefold.tracking.runlog import environment_tags
+
+    names = list(models) if models else auto_models(config)
+    unknown = [n for n in names if n not in auto_models(config)]
+    if unknown:
+        raise ValueError(f"{config.source}: {unknown} are not CP models with structure = \"auto\"; "
+                         f"those are {auto_models(config)}.")
+    if not names:
+        return config, []
+    dataset = dataset if dataset is not None else load_dataset(config, truth)
+    data = prepare_stage(config, dataset, "validation")
+    experiment_id = store.experiment_id(config["experiment"]["name"])
+    tags = {**config["experiment"]["tags"], **environment_tags(), "threefold.config_sha256": config.fingerprint()}
+    selections = []
+
+    def run_all(parent: str) -> None:
+        for name in names:
+            selection = select_structure(config, dataset, name, data=data, echo=echo)
+            log_selection(store, experiment_id, parent, selection, tags)
+            selections.append(selection)
+
+    if parent_id is not None:
+        run_all(parent_id)
+    else:
+        from pathlib import Path
+
+        with store.run(experiment_id, run_name=f"select {Path(config.source).stem}",
+                       tags={**tags, "threefold.kind": "select"}) as parent:
+            store.call(store.client.log_text, parent, config.to_toml(), "config.toml")
+            run_all(parent)
+    resolved = config.with_overrides({f"models.{s.model}.structure": s.structure for s in selections})
+    return resolved, selections

@@ -1,0 +1,98 @@
+"""The data steps every pipeline shares: load a dataset, prepare a stage's tensor, make an estimator.
+
+:func:`load_dataset`, :func:`prepare_stage` and :func:`make_estimator` know
+nothing of MLflow; ``train`` (:mod:`threefold.pipeline.experiment`), the sweep
+workers (:mod:`threefold.pipeline.sweep`) and structure selection
+(:mod:`threefold.pipeline.select`) call them.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+from typing import Callable
+
+import pandas as pd
+
+from threefold.models.registry import FACTOR_METHODS, model_class
+from threefold.pipeline.config import ExperimentConfig
+
+__all__ = ["Dataset", "StageData", "TruthSource", "load_dataset", "prepare_stage", "make_estimator"]
+
+
+@dataclass(eq=False)
+class Dataset:
+    """The loaded input: events, the items catalog and their fingerprint."""
+
+    events: pd.DataFrame
+    items: pd.DataFrame | None
+    fingerprint: dict
+    warnings: list = field(default_factory=list)
+    true_relevance: object = None  # f(requests, item_ids) on a simulated site, else None
+
+
+@dataclass(eq=False)
+class StageData:
+    """One stage of the split with its training tensor."""
+
+    stage: object
+    tensor: object
+    build_report: object
+    contexts: list
+    build_options: dict
+
+
+#: ``truth(events_path)``: the true relevance ``f(requests, item_ids)`` of a simulated log, or None.
+TruthSource = Callable[[str], Callable | None]
+
+
+def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> Dataset:
+    """Load the events (and catalog) of ``[data]`` and fingerprint the files.
+
+    ``truth`` gives the true relevance of a simulated log (the command line
+    passes :func:`threefold.demo.simulate.site_truth`); the pipeline itself
+    never imports the demo.
+    """
+    from threefold.data.events import load_events, load_items
+    from threefold.tracking.runlog import dataset_fingerprint
+
+    data = config["data"]
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        events = load_events(data["events"], timezone=data["timezone"], errors=data["errors"],
+                             drop_activity_outliers=data["drop_activity_outliers"],
+                             hash_user_ids_salt=data["hash_user_ids_salt"])
+        items = load_items(data["items"], timezone=data["timezone"]) if data["items"] else None
+    fingerprint = dataset_fingerprint({"events": data["events"], "items": data["items"]}, events, items)
+    return Dataset(events=events, items=items, fingerprint=fingerprint, warnings=[str(w.message) for w in caught],
+                   true_relevance=truth(data["events"]) if truth is not None else None)
+
+
+def prepare_stage(config: ExperimentConfig, dataset: Dataset, stage_name: str) -> StageData:
+    """Split the events and build the training tensor of the ``"validation"`` or ``"test"`` stage."""
+    from threefold.evaluation.splits import temporal_split
+    from threefold.pipeline.prepare import tensor_options
+
+    split_cfg, build = config["split"], config["build"]
+    if stage_name == "validation" and split_cfg["validation_window"] is None:
+        raise ValueError(f"{config.source}: selecting on the validation window needs [split] validation_window "
+                         "(e.g. \"24h\"); model selection on the test window is refused.")
+    split = temporal_split(dataset.events, split_cfg["cutoff"],
+                           validation_window=split_cfg["validation_window"] or "24h",
+                           test_window=split_cfg["test_window"])
+    stage = split.selection_stage() if stage_name == "validation" else split.final_stage()
+    contexts = config.contexts()
+    options, _ = tensor_options(stage.train, weighting=config.weighting(), negatives=build["negatives"],
+                                dtype=build["dtype"], drop_duplicates=build["drop_duplicates"],
+                                position_propensity=build["position_propensity"],
+                                propensity_clip=build["propensity_clip"])
+    tensor, report = stage.train_tensor(contexts, **options)
+    return StageData(stage=stage, tensor=tensor, build_report=report, contexts=contexts, build_options=options)
+
+
+def make_estimator(spec: dict, callback: Callable | None = None):
+    """The estimator of a ``[models.NAME]`` table (``method`` and parameters)."""
+    params = {k: (tuple(v) if isinstance(v, list) else v) for k, v in spec.items() if k != "method"}
+    if spec["method"] in FACTOR_METHODS:
+        params["callback"] = callback
+    return model_class(spec["method"])(**params)
