@@ -108,12 +108,19 @@ def _add_tracking_commands(commands) -> None:
     """``train``, ``sweep`` and ``runs`` (docs/experiments.md)."""
     for name, text in (("train", "fit, evaluate and log every model of an experiment config"),
                        ("sweep", "search settings on Dask workers, selecting on the validation window"),
-                       ("select", "choose the structure of every structure = \"auto\" CP model on the validation window")):
+                       ("select", "choose the structure of every structure = \"auto\" CP model on the validation window"),
+                       ("gain", "what each context mode adds to a model: the model against itself with the mode marginalized")):
         sub = commands.add_parser(name, help=text)
         sub.add_argument("config", help="experiment config (TOML)")
         sub.add_argument("--set", dest="overrides", action="append", default=[], metavar="SECTION.KEY=VALUE",
                          help="override a config value, e.g. --set models.cp.rank=8 (repeatable)")
         _add_store_flag(sub)
+        if name == "gain":
+            sub.add_argument("--model", required=True, metavar="NAME", help="the [models.NAME] to fit and report on")
+            sub.add_argument("--stage", choices=("validation", "test"), default=None,
+                             help="evaluation window (default: the config's [evaluation] stage)")
+            sub.add_argument("--json", action="store_true", help="print the report as JSON")
+            sub.add_argument("--figure", default=None, metavar="PNG", help="also draw the gains with their intervals")
         if name == "select":
             sub.add_argument("--model", action="append", default=[], metavar="NAME",
                              help="only this model (repeatable; default every \"auto\" model)")
@@ -211,6 +218,22 @@ def cmd_select(args: argparse.Namespace) -> int:
     _, selections = select_and_log(config, open_store(args.store), truth=site_truth, models=args.model, echo=quiet)
     if args.json:
         print(json.dumps([s.to_dict() for s in selections], indent=2, default=str))
+    return 0
+
+
+def cmd_gain(args: argparse.Namespace) -> int:
+    from threefold.demo.simulate import site_truth
+    from threefold.pipeline.config import load_config, parse_overrides
+    from threefold.pipeline.context_report import fit_and_report
+
+    config = load_config(args.config, parse_overrides(args.overrides))
+    quiet = (lambda line: None) if args.json else print
+    report = fit_and_report(config, args.model, truth=site_truth, stage=args.stage, echo=quiet)
+    print(json.dumps(report.to_dict(), indent=2, default=float) if args.json else report.to_text())
+    if args.figure:
+        report.figure(args.figure)
+        if not args.json:
+            print(f"figure: {args.figure}")
     return 0
 
 
@@ -461,7 +484,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
                 "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models, "score": cmd_score,
-                "select": cmd_select}
+                "select": cmd_select, "gain": cmd_gain}
     try:
         return handlers[args.command](args)
     except (ValueError, KeyError, FileNotFoundError, MemoryError) as error:

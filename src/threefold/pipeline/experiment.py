@@ -177,6 +177,23 @@ def _jsonable(value):
     return value if isinstance(value, (str, int, float, bool, type(None))) else str(value)
 
 
+def _log_context_gain(store, run_id: str, config: ExperimentConfig, data, dataset, result, name: str, echo) -> None:
+    """The context-gain report of a chosen model, as text, JSON and a figure of its run."""
+    import tempfile
+
+    from threefold.pipeline.context_report import gain_report
+
+    select = config["select"]
+    report = gain_report(config, data, dataset, result, name, metric=select["metric"], k=select["k"])
+    echo(report.to_text().replace("\n", "\n  "))
+    store.call(store.client.log_text, run_id, report.to_text(), "context_gain/report.txt")
+    store.call(store.client.log_dict, run_id, report.to_dict(), "context_gain/report.json")
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "context_gain.png"
+        report.figure(path)
+        store.call(store.client.log_artifact, run_id, str(path), "context_gain")
+
+
 def _default_sweeps(method: str) -> int | None:
     """The ``max_sweeps`` default of a model method (None for models fitted without sweeps)."""
     table = param_table(method)
@@ -218,7 +235,8 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
         log_params(store, parent_id, config.flat())
         store.call(store.client.log_text, parent_id, config.to_toml(), "config.toml")
         store.call(store.client.log_dict, parent_id, dataset.fingerprint, "dataset.json")
-        if auto_models(config):  # structure = "auto": chosen on the validation window, logged as child runs
+        auto = auto_models(config)
+        if auto:  # structure = "auto": chosen on the validation window, logged as child runs
             config, _ = select_and_log(config, store, dataset=dataset, echo=echo, parent_id=parent_id)
         data = prepare_stage(config, dataset, stage_name)
         store.call(store.client.log_dict, parent_id, data.build_report.to_dict(), "build_report.json")
@@ -243,6 +261,8 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
                 uri = log_pyfunc_model(store, result, config, dataset, data, name) if isinstance(result, Scorer) else None
                 if uri is not None:
                     store.call(store.client.set_tag, run_id, "threefold.model_uri", uri)
+                if name in auto and any(result.owned_columns(m).any() for m in range(2, len(data.tensor.mode_names))):
+                    _log_context_gain(store, run_id, config, data, dataset, result, name, echo)
             runs.append(ModelRun(name=name, run_id=run_id, metrics=metrics, model_uri=uri, seconds=outcome.seconds))
             table = outcome.evaluation.table
             tables.append(table[table["model"] == name])
