@@ -117,7 +117,7 @@ _SECTIONS: dict[str, dict[str, tuple[Rule, object]]] = {
                    "propensity_clip": (_float(low=1.0), _EVAL.propensity_clip),
                    "sensitivity_users": (_int(low=1), _EVAL.sensitivity_users)},
     "select": {"context_ranks": (_list(_int(low=1), "ints", 1), [2, 4]), "metric": (_metric, "ndcg"),
-               "k": (_int(low=1), 10)},
+               "k": (_int(low=1), 10), "candidates": (_choice("eligible", "shown"), "shown")},
     "sweep": {"model": (_STR, None), "search": (_choice("grid", "random"), "grid"), "n_trials": (_int(low=1), None),
               "metric": (_metric, "ndcg"), "k": (_int(low=1), 10), "random_state": (_SEED, 0), "space": (None, {})},
 }

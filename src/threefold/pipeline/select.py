@@ -12,11 +12,18 @@ like any other: ``train`` fits it as the model.
 The family, for context modes ``c_1 .. c_n``, MF rank ``R`` (the model's
 ``rank``) and each context rank ``r`` of ``[select] context_ranks``::
 
-    mf               user*item:R
-    mf+<c>:r         user*item:R + user*item*<c>:r              one per context mode
-    mf+all:r         user*item:R + user*item*c_1*...*c_n:r      every context mode at once
-    mf+item×ctx:r    user*item:R + item*c_1:r + ... + item*c_n:r  item-by-context terms
-    split+<best>:r   the best of the above with user*item:(R - r) (same total rank)
+    mf                     user*item:R
+    mf+<c>:r               user*item:R + user*item*<c>:r                 one per context mode
+    mf+all:r               user*item:R + user*item*c_1*...*c_n:r         every context mode at once
+    mf+item×ctx:r          user*item:R + item*c_1:r + ... + item*c_n:r    item-by-context terms
+    mf+item×ctx+pairs:r    the above + item*c_i*c_j:r for every pair      item-by-context-pair terms
+    <user>&<item>          second round: the context terms of the best user-level candidate
+                           (mf+<c>, mf+all) and of the best item-level one, together
+    split+<best>:r         the winner with user*item:(R - r) (same total rank)
+
+Candidates are compared on ``[select] candidates`` (default ``"shown"``: each
+validation request ranks the list it was shown, so a model is not rewarded for
+guessing what the logging policy showed; ``"eligible"`` ranks every live item).
 
 Every candidate shares the model's other parameters (``reg``, ``max_sweeps``,
 ``random_state``...). Selecting on ``ndcg_true`` is refused: true relevance
@@ -41,16 +48,33 @@ __all__ = ["candidate_structures", "select_structure", "Selection", "auto_models
 
 
 def candidate_structures(contexts: list[str], rank: int, context_ranks) -> dict[str, str]:
-    """Name -> structure of the family (without the rank splits, which depend on the winner); see the module docstring."""
+    """Name -> structure of the first round of the family; see the module docstring."""
     family = {"mf": f"user*item:{rank}"}
+    mf = f"user*item:{rank}"
+    pairs = [(a, b) for i, a in enumerate(contexts) for b in contexts[i + 1:]]
     for r in context_ranks:
         for c in contexts:
-            family[f"mf+{c}:{r}"] = f"user*item:{rank} + user*item*{c}:{r}"
+            family[f"mf+{c}:{r}"] = f"{mf} + user*item*{c}:{r}"
         if len(contexts) > 1:
-            family[f"mf+all:{r}"] = f"user*item:{rank} + user*item*{'*'.join(contexts)}:{r}"
+            family[f"mf+all:{r}"] = f"{mf} + user*item*{'*'.join(contexts)}:{r}"
         if contexts:
-            family[f"mf+item×ctx:{r}"] = f"user*item:{rank} + " + " + ".join(f"item*{c}:{r}" for c in contexts)
+            family[f"mf+item×ctx:{r}"] = f"{mf} + " + " + ".join(f"item*{c}:{r}" for c in contexts)
+        if pairs:
+            family[f"mf+item×ctx+pairs:{r}"] = (f"{mf} + " + " + ".join(f"item*{c}:{r}" for c in contexts) + " + "
+                                                + " + ".join(f"item*{a}*{b}:{r}" for a, b in pairs))
     return family
+
+
+def _combined(family: dict, table: pd.DataFrame) -> dict:
+    """Second round: the context terms of the best user-level and the best item-level candidate together."""
+    ranked = table[table["candidate"] != "mf"].sort_values("value", ascending=False)["candidate"].tolist()
+    user_level = next((n for n in ranked if not n.startswith("mf+item")), None)
+    item_level = next((n for n in ranked if n.startswith("mf+item")), None)
+    if user_level is None or item_level is None:
+        return {}
+    head = family["mf"]
+    terms = family[user_level].removeprefix(head) + family[item_level].removeprefix(head)
+    return {f"{user_level}&{item_level.removeprefix('mf+')}": head + terms}
 
 
 def _split(structure: str, rank: int, r: int) -> str | None:
@@ -141,6 +165,12 @@ def select_structure(config: ExperimentConfig, dataset, model: str, *, data=None
     fitted = _fit_all(family, spec, data.tensor, make_estimator, show_progress)
     evaluation = _evaluate(fitted, config, data, dataset, evaluate_stage, evaluation_options)
     table = _table(family, evaluation, select)
+    combined = _combined(family, table)
+    if combined:
+        fitted.update(_fit_all(combined, spec, data.tensor, make_estimator, show_progress))
+        family.update(combined)
+        evaluation = _evaluate(fitted, config, data, dataset, evaluate_stage, evaluation_options)
+        table = _table(family, evaluation, select)
     best = _winner(table)
     if best != "mf":  # the rank split of the winner, same total rank as mf
         splits = {f"split+{best}:{r}": s for r in select["context_ranks"]
@@ -171,7 +201,7 @@ def _fit_all(family: dict, spec: dict, tensor, make_estimator, show_progress: bo
 
 
 def _evaluate(fitted: dict, config, data, dataset, evaluate_stage, evaluation_options):
-    options = evaluation_options(config, baseline="mf", stage="validation")
+    options = evaluation_options(config, baseline="mf", stage="validation", candidates=config["select"]["candidates"])
     return evaluate_stage(data.stage, fitted, data.contexts, options, catalog=dataset.items,
                           build_options=data.build_options, true_relevance=dataset.true_relevance)
 
