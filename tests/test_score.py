@@ -282,3 +282,16 @@ def test_model_by_folder_run_id_or_mlflow_uri_and_the_pyfunc_agree(saved, tmp_pa
         score_requests("nonsense!", iso, out=tmp_path / "bad", store=store, show_progress=False)
     with pytest.raises(ValueError, match=r"Could not fetch the model 'models:/m-0000'"):
         score_requests("models:/m-0000", iso, out=tmp_path / "bad2", store=store, show_progress=False)
+
+
+def test_the_recommender_never_merges_or_drops_requests(saved):
+    """A missing id, one id for two users: an error naming the rows; an empty batch: an empty output with the schema."""
+    folder, result, specs, _ = saved
+    recommender = Recommender(result, specs)
+    with pytest.raises(InputRowsError, match=r"column 'request_id': a missing or blank request id in 2 row\(s\): data row\(s\) 2, 3"):
+        recommender.recommend(pd.DataFrame({"request_id": ["a", None, " "], "user_id": ["u01", "u02", "u03"]}))
+    with pytest.raises(InputRowsError, match=r"one request id given for several users in 2 row\(s\): data row\(s\) 1, 3"):
+        recommender.recommend(pd.DataFrame({"request_id": ["a", "b", "a"], "user_id": ["u01", "u02", "u03"]}))
+    empty = recommender.recommend(pd.DataFrame({"request_id": [], "user_id": []}), explain="top3")
+    assert empty.empty and list(empty.columns) == recommender.output_columns("top3")
+    assert empty["rank"].dtype == np.int64 and empty["score"].dtype == np.float64

@@ -93,6 +93,15 @@ def _needs_time(spec) -> bool:
     return True
 
 
+def _dtype_of(column: str) -> str:
+    """The pandas dtype of an output column (for an empty output with the full schema)."""
+    if column == "rank":
+        return "int64"
+    if column == "score" or column.endswith(("_term", "_share")):
+        return "float64"
+    return "object"
+
+
 def _arrow(column: pd.Series) -> pa.Array:
     """A request column as Arrow (object columns as text, so mixed ints and strings parse alike)."""
     if column.dtype == object:
@@ -267,7 +276,17 @@ class Recommender:
         if missing:
             raise ValueError(f"The requests need the column(s) {missing}; they have {list(requests.columns)}.")
         frame = requests.reset_index(drop=True)
-        request_codes, request_ids = pd.factorize(frame["request_id"].astype("string").fillna(""), sort=False)
+        if frame.empty:
+            return pd.DataFrame({c: pd.Series(dtype=_dtype_of(c)) for c in columns})
+        blank = _blank(frame["request_id"])
+        if blank.any():  # two requests without an id would merge into one
+            raise InputRowsError("request_id", np.flatnonzero(blank), "a missing or blank request id")
+        request_codes, request_ids = pd.factorize(frame["request_id"].astype("string"), sort=False)
+        users_of = pd.DataFrame({"r": request_codes, "u": frame["user_id"].astype("string").fillna("\x00")})
+        mixed = users_of.groupby("r")["u"].transform("nunique").to_numpy() > 1
+        if mixed.any():  # one id for two users: one of them would get no list
+            raise InputRowsError("request_id", np.flatnonzero(mixed), "one request id given for several users",
+                                 frame["request_id"][mixed].astype(str).tolist())
         first_rows = np.unique(request_codes, return_index=True)[1]
         first = frame.iloc[first_rows].reset_index(drop=True)
         try:
