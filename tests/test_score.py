@@ -230,23 +230,25 @@ def test_a_job_killed_at_random_points_resumes_exactly(saved, tmp_path, seed):
                                text=True, timeout=300)
     assert reference.returncode == 0, reference.stderr[-2000:]
     target = tmp_path / "killed"
-    started = time.perf_counter()
-    probe = subprocess.run(command + ["--out", str(tmp_path / "probe")], env=child_env(), capture_output=True, timeout=300)
-    assert probe.returncode == 0
-    whole = time.perf_counter() - started
+    n_parts = -(-len(big) // 20)
     states = []
-    for attempt in range(12):
+    # kill points: a few at random times (often in start-up or staging), then at random numbers of written parts
+    plan = [("seconds", rng.uniform(0.5, 3.0)) for _ in range(2)]
+    plan += [("parts", int(p)) for p in np.sort(rng.choice(np.arange(1, n_parts), size=4, replace=False))]
+    for kind, point in plan:
         process = subprocess.Popen(command + ["--out", str(target)], env=child_env(), stdout=subprocess.DEVNULL,
                                    stderr=subprocess.DEVNULL)
-        time.sleep(rng.uniform(0.2, 1.0) * whole)
+        deadline = time.monotonic() + 120
+        while process.poll() is None and time.monotonic() < deadline:
+            written = len(list(target.glob("part-*.parquet"))) if target.exists() else 0
+            if (kind == "seconds" and time.monotonic() > deadline - 120 + point) or (kind == "parts" and written >= point):
+                break
+            time.sleep(0.005)
         process.send_signal(signal.SIGKILL)
         process.wait()
         parts = len(list(target.glob("part-*.parquet"))) if target.exists() else 0
-        done = (target / "_manifest.json").is_file()
-        states.append((parts, done))
-        if done:
-            break
-    assert any(0 < parts and not done for parts, done in states), states  # at least one kill mid-job
+        states.append((kind, point, parts, (target / "_manifest.json").is_file()))
+    assert sum(0 < parts < n_parts and not done for *_, parts, done in states) >= 3, states  # killed mid-job
     final = subprocess.run(command + ["--out", str(target)], env=child_env(), capture_output=True, text=True, timeout=300)
     assert final.returncode == 0, final.stderr[-2000:]
     assert not list(target.glob(".*.tmp")) and not (target / "_staging").exists()

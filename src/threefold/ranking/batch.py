@@ -57,7 +57,7 @@ from threefold.core.bundle import bundle_fingerprint, sha256_file
 from threefold.core.checks import check_choice, check_int
 from threefold.core.exceptions import InputRowsError
 from threefold.data.events import open_source
-from threefold.ranking.recommender import DEFAULT_K, EXPLAIN_CHOICES, Recommender
+from threefold.ranking.recommender import DEFAULT_K, EXPLAIN_CHOICES, Recommender, blank_mask
 
 __all__ = ["JobArguments", "JobMismatch", "prepare_job", "score_part", "finish_job", "read_output", "job_parts",
            "DEFAULT_CHUNK_ROWS", "FORMATS"]
@@ -159,11 +159,6 @@ def _columns_of(source) -> list[str]:
     return list(source.columns) if isinstance(source, pd.DataFrame) else open_source(source).columns
 
 
-def _blank(column: pd.Series) -> np.ndarray:
-    text = column.astype("string")
-    return (text.isna() | (text.str.strip() == "")).to_numpy(dtype=bool)
-
-
 def _id_hashes(values: pd.Series) -> np.ndarray:
     """uint64 hash of each id (text)."""
     return pd.util.hash_array(values.astype(str).to_numpy(dtype=object))
@@ -183,7 +178,7 @@ def _stage_requests(requests, name: str, staging: Path, chunk_rows: int, recomme
     counts, hashes, parts = [], [], []
     seen = np.zeros(0, dtype=np.uint64)
     for part, (first_row, chunk) in enumerate(_iter_input(requests, chunk_rows)):
-        blank = _blank(chunk["request_id"])
+        blank = blank_mask(chunk["request_id"])
         if blank.any():
             raise InputRowsError("request_id", np.flatnonzero(blank), "a blank request id").located(name, first_row)
         ids = _id_hashes(chunk["request_id"])
@@ -224,7 +219,7 @@ def _stage_candidates(candidates, name: str, staging: Path, hashes: np.ndarray, 
     for chunk_index, (first_row, chunk) in enumerate(_iter_input(candidates, _CANDIDATE_CHUNK_ROWS,
                                                                   ["request_id", "item_id"])):
         for column in ("request_id", "item_id"):
-            blank = _blank(chunk[column])
+            blank = blank_mask(chunk[column])
             if blank.any():
                 raise InputRowsError(column, np.flatnonzero(blank), f"a blank {column}").located(name, first_row)
         ids = _id_hashes(chunk["request_id"])

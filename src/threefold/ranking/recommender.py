@@ -56,7 +56,7 @@ from threefold.data.timestamps import check_timezone, parse_timestamps
 from threefold.models.model_io import load_model
 from threefold.ranking.topk import ALWAYS_LIVE, top_k, top_k_product
 
-__all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "EXPLAIN_CHOICES", "context_specs", "raw_columns"]
+__all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "EXPLAIN_CHOICES", "context_specs", "raw_columns", "blank_mask"]
 
 #: Columns of every output, in order; the context modes' level columns follow ``score``
 #: and reason columns follow ``status`` (see :meth:`Recommender.output_columns`).
@@ -109,7 +109,7 @@ def _arrow(column: pd.Series) -> pa.Array:
     return pa.array(column, from_pandas=True)
 
 
-def _blank(column: pd.Series) -> np.ndarray:
+def blank_mask(column: pd.Series) -> np.ndarray:
     """ndarray of shape (n,), bool: missing or blank values."""
     text = column.astype("string")
     return (text.isna() | (text.str.strip() == "")).to_numpy(dtype=bool)
@@ -192,7 +192,7 @@ class Recommender:
         if "timestamp" not in first.columns or not len(first):
             return times
         column = first["timestamp"]
-        blank = _blank(column)
+        blank = blank_mask(column)
         parsed = parse_timestamps(_arrow(column), self.zone)
         bad = ~parsed.valid & ~blank
         if bad.any():
@@ -209,7 +209,7 @@ class Recommender:
         if "k" not in first.columns:
             return out
         column = first["k"]
-        given = ~_blank(column)
+        given = ~blank_mask(column)
         values = pd.to_numeric(column.where(given), errors="coerce").to_numpy(dtype=np.float64)
         bad = given & ~(np.isfinite(values) & (values >= 1) & (values == np.round(values)))
         if bad.any():
@@ -229,7 +229,7 @@ class Recommender:
         out = np.full(len(first), FALLBACK_LABEL, dtype=object)
         if name in first.columns and not isinstance(spec, ColumnContext):  # a level given directly
             values = first[name].astype("string")
-            ok = ~_blank(first[name])
+            ok = ~blank_mask(first[name])
             out[ok] = values[ok].to_numpy(dtype=object)
             return out
         timed = times != ALWAYS_LIVE if _needs_time(spec) else np.ones(len(first), dtype=bool)
@@ -278,7 +278,7 @@ class Recommender:
         frame = requests.reset_index(drop=True)
         if frame.empty:
             return pd.DataFrame({c: pd.Series(dtype=_dtype_of(c)) for c in columns})
-        blank = _blank(frame["request_id"])
+        blank = blank_mask(frame["request_id"])
         if blank.any():  # two requests without an id would merge into one
             raise InputRowsError("request_id", np.flatnonzero(blank), "a missing or blank request id")
         request_codes, request_ids = pd.factorize(frame["request_id"].astype("string"), sort=False)
