@@ -24,7 +24,7 @@ def _add_weighting_flags(parser: argparse.ArgumentParser) -> None:
     group.add_argument("--transform", choices=("log1p", "linear", "none"), default="log1p")
     group.add_argument("--signal", choices=("clicks", "dwell"), default="clicks")
     group.add_argument("--w-skip", dest="w_skip", type=float, default=2.0, help="confidence of each skip (default 2)")
-    group.add_argument("--w0", type=float, default=1.0, help="weight of cells never shown (default 1)")
+    group.add_argument("--w0", type=float, default=0.1, help="weight of cells never shown (default 0.1; docs/models.md, section 9)")
     group.add_argument("--w0-scope", dest="w0_scope", choices=("cell", "pair"), default="cell",
                        help="w0 per unshown cell, or per (user, item) pair spread over its context cells")
     group.add_argument("--half-life-hours", dest="half_life_hours", type=float, default=None)
@@ -400,7 +400,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
     folder = save_tensor(tensor, out / "tensor", extra={"build_report": build_report.to_dict()})
     print(f"   saved to {folder}")
 
-    print("== 4. train, evaluate and track: popularity, context-free MF, a context structure, implicit Tucker")
+    print("== 4. train, evaluate and track: popularity, context-free MF, a CP structure chosen on the validation\n"
+          "      window (structure = \"auto\": MF unless a context structure wins), implicit Tucker")
     config_path = _write_demo_config(out, log_dir, site)
     print(f"   config {config_path}; run store {out / 'runs'}")
     config = load_config(config_path)
@@ -453,7 +454,7 @@ def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
                  "timezone": p.timezone},
         "build": {"contexts": ["daypart", "device", "page_tone"], "negatives": "skip_above",
                   "daypart_starts": [float(x) for x in p.daypart_starts], "daypart_labels": list(p.daypart_labels)},
-        "weighting": {"alpha": 10.0, "w_skip": 2.0, "w0": 1.0},
+        "weighting": {"alpha": 10.0, "w_skip": 2.0, "w0": 0.1},
         "split": {"cutoff": int(cutoff), "validation_window": "24h"},
         "evaluation": {"ks": [3, 5, 10], "baseline": "popularity", "metrics": ["recall", "ndcg", "ndcg_true"],
                        "n_resamples": 200, "random_state": 0},
@@ -462,7 +463,7 @@ def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
             "mf": {"method": "cp", "structure": "user*item", "rank": 16, "reg": 0.1, "max_sweeps": 10,
                    "random_state": 1},
             "cp_context": {"method": "cp", "rank": 16, "reg": 0.1, "max_sweeps": 10, "random_state": 1,
-                           "structure": "user*item + user*item*daypart:4 + item*device:4 + item*page_tone:4"},
+                           "structure": "auto"},  # chosen on the validation window: MF unless context wins
             "tucker": {"method": "implicit_tucker", "rank": [8, 8, 3, 2, 2], "reg": 0.1, "max_sweeps": 5,
                        "random_state": 1},
         },

@@ -102,7 +102,7 @@ class FeedbackWeighting:
         ``x``: the click count, or the total dwell in seconds.
     w_skip : float, default=2.0
         Confidence of each exposure that counts as a negative; in [0, inf).
-    w0 : float, default=1.0
+    w0 : float, default=0.1
         Weight of the cells that were never shown (not stored); in [0, inf).
     w0_scope : {"cell", "pair"}, default="cell"
         What ``w0`` weighs: every unshown cell (``"cell"``), or every (user,
@@ -122,7 +122,7 @@ class FeedbackWeighting:
     transform: Transform = "log1p"
     signal: Signal = "clicks"
     w_skip: float = 2.0
-    w0: float = 1.0
+    w0: float = 0.1
     w0_scope: str = "cell"
     half_life_hours: float | None = None
     reference_time: int | None = None
