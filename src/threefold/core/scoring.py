@@ -148,7 +148,8 @@ class Scorer(Ranker):
         width = np.asarray(self.item_matrix()).shape[1]
         return tuple(f"component {r}" for r in range(width)), np.arange(width, dtype=np.int64)
 
-    def reason_terms(self, users: np.ndarray, contexts: np.ndarray | None, items: np.ndarray) -> tuple[tuple[str, ...], np.ndarray]:
+    def reason_terms(self, users: np.ndarray, contexts: np.ndarray | None, items: np.ndarray,
+                     queries: np.ndarray | None = None) -> tuple[tuple[str, ...], np.ndarray]:
         """The named additive terms of the scores of (user, context levels, item) cells.
 
         The default splits ``Q[r] V[i, r]`` by :meth:`reason_groups`; models whose
@@ -160,6 +161,8 @@ class Scorer(Ranker):
         contexts : ndarray of shape (n, n_context_modes), int, or None
         items : ndarray of shape (n,), int
             Item index of each cell; ``-1`` is an item with a zero row (no terms).
+        queries : ndarray of shape (n, R') or None
+            The cells' query rows when the caller has them (``query_matrix(users, contexts)``).
 
         Returns
         -------
@@ -169,12 +172,14 @@ class Scorer(Ranker):
         """
         labels, group = self.reason_groups()
         items = np.asarray(items, dtype=np.int64)
-        queries = np.asarray(self.query_matrix(users, contexts), dtype=np.float64)
+        if queries is None:
+            queries = self.query_matrix(users, contexts)
         rows = np.asarray(self.item_matrix(), dtype=np.float64)[np.maximum(items, 0)]
-        products = queries * np.where(items[:, None] >= 0, rows, 0.0)
-        terms = np.zeros((products.shape[0], len(labels)))
-        np.add.at(terms.T, group, products.T)
-        return labels, terms
+        rows[items < 0] = 0.0
+        products = np.asarray(queries, dtype=np.float64) * rows
+        one_hot = np.zeros((group.size, len(labels)))
+        one_hot[np.arange(group.size), group] = 1.0
+        return labels, products @ one_hot
 
     def owned_columns(self, mode: int) -> np.ndarray:
         """ndarray of shape (R',), bool: the factor columns a mode owns (all of them unless a structure says otherwise)."""
@@ -257,8 +262,8 @@ class FittedScorer(Scorer):
     def reason_groups(self) -> tuple[tuple[str, ...], np.ndarray]:
         return self._fitted().reason_groups()
 
-    def reason_terms(self, users, contexts, items) -> tuple[tuple[str, ...], np.ndarray]:
-        return self._fitted().reason_terms(users, contexts, items)
+    def reason_terms(self, users, contexts, items, queries=None) -> tuple[tuple[str, ...], np.ndarray]:
+        return self._fitted().reason_terms(users, contexts, items, queries)
 
     @property
     def shape(self) -> tuple[int, ...]:

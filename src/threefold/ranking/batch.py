@@ -176,26 +176,16 @@ def _stage_requests(requests, name: str, staging: Path, chunk_rows: int, recomme
         raise ValueError(f"{name}: the requests have an 'item_id' column; give one row per request and the "
                          "candidate items as a separate candidates table (request_id, item_id).")
     counts, hashes, parts = [], [], []
-    seen = np.zeros(0, dtype=np.uint64)
     for part, (first_row, chunk) in enumerate(_iter_input(requests, chunk_rows)):
         blank = blank_mask(chunk["request_id"])
         if blank.any():
             raise InputRowsError("request_id", np.flatnonzero(blank), "a blank request id").located(name, first_row)
         ids = _id_hashes(chunk["request_id"])
-        order = np.argsort(ids, kind="stable")
-        repeated = np.zeros(len(chunk), dtype=bool)
-        repeated[order[1:][ids[order][1:] == ids[order][:-1]]] = True
-        repeated |= np.isin(ids, seen)
-        if repeated.any():
-            rows = np.flatnonzero(repeated)
-            raise InputRowsError("request_id", rows, "a request id given before (one row per request)",
-                                 chunk["request_id"].iloc[rows].tolist()).located(name, first_row)
         try:  # the checks the recommender would make later, made before any scoring
             recommender.request_times(chunk)
             recommender.request_k(chunk, DEFAULT_K)
         except InputRowsError as error:
             raise error.located(name, first_row) from None
-        seen = np.union1d(seen, ids)
         hashes.append(ids)
         parts.append(np.full(ids.size, part, dtype=np.int64))
         chunk = chunk.assign(**{_ROW: np.arange(first_row, first_row + len(chunk), dtype=np.int64)})
@@ -206,8 +196,13 @@ def _stage_requests(requests, name: str, staging: Path, chunk_rows: int, recomme
         raise ValueError(f"{name}: no requests to score (the table is empty).")
     hashes = np.concatenate(hashes)
     parts = np.concatenate(parts)
-    order = np.argsort(hashes)
-    return counts, hashes[order], parts[order]
+    order = np.argsort(hashes, kind="stable")  # file order among equal ids: the later rows are the repeats
+    hashes, parts = hashes[order], parts[order]
+    repeated = np.flatnonzero(hashes[1:] == hashes[:-1]) + 1
+    if repeated.size:
+        rows = np.sort(order[repeated])  # 0-based data rows of the file
+        raise InputRowsError("request_id", rows, "a request id given before (one row per request)").located(name, 1)
+    return counts, hashes, parts
 
 
 def _stage_candidates(candidates, name: str, staging: Path, hashes: np.ndarray, parts: np.ndarray) -> None:

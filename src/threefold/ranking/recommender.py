@@ -62,11 +62,16 @@ __all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "EXPLAIN_CHOICES", "con
 #: and reason columns follow ``status`` (see :meth:`Recommender.output_columns`).
 OUTPUT_COLUMNS = ("request_id", "user_id", "rank", "item_id", "score", "user_status", "item_status", "status")
 _FLAG_ORDER = ("unknown_user", "unknown_context", "unknown_item", "no_candidates")
+#: ``status`` text of every combination of flags (bit j: ``_FLAG_ORDER[j]``).
+_STATUS_TEXT = np.array([";".join(f for j, f in enumerate(_FLAG_ORDER) if code >> j & 1) or "ok"
+                         for code in range(1 << len(_FLAG_ORDER))], dtype=object)
 #: What ``explain`` may ask for: no reasons, the three largest, all of them.
 EXPLAIN_CHOICES = ("none", "top3", "all")
 #: List length when a request or a caller names none (the one place this default lives).
 DEFAULT_K = 10
 _TOP3 = 3
+#: Cells explained at a time by :meth:`Recommender.reasons` (bounds the memory of the term matrix).
+_REASON_BLOCK = 1 << 17
 
 
 def context_specs(serving: dict) -> list:
@@ -100,6 +105,23 @@ def _dtype_of(column: str) -> str:
     if column == "score" or column.endswith(("_term", "_share")):
         return "float64"
     return "object"
+
+
+def _largest(labels, terms: np.ndarray, count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Names, terms and shares of the ``count`` largest terms (by magnitude) of every row."""
+    magnitude = np.abs(terms)
+    if count < len(labels):
+        order = np.argpartition(-magnitude, count - 1, axis=1)[:, :count]
+        picked = np.take_along_axis(magnitude, order, axis=1)
+        order = np.take_along_axis(order, np.lexsort((order, -picked), axis=1), axis=1)
+    else:
+        order = np.argsort(-magnitude, axis=1, kind="stable")
+    chosen = np.take_along_axis(terms, order, axis=1)
+    total = magnitude.sum(axis=1, keepdims=True)
+    shares = np.divide(chosen, total, out=np.zeros_like(chosen), where=total > 0)
+    names = np.asarray(labels, dtype=object)[order]
+    names[total[:, 0] == 0] = None
+    return names, chosen, shares
 
 
 def _arrow(column: pd.Series) -> pa.Array:
@@ -315,7 +337,7 @@ class Recommender:
                           unknown_user, unknown_context)
         if explain != "none":
             reasons = self.reasons(user_rows[request], context_rows[request], item_code,
-                                   top=_TOP3 if explain == "top3" else None)
+                                   top=_TOP3 if explain == "top3" else None, queries=queries, query_of=request)
             out = pd.concat([out, reasons], axis=1)
         return out[columns]
 
@@ -326,13 +348,13 @@ class Recommender:
         unknown_item = (item_code < 0) & ~empty
         flags = {"unknown_user": unknown_user[request], "unknown_context": unknown_context[request],
                  "unknown_item": unknown_item, "no_candidates": empty}
-        status = np.full(request.size, "", dtype=object)
-        for flag in _FLAG_ORDER:
-            status = np.where(flags[flag], np.where(status == "", flag, status + ";" + flag), status)
-        status[status == ""] = "ok"
-        user_status = np.where(flags["unknown_user"], f"unknown:{self.policy.user}", "known").astype(object)
-        item_status = np.where(unknown_item, f"unknown:{self.policy.item}", "known").astype(object)
-        item_status[empty] = None
+        code = np.zeros(request.size, dtype=np.int64)  # one bit per flag, then one lookup
+        for bit, flag in enumerate(_FLAG_ORDER):
+            code |= flags[flag].astype(np.int64) << bit
+        status = _STATUS_TEXT[code]
+        user_status = np.array(["known", f"unknown:{self.policy.user}"], dtype=object)[flags["unknown_user"].astype(np.int8)]
+        item_status = np.array(["known", f"unknown:{self.policy.item}", None], dtype=object)[
+            np.where(empty, 2, unknown_item.astype(np.int8))]
         out = {
             "request_id": np.asarray(request_ids, dtype=object)[request],
             "user_id": first["user_id"].astype(object).where(first["user_id"].notna(), None).to_numpy()[request],
@@ -344,10 +366,11 @@ class Recommender:
         for j, name in enumerate(self.context_names):
             used = context_rows[:, j] != fallback[2 + j]
             out[name] = np.where(used, labels[j], None)[request]
-        out.update(user_status=user_status, item_status=item_status, status=status.astype(str))
+        out.update(user_status=user_status, item_status=item_status, status=status)
         return pd.DataFrame(out)
 
-    def reasons(self, users: np.ndarray, contexts: np.ndarray, item_codes: np.ndarray, top: int | None = 3) -> pd.DataFrame:
+    def reasons(self, users: np.ndarray, contexts: np.ndarray, item_codes: np.ndarray, top: int | None = 3,
+                queries: np.ndarray | None = None, query_of: np.ndarray | None = None) -> pd.DataFrame:
         """The reason terms of scored (user, context, item) cells, largest first, as flat columns.
 
         Every score splits into the model's named terms
@@ -367,27 +390,28 @@ class Recommender:
             The model's item index of each cell (< 0: not in the model, zero row, no reasons).
         top : int or None, default=3
             How many reasons per cell (None: all), ordered by absolute term.
+        queries, query_of : ndarray of shape (q, R') and (n,), or None
+            Query rows already computed, and the row of each cell (saves recomputing them).
 
         Returns
         -------
         DataFrame with columns ``reason_1, reason_1_term, reason_1_share, ...``
             ``reason_j`` names the term (None where the cell has no terms).
+
+        Cells are explained in blocks of :data:`_REASON_BLOCK`, so memory stays bounded.
         """
-        labels, terms = self.resolved.scorer.reason_terms(users, contexts if contexts.shape[1] else None,
-                                                          np.where(item_codes >= 0, item_codes, -1))
-        count = len(labels) if top is None else min(top, len(labels))
-        magnitude = np.abs(terms)
-        if count < len(labels):
-            order = np.argpartition(-magnitude, count - 1, axis=1)[:, :count]
-            picked = np.take_along_axis(magnitude, order, axis=1)
-            order = np.take_along_axis(order, np.lexsort((order, -picked), axis=1), axis=1)
-        else:
-            order = np.argsort(-magnitude, axis=1, kind="stable")
-        chosen = np.take_along_axis(terms, order, axis=1)
-        total = magnitude.sum(axis=1, keepdims=True)
-        shares = np.divide(chosen, total, out=np.zeros_like(chosen), where=total > 0)
-        names = np.asarray(labels, dtype=object)[order]
-        names[total[:, 0] == 0] = None
+        n = item_codes.shape[0]
+        count = len(self.reason_labels) if top is None else min(top, len(self.reason_labels))
+        names = np.empty((n, count), dtype=object)
+        chosen = np.empty((n, count))
+        shares = np.empty((n, count))
+        scorer = self.resolved.scorer
+        for start in range(0, n, _REASON_BLOCK):
+            block = slice(start, min(start + _REASON_BLOCK, n))
+            given = None if queries is None else queries[query_of[block]]
+            labels, terms = scorer.reason_terms(users[block], contexts[block] if contexts.shape[1] else None,
+                                                np.where(item_codes[block] >= 0, item_codes[block], -1), queries=given)
+            names[block], chosen[block], shares[block] = _largest(labels, terms, count)
         columns = {}
         for j in range(count):
             columns[f"reason_{j + 1}"] = names[:, j]

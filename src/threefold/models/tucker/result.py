@@ -109,12 +109,13 @@ class TuckerResult(FactorResultMixin, Scorer):
         width = self.core.shape[1]
         return tuple(f"item factor {r}" for r in range(width)), np.arange(width, dtype=np.int64)
 
-    def reason_terms(self, users, contexts, items) -> tuple[tuple[str, ...], np.ndarray]:
+    def reason_terms(self, users, contexts, items, queries=None) -> tuple[tuple[str, ...], np.ndarray]:
         """One term per core entry, ``G[r] · Π_n F_n[cell_n, r_n]`` (:func:`core_contributions`).
 
         Labels name each entry by its component in every mode, e.g.
         ``"core user 2 × item 0 × daypart 1"``. Cells with item ``-1`` (a zero
-        item row) have no terms. Computed in batches of about 2**22 values.
+        item row) have no terms. Computed in batches of about 2**22 values;
+        ``queries`` is not used (core entries are finer than its columns).
         """
         users, contexts = check_queries(users, contexts, self.shape)
         items = np.asarray(items, dtype=np.int64).reshape(-1)
