@@ -304,12 +304,13 @@ class Recommender:
         if blank.any():  # two requests without an id would merge into one
             raise InputRowsError("request_id", np.flatnonzero(blank), "a missing or blank request id")
         request_codes, request_ids = pd.factorize(frame["request_id"].astype("string"), sort=False)
-        users_of = pd.DataFrame({"r": request_codes, "u": frame["user_id"].astype("string").fillna("\x00")})
-        mixed = users_of.groupby("r")["u"].transform("nunique").to_numpy() > 1
-        if mixed.any():  # one id for two users: one of them would get no list
-            raise InputRowsError("request_id", np.flatnonzero(mixed), "one request id given for several users",
-                                 frame["request_id"][mixed].astype(str).tolist())
         first_rows = np.unique(request_codes, return_index=True)[1]
+        if first_rows.size < len(frame):  # several rows per request (candidates): one user each
+            users_of = pd.DataFrame({"r": request_codes, "u": frame["user_id"].astype("string").fillna("\x00")})
+            mixed = users_of.groupby("r")["u"].transform("nunique").to_numpy() > 1
+            if mixed.any():  # one id for two users: one of them would get no list
+                raise InputRowsError("request_id", np.flatnonzero(mixed), "one request id given for several users",
+                                     frame["request_id"][mixed].astype(str).tolist())
         first = frame.iloc[first_rows].reset_index(drop=True)
         try:
             times = self.request_times(first)
