@@ -54,9 +54,13 @@ def test_bad_parameter_values_are_refused_with_the_parameter_name(tmp_path, flag
 def test_demo_runs_end_to_end(tmp_path):
     result = run("demo", "--out", str(tmp_path / "demo"), "--events", "20000")
     assert result.returncode == 0, result.stderr[-2000:]
-    for step in ("== 1.", "== 2.", "== 3.", "== 4."):
+    for step in ("== 1.", "== 2.", "== 3.", "== 4.", "== 5."):
         assert step in result.stdout
     assert "models:/" in result.stdout  # logged models any MLflow client can load
+    assert "structure selection for [models.cp_context]" in result.stdout and "chosen: " in result.stdout
+    lists = pd.read_parquet(tmp_path / "demo" / "lists")  # the score job's parts (its _files skipped)
+    assert {"rank", "item_id", "score", "reason_1", "reason_1_share", "status"} <= set(lists.columns)
+    assert (tmp_path / "demo" / "lists" / "_manifest.json").is_file()
 
 
 def test_models_lists_every_parameter_from_the_tables(tmp_path):
@@ -76,3 +80,24 @@ def test_models_lists_every_parameter_from_the_tables(tmp_path):
     assert text.returncode == 0 and "rank = 8" in text.stdout and "callback" in text.stdout
     bad = run("models", "nope", cwd=tmp_path)
     assert bad.returncode == 1 and "Unknown model method 'nope'; methods are cp" in bad.stderr
+
+
+def test_select_and_gain_on_the_sample_site(tmp_path):
+    """`threefold select` and `threefold gain` on the committed sample log (invented site)."""
+    import json
+    from pathlib import Path
+
+    config = str(Path(__file__).resolve().parents[1] / "experiments" / "quillfen-courier.toml")
+    store = ["--store", str(tmp_path / "runs")]
+    selected = run("select", config, "--set", "models.cp.structure=auto", "--json", *store, cwd=tmp_path)
+    assert selected.returncode == 0, selected.stderr[-2000:]
+    (selection,) = json.loads(selected.stdout)
+    assert selection["model"] == "cp" and selection["candidates"][0]["candidate"] == "mf"
+    assert selection["structure"] in {c["structure"] for c in selection["candidates"]}
+    gain = run("gain", config, "--model", "cp", "--json", "--figure", str(tmp_path / "gain.png"), *store, cwd=tmp_path)
+    assert gain.returncode == 0, gain.stderr[-2000:]
+    report = json.loads(gain.stdout)
+    assert [m["mode"] for m in report["modes"]] == ["daypart", "device"] and report["metric"] == "ndcg@10"
+    assert (tmp_path / "gain.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    refused = run("select", config, *store, cwd=tmp_path)
+    assert refused.returncode == 1 and "no CP model has structure = \"auto\"" in refused.stderr
