@@ -491,3 +491,17 @@ def test_product_errors(kwargs, match):
     args = {"query_matrix": np.zeros((4, 3)), "item_matrix": np.zeros((6, 3)), "k": 2} | kwargs
     with pytest.raises(ValueError, match=match):
         top_k_product(**args)
+
+
+def test_a_live_rule_every_item_passes_gives_the_ranking_without_it():
+    """The shortcut for catalogs live at every request time (no rule read) ranks as the full rule would."""
+    rng = np.random.default_rng(77)
+    query, items, bias = int_factors(rng, 9, 150, 3, np.float64)
+    times = np.array([100, 200, ALWAYS_LIVE, 150, 120, 180, 101, 199, 130])
+    published, expires = np.full(150, 50), np.full(150, 300)
+    ref, _ = slow_product(query, items, 5, bias)
+    idx, _ = top_k_product(query, items, 5, item_bias=bias, live=(published, expires, times))
+    assert_array_equal(idx, ref)
+    expires[7] = 200  # item 7 expires at 200: the rule applies again, and rules it out for the query at 200
+    idx, _ = top_k_product(query, items, 150, item_bias=bias, live=(published, expires, times))
+    assert 7 not in idx[1] and 7 in idx[0]

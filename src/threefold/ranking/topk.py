@@ -726,6 +726,10 @@ def top_k_product(
         pub = _int_array("live[0] (published)", live[0], (n_items,), owner)
         exp = _int_array("live[1] (expires)", live[1], (n_items,), owner)
         times = _int_array("live[2] (times)", live[2], (q,), owner)
+        real = times[times != ALWAYS_LIVE]
+        if real.size == 0 or (np.all(pub <= real.min()) and np.all(real.max() < exp)):
+            has_live = False  # every item is live at every request time: the rule changes nothing, skip its reads
+            pub = exp = times = _NO_INT
     has_al = allowed is not None
     al_ptr, al_idx = _csr_rows("allowed", allowed, q, n_items, owner) if has_al else (_NO_INT, _NO_INT32)
     has_ex = excluded is not None
