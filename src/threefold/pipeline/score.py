@@ -25,7 +25,7 @@ import pandas as pd
 from threefold.core.checks import check_int
 from threefold.core.progress import progress
 from threefold.ranking.batch import (
-    DEFAULT_CHUNK_ROWS, MODEL_COPY, finish_job, job_parts, prepare_job, read_output, score_part,
+    DEFAULT_CHUNK_ROWS, MODEL_COPY, finish_job, job_parts, local_model_folder, prepare_job, read_output, score_part,
 )
 from threefold.ranking.recommender import DEFAULT_K
 
@@ -40,11 +40,10 @@ class SchedulerUnreachable(RuntimeError):
 
 
 def _model_folder(model, out: Path, store) -> Path:
-    from threefold.tracking.pyfunc import model_folder
-
     path = Path(model)
-    if path.is_dir():
-        return model_folder(path)
+    if path.is_dir():  # a local folder: no MLflow import (about a second)
+        return local_model_folder(path)
+    from threefold.tracking.pyfunc import model_folder
     from threefold.tracking.store import open_store
 
     opened = store if hasattr(store, "client") else open_store(store)

@@ -59,7 +59,7 @@ from threefold.core.exceptions import InputRowsError
 from threefold.data.events import open_source
 from threefold.ranking.recommender import DEFAULT_K, EXPLAIN_CHOICES, Recommender, blank_mask
 
-__all__ = ["JobArguments", "JobMismatch", "prepare_job", "score_part", "finish_job", "read_output", "job_parts",
+__all__ = ["JobArguments", "JobMismatch", "local_model_folder", "prepare_job", "score_part", "finish_job", "read_output", "job_parts",
            "DEFAULT_CHUNK_ROWS", "FORMATS"]
 
 JOB_FILE = "_job.json"
@@ -117,6 +117,23 @@ class JobArguments:
         """``"k: 10 -> 20"`` for every compared field that differs."""
         return [f"{name}: {getattr(other, name)!r} -> {getattr(self, name)!r}"
                 for name in self._COMPARED if getattr(self, name) != getattr(other, name)]
+
+
+def local_model_folder(path: str | os.PathLike) -> Path:
+    """The model folder of a local path: a threefold model folder, or a downloaded MLflow model of threefold.
+
+    Raises
+    ------
+    ValueError
+        When the folder is neither.
+    """
+    path = Path(path)
+    if (path / "CURRENT").is_file():
+        return path
+    if (path / "MLmodel").is_file() and (path / "artifacts" / "model" / "CURRENT").is_file():
+        return path / "artifacts" / "model"
+    raise ValueError(f"{path} is neither a threefold model folder (no CURRENT) nor a downloaded MLflow model "
+                     "of threefold (no MLmodel with artifacts/model).")
 
 
 # ---------------------------------------------------------------------------- inputs

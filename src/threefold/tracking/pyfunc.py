@@ -132,14 +132,11 @@ def model_folder(model: str | os.PathLike, *, store=None, download_to: str | os.
     """
     import tempfile
 
+    from threefold.ranking.batch import local_model_folder
+
     path = Path(model)
     if path.is_dir():
-        if (path / "CURRENT").is_file():
-            return path
-        if (path / "MLmodel").is_file() and (path / "artifacts" / "model" / "CURRENT").is_file():
-            return path / "artifacts" / "model"
-        raise ValueError(f"{path} is neither a threefold model folder (no CURRENT) nor a downloaded MLflow model "
-                         "of threefold (no MLmodel with artifacts/model).")
+        return local_model_folder(path)
     text = str(model)
     if store is None:
         raise ValueError(f"{text!r} is not a folder; a run id or model URI needs the run store (--store).")
