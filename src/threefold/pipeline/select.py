@@ -107,6 +107,9 @@ class Selection:
         low, high, p_value, wins`` (difference and interval against ``mf``).
     metric : str
         E.g. ``"ndcg@10"`` on the validation window.
+    evaluation : EvaluationResult
+        The first round's evaluation (every first-round candidate; later rounds are
+        evaluated with ``mf`` only, since each comparison is paired with ``mf``).
     """
 
     model: str
@@ -161,28 +164,34 @@ def select_structure(config: ExperimentConfig, dataset, model: str, *, data=None
         raise ValueError(f"[models.{model}] is not a CP model with structure = \"auto\".")
     data = data if data is not None else prepare_stage(config, dataset, "validation")
     contexts = list(data.tensor.mode_names[2:])
-    family = candidate_structures(contexts, int(spec["rank"]), select["context_ranks"])
-    fitted = _fit_all(family, spec, data.tensor, make_estimator, show_progress)
-    evaluation = _evaluate(fitted, config, data, dataset, evaluate_stage, evaluation_options)
-    table = _table(family, evaluation, select)
-    combined = _combined(family, table)
+    family: dict[str, str] = {}
+    fitted: dict = {}
+    tables: list[pd.DataFrame] = []
+
+    def add(candidates: dict):
+        """Fit new candidates, rank them with mf on the validation window, append their rows."""
+        new = _fit_all(candidates, spec, data.tensor, make_estimator, show_progress)
+        models = {**({"mf": fitted["mf"]} if "mf" in fitted else {}), **new}  # paired with mf: others not needed
+        evaluation = _evaluate(models, config, data, dataset, evaluate_stage, evaluation_options)
+        fitted.update(new)
+        family.update(candidates)
+        tables.append(_table(candidates, evaluation, select))
+        return evaluation
+
+    first = add(candidate_structures(contexts, int(spec["rank"]), select["context_ranks"]))
+    combined = _combined(family, pd.concat(tables, ignore_index=True))
     if combined:
-        fitted.update(_fit_all(combined, spec, data.tensor, make_estimator, show_progress))
-        family.update(combined)
-        evaluation = _evaluate(fitted, config, data, dataset, evaluate_stage, evaluation_options)
-        table = _table(family, evaluation, select)
-    best = _winner(table)
+        add(combined)
+    best = _winner(pd.concat(tables, ignore_index=True))
     if best != "mf":  # the rank split of the winner, same total rank as mf
         splits = {f"split+{best}:{r}": s for r in select["context_ranks"]
-                  if (s := _split(family[best], int(spec["rank"]), r)) is not None and s != family[best]}
+                  if (s := _split(family[best], int(spec["rank"]), r)) is not None and s not in family.values()}
         if splits:
-            fitted.update(_fit_all(splits, spec, data.tensor, make_estimator, show_progress))
-            family.update(splits)
-            evaluation = _evaluate(fitted, config, data, dataset, evaluate_stage, evaluation_options)
-            table = _table(family, evaluation, select)
-            best = _winner(table)
+            add(splits)
+            best = _winner(pd.concat(tables, ignore_index=True))
+    table = pd.concat(tables, ignore_index=True)
     selection = Selection(model=model, chosen=best, structure=family[best], table=table,
-                          metric=f"{select['metric']}@{select['k']}", evaluation=evaluation)
+                          metric=f"{select['metric']}@{select['k']}", evaluation=first)
     echo(selection.to_text())
     return selection
 
