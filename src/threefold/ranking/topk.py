@@ -146,6 +146,15 @@ def _heap_finish(hv, hi):
         _sift_down(hv, hi, 0, end)
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _advance_excluded(ex_idx, ep, ee, j):
+    """Move the pointer ``ep`` of a sorted exclusion list ``ex_idx[ep:ee]`` up to ``j`` (ascending ``j``);
+    return the new pointer and whether ``j`` is excluded. Amortized O(1) per column."""
+    while ep < ee and ex_idx[ep] < j:
+        ep += 1
+    return ep, ep < ee and ex_idx[ep] == j
+
+
 @njit(cache=True, nogil=True)
 def _excluded(ex_idx, lo, hi, j):
     """Whether ``j`` is in the ascending slice ``ex_idx[lo:hi]`` (binary search)."""
@@ -227,9 +236,8 @@ def _select_range(scores, lo, hi_row, row0, bias, has_bias, mask, has_mask, pub,
                 if live_i and not (pub[j] <= t_i and t_i < exp[j]):
                     continue
                 if has_ex:
-                    while ep < ee and ex_idx[ep] < j:
-                        ep += 1
-                    if ep < ee and ex_idx[ep] == j:
+                    ep, hit = _advance_excluded(ex_idx, ep, ee, j)
+                    if hit:
                         continue
                 thr, thrj = _push(hv, hi, s, j, k)
             _heap_finish(hv, hi)
@@ -367,9 +375,8 @@ def _gather_range(query, items, lo, hi_row, bias, has_bias, pub, exp, times, has
             if live_i and not (pub[j] <= t_i and t_i < exp[j]):
                 continue
             if has_ex:
-                while ep < ee and ex_idx[ep] < j:
-                    ep += 1
-                if ep < ee and ex_idx[ep] == j:
+                ep, hit = _advance_excluded(ex_idx, ep, ee, j)
+                if hit:
                     continue
             vrow = items[j]
             s = qrow[0] * vrow[0]

@@ -104,11 +104,6 @@ class TuckerResult(FactorResultMixin, Scorer):
     def __iter__(self):
         return iter((self.core, self.factors))
 
-    def reason_groups(self) -> tuple[tuple[str, ...], np.ndarray]:
-        """One reason per item factor column (``"item factor 2"``): the core contracted with the query's rows."""
-        width = self.core.shape[1]
-        return tuple(f"item factor {r}" for r in range(width)), np.arange(width, dtype=np.int64)
-
     def reason_terms(self, users, contexts, items, queries=None) -> tuple[tuple[str, ...], np.ndarray]:
         """One term per core entry, ``G[r] · Π_n F_n[cell_n, r_n]`` (:func:`core_contributions`).
 
