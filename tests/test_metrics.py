@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 import scipy.sparse as sp
-from numpy.testing import assert_allclose, assert_array_equal
+from numpy.testing import assert_allclose
 from sklearn.metrics import ndcg_score
 
 from threefold.evaluation.metrics import graded_ndcg, ranked_gains, ranking_metrics

@@ -7,11 +7,9 @@ and a slow full sort written here (the ranking definition, common practice).
 
 from __future__ import annotations
 
-import os
 import signal
 import subprocess
 import time
-from pathlib import Path
 
 import numpy as np
 import pandas as pd

@@ -11,7 +11,6 @@ import argparse
 import json
 import sys
 import time
-import warnings
 from pathlib import Path
 from typing import Sequence
 

@@ -43,7 +43,7 @@ from threefold.core.params import (BOOLEAN, STRING, STRINGS, Rule, choice_rule, 
                                     type_rule)
 from threefold.data.timestamps import duration_rule, instant_rule
 from threefold.evaluation.harness import ACCURACY_METRICS, EvaluationOptions
-from threefold.models.registry import MODELS, model_class, param_table
+from threefold.models.registry import MODELS, param_table
 
 __all__ = ["ConfigError", "ExperimentConfig", "load_config", "parse_config", "parse_overrides", "to_toml",
            "model_defaults", "evaluation_options"]
