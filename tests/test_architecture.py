@@ -16,7 +16,7 @@ import pytest
 PACKAGE = Path(__file__).resolve().parents[1] / "src" / "threefold"
 
 #: Lowest first; a module may import from its own layer and the layers before it.
-LAYERS = ("core", "data", "models", "ranking", "evaluation", "tracking", "pipeline", "demo", "cli")
+LAYERS = ("core", "data", "models", "ranking", "evaluation", "explain", "tracking", "pipeline", "demo", "cli")
 
 
 def _module_name(path: Path, package: Path = PACKAGE) -> str:
