@@ -154,3 +154,14 @@ def test_paired_comparison_of_identical_models():
     assert result.interval.low == result.interval.high == 0.0
     with pytest.raises(ValueError, match="model and baseline must have the same shape"):
         paired_comparison(values, values[:5])
+
+
+def test_paired_comparison_treats_float_noise_as_ties():
+    """Per-user means summed in another order differ by ~1e-17; the rank test must see them as ties (common
+    practice: metric differences below 1e-12 are rounding noise for values in [0, 1])."""
+    base = np.array([0.1, 0.2, 0.3, 0.7, 0.9])
+    noisy = base + np.array([1e-17, -2e-17, 0.0, 5e-17, 0.0])
+    exact = paired_comparison(base + np.array([0.05, 0.0, 0.0, -0.02, 0.0]), base, random_state=0)
+    jittered = paired_comparison(noisy + np.array([0.05, 0.0, 0.0, -0.02, 0.0]), base, random_state=0)
+    assert jittered.n_nonzero == exact.n_nonzero == 2
+    np.testing.assert_allclose(jittered.p_value, exact.p_value, rtol=1e-12)
