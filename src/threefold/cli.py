@@ -83,7 +83,8 @@ def _parser() -> argparse.ArgumentParser:
 
     demo = commands.add_parser("demo", help="run the main job end to end on an invented demo site")
     demo.add_argument("--out", default="threefold-demo", help="working folder (default ./threefold-demo)")
-    demo.add_argument("--events", dest="n_events", type=int, default=60_000)
+    demo.add_argument("--events", dest="n_events", type=int, default=200_000,
+                      help="log rows to simulate (default 200,000: enough for context to show its gain)")
     demo.add_argument("--seed", type=int, default=7)
     models = commands.add_parser(
         "models", help="list the model methods and their parameters (the keys of a [models.NAME] table)",
@@ -94,6 +95,7 @@ def _parser() -> argparse.ArgumentParser:
     models.add_argument("--json", action="store_true", help="print the tables as JSON")
     _add_tracking_commands(commands)
     _add_score_command(commands)
+    _add_explain_command(commands)
     return parser
 
 
@@ -175,6 +177,47 @@ def _add_score_command(commands) -> None:
     where.add_argument("--scheduler", default=None, metavar="ADDRESS",
                        help="run the parts on an existing Dask cluster, e.g. tcp://10.0.0.5:8786")
     _add_store_flag(score)
+
+
+def _add_explain_command(commands) -> None:
+    """``explain`` (docs/explain.md)."""
+    explain = commands.add_parser(
+        "explain", help="an HTML report of what each latent factor means and how context changes the lists",
+        description="Write report.html (figures embedded), report.json and summary.txt to OUT and log them on the "
+                    "model's run. Example: threefold explain --model <run id> --items items.parquet "
+                    "--compare device=mobile device=tablet --out report/")
+    explain.add_argument("--model", required=True, metavar="MODEL",
+                         help="a model folder, a run id, or an MLflow model URI (as for threefold score)")
+    explain.add_argument("--items", default=None, help="CSV or Parquet catalog: item_id and attribute columns (labels)")
+    explain.add_argument("--tensor", default=None, help="a tensor folder (threefold build) to refit on for stability")
+    explain.add_argument("--seeds", type=int, default=2, help="refits with other seeds for stability (default 2)")
+    explain.add_argument("--compare", nargs=2, action="append", default=[], metavar=("CONTEXT_A", "CONTEXT_B"),
+                         help="two settings such as device=mobile device=tablet (repeatable; MODE=LEVEL[,MODE=LEVEL])")
+    explain.add_argument("--user", default=None, metavar="USER_ID", help="compare this user's lists only")
+    explain.add_argument("--k", type=int, default=10, help="list length of the comparisons (default 10)")
+    explain.add_argument("--top", type=int, default=10, help="top items and users per factor (default 10)")
+    explain.add_argument("--out", required=True, help="folder for report.html, report.json, summary.txt")
+    explain.add_argument("--json", action="store_true", help="print the report as JSON instead of the summary")
+    _add_store_flag(explain)
+
+
+def cmd_explain(args: argparse.Namespace) -> int:
+    import json
+
+    from threefold.pipeline.explain import explain_model
+
+    store = None
+    if not Path(args.model).is_dir():
+        from threefold.tracking.store import open_store
+
+        store = open_store(args.store)
+    quiet = (lambda line: None) if args.json else print
+    report = explain_model(args.model, out=args.out, items=args.items, tensor=args.tensor, seeds=args.seeds,
+                           compare=[tuple(pair) for pair in args.compare], user=args.user, k=args.k, n_top=args.top,
+                           store=store, echo=quiet)
+    if args.json:
+        print(json.dumps(report.to_dict(), indent=2, default=float))
+    return 0
 
 
 def cmd_score(args: argparse.Namespace) -> int:
@@ -441,7 +484,7 @@ def _demo_score(out: Path, log_dir: Path, report, store) -> None:
 
 
 def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
-    """The demo's experiment config: last two days for test, the day before for validation."""
+    """The demo's experiment config: last two days for test, the two days before for validation."""
     from threefold.pipeline.config import to_toml
 
     end = int(site.events["timestamp"].max())
@@ -454,7 +497,7 @@ def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
         "build": {"contexts": ["daypart", "device", "page_tone"], "negatives": "skip_above",
                   "daypart_starts": [float(x) for x in p.daypart_starts], "daypart_labels": list(p.daypart_labels)},
         "weighting": {"alpha": 10.0, "w_skip": 2.0, "w0": 0.1},
-        "split": {"cutoff": int(cutoff), "validation_window": "24h"},
+        "split": {"cutoff": int(cutoff), "validation_window": "48h"},
         "evaluation": {"ks": [3, 5, 10], "baseline": "popularity", "metrics": ["recall", "ndcg", "ndcg_true"],
                        "n_resamples": 200, "random_state": 0},
         "models": {
@@ -484,7 +527,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
                 "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models, "score": cmd_score,
-                "select": cmd_select, "gain": cmd_gain}
+                "select": cmd_select, "gain": cmd_gain, "explain": cmd_explain}
     try:
         return handlers[args.command](args)
     except (ValueError, KeyError, FileNotFoundError, MemoryError) as error:

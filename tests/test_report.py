@@ -1,0 +1,162 @@
+"""The factor report (threefold.explain.report): one self-contained HTML file, JSON and a terminal summary."""
+
+from __future__ import annotations
+
+import base64
+import json
+import os
+import shutil
+import subprocess
+from html.parser import HTMLParser
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from threefold.core.tensor import SparseTensor
+from threefold.explain.compare import compare_contexts
+from threefold.explain.report import build_report
+from threefold.models.tucker.hooi import fit_hooi
+
+from _tracking import tiny_cp
+
+
+class _Page(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.images, self.captions, self.headings, self._in = [], 0, [], None
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        if tag == "img":
+            self.images.append(attrs)
+        if tag == "figcaption":
+            self.captions += 1
+        if tag in ("h1", "h2"):
+            self._in = tag
+
+    def handle_data(self, data):
+        if self._in:
+            self.headings.append(data)
+            self._in = None
+
+
+def _catalog(result):
+    labels = result.vocabularies[1].labels
+    return pd.DataFrame({"item_id": list(labels), "shelf": (["north", "south", "east"] * len(labels))[: len(labels)],
+                         "format": (["brief", "feature"] * len(labels))[: len(labels)]})
+
+
+def _read(path):
+    page = _Page()
+    page.feed(path.read_text(encoding="utf-8"))
+    return page
+
+
+def test_cp_report_is_one_file_with_every_image_embedded_and_captioned(tmp_path):
+    result, _ = tiny_cp(seed=2, structure="user*item:2 + user*item*daypart:2 + item*device:1")
+    comparison = compare_contexts(result, np.arange(result.shape[0]), [0, 0], [2, 1], k=3,
+                                  label_a="daypart=0, device=0", label_b="daypart=2, device=1")
+    report = build_report(result, title="tiny model", catalog=_catalog(result), n_top=3, comparisons=[comparison])
+    path = report.write(tmp_path / "out")
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["report.html", "report.json", "summary.txt"]
+    page = _read(path)
+    assert page.images and page.captions == len(page.images)
+    for image in page.images:
+        assert image["src"].startswith("data:image/png;base64,")
+        assert base64.b64decode(image["src"].split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature
+        assert image["title"] and image["alt"]
+    assert {"The factors", "The context modes", "Model diagnostics", "Context comparisons"} <= set(page.headings)
+    data = json.loads((tmp_path / "out" / "report.json").read_text())
+    assert len(data["factors"]) == 5 and data["comparisons"][0]["k"] == 3
+    assert "shelf" in (tmp_path / "out" / "summary.txt").read_text() or "no enriched attribute" in report.to_text()
+
+
+def test_labels_come_from_the_catalog_columns_given(tmp_path):
+    """Column names unlike the demo's: a factor whose top items all share one shelf is labelled by it."""
+    result, _ = tiny_cp(seed=2, structure="user*item*daypart:1")
+    first = build_report(result, n_top=4).factors[0]
+    catalog = _catalog(result)
+    catalog["shelf"] = "west"
+    catalog.loc[catalog.index.isin(first.top_items), "shelf"] = "attic"
+    labelled = build_report(result, catalog=catalog, n_top=4).factors[0]
+    assert "shelf=attic" in labelled.label
+
+
+def test_tucker_report_has_core_slices(tmp_path):
+    rng = np.random.default_rng(0)
+    data = rng.random((8, 7, 3, 2)) * (rng.random((8, 7, 3, 2)) < 0.5)
+    result = fit_hooi(SparseTensor.from_dense(data), rank=(3, 3, 2, 2), random_state=0)
+    page = _read(build_report(result, title="tucker").write(tmp_path))
+    assert "Tucker core slices" in page.headings and page.captions == len(page.images) > 0
+
+
+def test_a_catalog_without_item_ids_is_refused():
+    result, _ = tiny_cp(seed=2)
+    with pytest.raises(ValueError, match=r"the catalog has no item_id column; it has \['id'\]"):
+        build_report(result, catalog=pd.DataFrame({"id": ["x"]}))
+
+
+def _chromium():
+    return next((shutil.which(n) for n in ("chromium", "chromium-browser", "google-chrome") if shutil.which(n)), None)
+
+
+@pytest.mark.skipif(_chromium() is None, reason="headless Chromium is not installed (Debian package 'chromium'; "
+                                                "CI installs it in .ci/run)")
+def test_the_report_opens_in_headless_chromium_with_every_image_loaded(tmp_path):
+    """Headless Chromium (Debian's package) renders the page; a script counts images that failed to decode."""
+    result, _ = tiny_cp(seed=2, structure="user*item:2 + user*item*daypart:2")
+    path = build_report(result, title="browser check", catalog=_catalog(result), n_top=3).write(tmp_path)
+    probe = tmp_path / "probe.html"
+    html = path.read_text(encoding="utf-8").replace(
+        "</body>", "<script>window.onload=function(){var b=0,n=document.images.length;"
+                   "for(var i=0;i<n;i++){if(!document.images[i].complete||document.images[i].naturalWidth===0)b++;}"
+                   "document.title='images '+n+' broken '+b;};</script></body>")
+    probe.write_text(html, encoding="utf-8")
+    run = subprocess.run([_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--virtual-time-budget=5000",
+                          "--dump-dom", probe.as_uri()], capture_output=True, text=True, timeout=120,
+                         env={**os.environ, "HOME": str(tmp_path)})
+    assert run.returncode == 0, run.stderr[-2000:]
+    import re
+
+    found = re.search(r"<title>images (\d+) broken (\d+)</title>", run.stdout)
+    assert found, run.stdout[:500]
+    assert int(found.group(1)) > 0 and int(found.group(2)) == 0
+    assert "Uncaught" not in run.stderr
+
+
+def test_explain_command_writes_the_report_from_a_model_folder(tmp_path):
+    """`threefold explain` in a real process: a saved model folder, a catalog file, a tensor for stability and a
+    comparison; bad settings end in one message naming the mode and its levels."""
+    import sys
+
+    from threefold.core.tensor_io import save_tensor
+    from threefold.data.build import build_tensor
+    from threefold.data.context import parse_context
+    from threefold.models.model_io import save_model
+
+    from _tracking import tiny_events
+
+    specs = [parse_context("daypart"), parse_context("device")]
+    tensor, _ = build_tensor(tiny_events(1), specs, negatives="none", dtype=np.float64)
+    spec = {"method": "cp", "structure": "user*item*daypart*device:2", "rank": 2, "max_sweeps": 3, "tol": 0.0,
+            "random_state": 1}
+    from threefold.pipeline.stages import make_estimator
+
+    result = make_estimator(spec).fit(tensor).result_
+    save_model(result, tmp_path / "model", parameters=spec, extra={"name": "tiny"})
+    folder = tmp_path / "model"
+    save_tensor(tensor, tmp_path / "tensor")
+    _catalog(result).to_csv(tmp_path / "items.csv", index=False)
+    device = [str(x) for x in result.vocabularies[3].labels]
+    command = [sys.executable, "-m", "threefold.cli", "explain", "--model", str(folder), "--items",
+               str(tmp_path / "items.csv"), "--tensor", str(tmp_path / "tensor"), "--seeds", "1",
+               "--compare", f"device={device[0]}", f"device={device[1]}", "--out", str(tmp_path / "report")]
+    done = subprocess.run(command, capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert "core consistency (CORCONDIA)" in done.stdout and f"device={device[0]}  vs  device={device[1]}" in done.stdout
+    assert (tmp_path / "report" / "report.html").is_file()
+    bad = subprocess.run(command[:-5] + ["--compare", "device=nowhere", f"device={device[1]}", "--out",
+                                         str(tmp_path / "r2")], capture_output=True, text=True)
+    assert bad.returncode == 1
+    assert f"--compare 'device=nowhere': device has no level 'nowhere'; its levels are {device}" in bad.stderr
