@@ -160,3 +160,19 @@ def test_explain_command_writes_the_report_from_a_model_folder(tmp_path):
                                          str(tmp_path / "r2")], capture_output=True, text=True)
     assert bad.returncode == 1
     assert f"--compare 'device=nowhere': device has no level 'nowhere'; its levels are {device}" in bad.stderr
+
+
+def test_the_recorded_context_gain_is_the_first_section(tmp_path):
+    """A context-gain report read back from its JSON (as train logs it) opens the page, text and figure."""
+    from threefold.evaluation.context_gain import ContextGain
+
+    gain = ContextGain(model="tiny", metric="ndcg@10", full=0.31, stage="test", table=pd.DataFrame(
+        {"mode": ["daypart"], "marginalized": [0.29], "gain": [0.02], "low": [0.01], "high": [0.03],
+         "relative": [0.069], "relative_low": [0.034], "relative_high": [0.103], "p_value": [0.01], "n_users": [20]}))
+    again = ContextGain.from_dict(json.loads(json.dumps(gain.to_dict())))
+    assert again.to_text() == gain.to_text()
+    result, _ = tiny_cp(seed=2)
+    page = build_report(result, gain=again).write(tmp_path)
+    text = page.read_text()
+    assert text.index("What each context mode adds") < text.index("The factors")
+    assert "daypart adds +6.9% ndcg@10 [+3.4, +10.3]" in text

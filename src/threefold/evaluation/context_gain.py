@@ -116,8 +116,14 @@ class ContextGain:
         return {"model": self.model, "metric": self.metric, "full": self.full, "stage": self.stage,
                 "modes": self.table.to_dict(orient="records")}
 
+    @classmethod
+    def from_dict(cls, data: dict) -> "ContextGain":
+        """Inverse of :meth:`to_dict` (e.g. the ``context_gain/report.json`` a run recorded)."""
+        return cls(model=data["model"], metric=data["metric"], full=float(data["full"]),
+                   table=pd.DataFrame(data["modes"]), stage=data["stage"])
+
     def figure(self, path) -> None:
-        """A bar chart of the relative gains with their intervals, written to ``path`` (PNG)."""
+        """A bar chart of the relative gains with their intervals, written to ``path`` (PNG path or file object)."""
         import matplotlib
 
         matplotlib.use("Agg")

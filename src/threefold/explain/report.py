@@ -282,7 +282,7 @@ def _heatmap_figure(report: Report, mode: str) -> str:
 
 
 def _dendrogram_figure(report: Report, mode: str, cosine: np.ndarray, tree) -> str | None:
-    if tree is None:
+    if tree is None or float(np.max(tree[:, 2])) <= 1e-12:  # no levels, or all levels load alike: no tree to draw
         return None
     from scipy.cluster.hierarchy import dendrogram
 

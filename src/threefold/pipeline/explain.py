@@ -14,10 +14,13 @@ import json
 import os
 import warnings
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import TYPE_CHECKING, Callable, Sequence
 
 import numpy as np
 import pandas as pd
+
+if TYPE_CHECKING:
+    from threefold.explain.report import Stability
 
 __all__ = ["explain_model", "parse_setting", "stability"]
 
@@ -132,8 +135,7 @@ def _recorded_gain(store, run_id: str | None):
             data = json.loads(Path(local).read_text())
     except Exception:  # noqa: BLE001 - a run without the report simply has no gain section
         return None
-    return ContextGain(model=data["model"], metric=data["metric"], full=data["full"],
-                       table=pd.DataFrame(data["modes"]), stage=data["stage"])
+    return ContextGain.from_dict(data)
 
 
 def explain_model(model: str | os.PathLike, *, out: str | os.PathLike, items=None, tensor=None, seeds: int = 2,
