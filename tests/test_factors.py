@@ -50,7 +50,21 @@ def test_labels_name_peak_levels_and_catalog_levels():
     summary = factor_summaries(result, catalog, n_top=4)[0]
     assert "kind=audio" in summary.label
     daypart = summary.loadings["daypart"]
-    assert str(int(np.argmax(daypart))) in summary.peak_levels()["daypart"].split("/")
+    top_level = summary.level_names["daypart"][int(np.argmax(daypart))]
+    assert top_level in summary.peak_levels()["daypart"].split("/") and f"daypart: {top_level}" in summary.label
+
+
+def test_the_unknown_level_never_names_a_peak():
+    """The vocabulary's level for missing values (threefold.core.vocabulary.UNKNOWN) holds few events: a large
+    loading there is not what switches a factor on."""
+    from threefold.explain.factors import Factor
+
+    f = Factor(index=0, term="item*device", strength=1.0, share=1.0,
+               loadings={"device": np.array([0.1, 0.2, 0.9, 0.15])},
+               level_names={"device": ["mobile", "desktop", "unknown", "tablet"]})
+    assert f.peak_levels() == {"device": "desktop"}
+    assert Factor(index=0, term="t", strength=1.0, share=1.0, loadings={"device": np.array([0.1, 0.2, 0.9, 0.15])}
+                  ).peak_levels() == {"device": "2"}
 
 
 def test_tucker_shares_and_core_slices_match_tensorly():

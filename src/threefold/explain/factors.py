@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from threefold.core.vocabulary import UNKNOWN
 from threefold.explain.enrichment import Enrichment, enrichment
 
 __all__ = ["Factor", "factor_summaries", "core_slices", "is_tucker"]
@@ -51,6 +52,8 @@ class Factor:
         Their loadings.
     enrichment : Enrichment or None
         Catalog levels over-represented among the top items (None without a catalog).
+    level_names : dict of str to list
+        Context mode -> its level labels (the model's vocabularies).
     """
 
     index: int
@@ -63,6 +66,7 @@ class Factor:
     top_users: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
     user_values: np.ndarray = field(default_factory=lambda: np.zeros(0))
     enrichment: Enrichment | None = None
+    level_names: dict = field(default_factory=dict)
 
     @property
     def label(self) -> str:
@@ -75,16 +79,24 @@ class Factor:
         return " · ".join(parts) if parts else "no distinctive context or attribute"
 
     def peak_levels(self, level_names: dict | None = None) -> dict:
-        """Per context mode, the level indices (or names) loading above the mean by one standard deviation."""
+        """Per context mode, the level indices (or names) loading above the mean by one standard deviation.
+
+        With ``level_names``, the level ``"unknown"`` (the vocabulary's level for a
+        missing value, :data:`threefold.core.vocabulary.UNKNOWN`) is left out: it
+        holds the few events without the value, so its row says little.
+        """
         out = {}
         for mode, values in self.loadings.items():
             values = np.asarray(values, dtype=np.float64)
-            if values.size < 2 or np.allclose(values, values[0]):
+            names = (level_names or self.level_names).get(mode)
+            keep = np.array([names is None or str(names[i]) != UNKNOWN for i in range(values.size)])
+            kept = values[keep]
+            if kept.size < 2 or np.allclose(kept, kept[0]):
                 continue
-            peak = np.flatnonzero(values > values.mean() + values.std())
+            positions = np.flatnonzero(keep)
+            peak = positions[kept > kept.mean() + kept.std()]
             if peak.size == 0:
-                peak = np.array([int(np.argmax(values))])
-            names = level_names.get(mode) if level_names else None
+                peak = np.array([positions[int(np.argmax(kept))]])
             out[mode] = "/".join(str(names[i]) if names is not None else str(i) for i in peak)
         return out
 
@@ -140,6 +152,8 @@ def factor_summaries(result, catalog: pd.DataFrame | None = None, *, n_top: int 
     if n_top < 1:
         raise ValueError(f"n_top must be at least 1, got {n_top}.")
     names = list(result.mode_names)
+    levels = {names[n]: ([str(x) for x in result.vocabularies[n].labels] if result.vocabularies[n] is not None
+                         else [str(i) for i in range(result.shape[n])]) for n in range(2, len(names))}
     out = []
     if is_tucker(result):
         core = np.asarray(result.core, dtype=np.float64)
@@ -151,7 +165,8 @@ def factor_summaries(result, catalog: pd.DataFrame | None = None, *, n_top: int 
             top = np.argsort(-column, kind="stable")[:n_top]
             out.append(Factor(index=j, term=f"item column {j}", strength=np.sqrt(energy), share=energy / total,
                               top_items=top, item_values=column[top],
-                              enrichment=enrichment(top, catalog, columns) if catalog is not None else None))
+                              enrichment=enrichment(top, catalog, columns) if catalog is not None else None,
+                              level_names=levels))
     else:
         weights, factors = _oriented_cp(result)
         owned = result.structure.active_mask(names)
@@ -165,7 +180,8 @@ def factor_summaries(result, catalog: pd.DataFrame | None = None, *, n_top: int 
             out.append(Factor(index=r, term=term_names[terms[r]], strength=float(weights[r]),
                               share=float(weights[r] ** 2 / total), loadings=loadings, top_items=top,
                               item_values=factors[1][top, r], top_users=users, user_values=factors[0][users, r],
-                              enrichment=enrichment(top, catalog, columns) if catalog is not None else None))
+                              enrichment=enrichment(top, catalog, columns) if catalog is not None else None,
+                              level_names=levels))
     return sorted(out, key=lambda f: -f.share)
 
 
