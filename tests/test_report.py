@@ -205,3 +205,35 @@ def test_on_the_demo_scenario_the_factors_show_what_was_planted():
 
     assert found("item*daypart*device", {"daypart": "morning", "device": "mobile"}, "kind=audio")
     assert found("item*page_tone", {"page_tone": "grave"}, "tone=grave")
+
+
+def test_rank_trials_are_drawn_when_given(tmp_path):
+    result, _ = tiny_cp(seed=2)
+    ranks = pd.DataFrame({"rank": [2, 4, 8], "metric": ["ndcg_at_10"] * 3, "value": [0.20, 0.24, 0.22],
+                          "fit": [0.1, 0.2, 0.3], "trials": [1, 1, 1]})
+    report = build_report(result, ranks=ranks)
+    assert "best validation ndcg_at_10 0.2400 at rank 4 (ranks tried: 2, 4, 8)" in report.to_text()
+    page = _read(report.write(tmp_path))
+    assert any("against rank" in image["title"] for image in page.images)
+
+
+def test_rank_trials_are_read_from_the_run_store(tmp_path):
+    """Trial runs as `threefold sweep` tags them, in a real local MLflow store; other models' trials are ignored."""
+    from threefold.pipeline.explain import rank_trials
+    from threefold.tracking.runlog import log_metrics, log_params
+    from threefold.tracking.store import open_store
+
+    store = open_store(str(tmp_path / "runs"))
+    experiment = store.experiment_id("ranks")
+    with store.run(experiment, run_name="cp", tags={"threefold.kind": "model", "threefold.model": "cp"}) as model_run:
+        pass
+    for model, rank, value in (("cp", 4, 0.20), ("cp", 4, 0.22), ("cp", 8, 0.25), ("mf", 16, 0.9)):
+        run_id = store.create_run(experiment, run_name="trial", tags={"threefold.kind": "trial", "threefold.model": model,
+                                                                      "threefold.key_metrics": "ndcg_at_10"})
+        log_params(store, run_id, {"model.rank": rank})
+        log_metrics(store, run_id, {"ndcg_at_10": value, "fit": rank / 100})
+        store.finish(run_id)
+    table = rank_trials(store, model_run)
+    assert table["rank"].tolist() == [4, 8] and table["trials"].tolist() == [2, 1]
+    np.testing.assert_allclose(table["value"], [0.21, 0.25])
+    assert rank_trials(store, None) is None

@@ -67,6 +67,7 @@ class Report:
     stability: Stability | None = None
     comparisons: list = field(default_factory=list)
     notes: list = field(default_factory=list)
+    ranks: pd.DataFrame | None = None
 
     # ------------------------------------------------------------------ words
     def factor_reading(self, f: Factor) -> str:
@@ -98,6 +99,10 @@ class Report:
                              f"(cosine {cosine[a, b]:.2f})")
         if self.stability is not None:
             lines += ["", self._stability_text()]
+        if self.ranks is not None and len(self.ranks):
+            best = self.ranks.loc[self.ranks["value"].idxmax()]
+            lines += ["", f"sweep trials: the best validation {best['metric']} {best['value']:.4f} at rank "
+                          f"{int(best['rank'])} (ranks tried: {', '.join(map(str, sorted(self.ranks['rank'].unique())))})"]
         for comparison in self.comparisons:
             lines += ["", comparison.to_text(self.item_labels)]
         for note in self.notes:
@@ -133,6 +138,8 @@ class Report:
         if self.stability is not None:
             out["stability"] = {"seeds": {str(k): v for k, v in self.stability.seeds.items()},
                                 "halves": list(self.stability.halves), "corcondia": self.stability.corcondia}
+        if self.ranks is not None:
+            out["ranks"] = json.loads(self.ranks.to_json(orient="records"))
         out["comparisons"] = [{**c.summary(), "movers": json.loads(c.movers.assign(
             item=[str(self.item_labels[i]) for i in c.movers["item"]]).to_json(orient="records")),
             "drivers": json.loads(c.drivers.to_json(orient="records"))} for c in self.comparisons]
@@ -161,7 +168,8 @@ class Report:
 
 
 def build_report(result, *, title: str = "factor report", catalog: pd.DataFrame | None = None, n_top: int = 10,
-                 gain=None, stability: Stability | None = None, comparisons=(), notes=()) -> Report:
+                 gain=None, stability: Stability | None = None, comparisons=(), notes=(),
+                 ranks: pd.DataFrame | None = None) -> Report:
     """Assemble a :class:`Report` for a fitted CP or Tucker result.
 
     Parameters
@@ -176,6 +184,10 @@ def build_report(result, *, title: str = "factor report", catalog: pd.DataFrame 
     comparisons : sequence of ContextComparison
     notes : sequence of str
         Shown at the end (e.g. why a section is missing).
+    ranks : DataFrame, optional
+        ``rank, metric, value, fit[, trials]`` of sweep trials of this model
+        (:func:`threefold.pipeline.explain.rank_trials`): the validation metric
+        and the training fit against rank.
     """
     item_labels = np.asarray(result.vocabularies[1].labels if result.vocabularies[1] is not None
                              else np.arange(result.shape[1]).astype(str), dtype=object)
@@ -195,7 +207,7 @@ def build_report(result, *, title: str = "factor report", catalog: pd.DataFrame 
     factors = factor_summaries(result, aligned, n_top=n_top)
     return Report(title=title, result=result, factors=factors, level_names=level_names, item_labels=item_labels,
                   user_labels=user_labels, catalog=aligned, gain=gain, stability=stability,
-                  comparisons=list(comparisons), notes=list(notes))
+                  comparisons=list(comparisons), notes=list(notes), ranks=ranks)
 
 
 def _closest_pair(cosine: np.ndarray):
@@ -320,6 +332,24 @@ def _core_figure(report: Report, mode: str) -> str:
                                      f"{levels[int(np.argmax(spread))]!r}.")
 
 
+def _ranks_figure(report: Report) -> str:
+    plt = _plt()
+    r = report.ranks.sort_values("rank")
+    fig, left = plt.subplots(figsize=(4.8, 3.0))
+    left.plot(r["rank"], r["value"], marker="o", color="#4c72b0")
+    left.set_xlabel("rank")
+    left.set_ylabel(f"validation {r['metric'].iloc[0]}", color="#4c72b0")
+    right = left.twinx()
+    right.plot(r["rank"], r["fit"], marker="s", color="#c44e52")
+    right.set_ylabel("training fit", color="#c44e52")
+    title = "Validation metric and fit against rank (sweep trials)"
+    left.set_title(title, fontsize=10)
+    fig.tight_layout()
+    best = r.loc[r["value"].idxmax()]
+    return _figure(title, _png(fig), f"The validation metric peaks at rank {int(best['rank'])}; beyond it the fit "
+                                     "still rises while ranking does not, a sign of components that model noise.")
+
+
 def _drivers_figure(report: Report, comparison) -> str:
     plt = _plt()
     d = comparison.drivers.sort_values("share", ascending=False).head(12)
@@ -405,6 +435,9 @@ def _html(report: Report) -> str:
     parts.append("<h2>Model diagnostics</h2>")
     parts.append(f"<p>{html.escape(report._stability_text())}</p>" if report.stability is not None else
                  "<p class=\"note\">Stability and core consistency need the training tensor (--tensor).</p>")
+    if report.ranks is not None and len(report.ranks):
+        parts.append(_ranks_figure(report))
+        parts.append(_table(report.ranks))
     if report.comparisons:
         parts.append("<h2>Context comparisons</h2>")
         for c in report.comparisons:

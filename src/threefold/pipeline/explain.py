@@ -138,6 +138,42 @@ def _recorded_gain(store, run_id: str | None):
     return ContextGain.from_dict(data)
 
 
+def rank_trials(store, run_id: str | None) -> pd.DataFrame | None:
+    """Sweep trials of the model's run's experiment and model name: ``rank, metric, value, fit`` per trial.
+
+    Reads runs tagged ``threefold.kind = trial`` (``threefold sweep``) with the same
+    ``threefold.model`` tag as the model's run; ``value`` is each trial's key
+    metric on the validation window, ``fit`` its last training fit. None when
+    there are none (or the model is not a run).
+    """
+    if run_id is None:
+        return None
+    run = store.call(store.client.get_run, run_id)
+    model = run.data.tags.get("threefold.model")
+    if not model:
+        return None
+    rows = []
+    token = None
+    while True:
+        page = store.call(store.client.search_runs, [run.info.experiment_id],
+                          f"tags.`threefold.kind` = 'trial' AND tags.`threefold.model` = '{model}' "
+                          "AND attributes.status = 'FINISHED'", max_results=1000, page_token=token)
+        for trial in page:
+            metric = trial.data.tags.get("threefold.key_metrics", "")
+            rank = trial.data.params.get("model.rank")
+            if rank is None or metric not in trial.data.metrics:
+                continue
+            rows.append({"rank": int(float(rank)), "metric": metric, "value": trial.data.metrics[metric],
+                         "fit": trial.data.metrics.get("fit", np.nan)})
+        token = page.token
+        if not token:
+            break
+    if not rows:
+        return None
+    return (pd.DataFrame(rows).groupby(["rank", "metric"], as_index=False)
+            .agg(value=("value", "mean"), fit=("fit", "mean"), trials=("value", "size")))
+
+
 def explain_model(model: str | os.PathLike, *, out: str | os.PathLike, items=None, tensor=None, seeds: int = 2,
                   compare: Sequence[tuple[str, str]] = (), user: str | None = None, k: int = 10, n_top: int = 10,
                   store=None, echo: Callable[[str], None] = print):
@@ -212,8 +248,9 @@ def explain_model(model: str | os.PathLike, *, out: str | os.PathLike, items=Non
         comparisons.append(compare_contexts(scorer, users, a, b, k=k, label_a=a_text, label_b=b_text,
                                             column_labels=_column_labels(result)))
     title = f"factor report: {meta.get('extra', {}).get('name') or Path(str(model)).name}"
+    ranks = rank_trials(store, run_id)
     report = build_report(result, title=title, catalog=catalog, n_top=n_top, gain=gain, stability=stab,
-                          comparisons=comparisons, notes=notes)
+                          comparisons=comparisons, notes=notes, ranks=ranks)
     path = report.write(out)
     echo(report.to_text())
     echo(f"report: {path}")
