@@ -11,6 +11,7 @@ import tempfile
 import warnings
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from threefold.demo.simulate import ScenarioParameters, simulate_site, site_truth, write_site
@@ -30,7 +31,7 @@ STRONG = dict(  # an invented second site: 6 dayparts, 4 devices, 4 tones, stron
     daypart_labels=("dawn", "morning", "midday", "afternoon", "evening", "night"),
     daypart_starts=(5, 7, 11, 14, 18, 22), daypart_shares=(0.08, 0.2, 0.2, 0.17, 0.25, 0.1),
     shifter_share=0.85, shift_strength=2.5, audio_commute_boost=3.0, long_clip_evening_boost=2.5, tone_match=2.0)
-N_EVENTS = 100_000
+N_EVENTS = 200_000
 
 
 def _config(site, log_dir: Path, **select):
@@ -43,7 +44,7 @@ def _config(site, log_dir: Path, **select):
         "build": {"contexts": ["daypart", "device", "page_tone"], "daypart_starts": [float(x) for x in p.daypart_starts],
                   "daypart_labels": list(p.daypart_labels)},
         "weighting": {"w0": 0.1},
-        "split": {"cutoff": end - 2 * 86_400, "validation_window": "24h"},
+        "split": {"cutoff": end - 2 * 86_400, "validation_window": "48h"},
         "evaluation": {"ks": [10], "metrics": ["ndcg", "ndcg_true"], "n_resamples": 200},
         "select": select,
         "models": {"mf": {**base, "structure": "user*item:16"}, "auto": {**base, "structure": "auto"}},
@@ -105,11 +106,69 @@ def test_auto_keeps_mf_where_context_does_not_matter(flat_runs):
 
 
 def test_auto_finds_a_context_structure_where_context_matters(strong_runs):
-    """Planted truth: strong three-way effects (STRONG); a context structure that beats MF's true NDCG@10.
+    """Planted truth: strong three-way effects (STRONG); a context structure beating MF's true NDCG@10 by 10%.
 
-    Measured in the study (docs/models.md, section 9): on 5 seeds it chose a context
-    structure 4 times, +5.7% to +10.0% true NDCG@10 on the test window. The target of
-    +10% in 9 of 10 seeds is not reached yet; this checks what holds, on 3 seeds.
+    The issue asks for +10% in at least 9 of 10 seeds; the study (docs/models.md,
+    section 9) measured it on 10 seeds. CI checks the first 3 seeds, each of which
+    must reach +10%.
     """
-    assert sum(chosen != "mf" and gain >= 0.05 for chosen, gain in strong_runs) >= 2, strong_runs
-    assert all(gain >= 0.0 for _, gain in strong_runs), strong_runs
+    assert all(chosen != "mf" and gain >= 0.10 for chosen, gain in strong_runs), strong_runs
+
+
+def test_auto_finds_the_planted_context_of_the_demo_site():
+    """Planted truth: the demo site as `threefold demo` simulates it (its effects stated in
+    threefold.demo.simulate), 200,000 rows at the demo's seed 7: a context structure 10% above MF
+    (the study measured +10.7% at this seed, +10.5% to +13.3% on seeds 3-7)."""
+    chosen, gain = _run({}, 7, N_EVENTS)
+    assert chosen != "mf" and gain >= 0.10, (chosen, gain)
+
+
+def test_holm_adjustment_worked_by_hand():
+    """Holm (1979) step-down, worked by hand: p = (0.01, 0.04, 0.03, 0.005) with m = 4 sorts to
+    0.005, 0.01, 0.03, 0.04 -> 4·0.005 = 0.02, 3·0.01 = 0.03, 2·0.03 = 0.06, max(1·0.04, 0.06) = 0.06."""
+    from numpy.testing import assert_allclose
+
+    from threefold.pipeline.select import holm_adjusted
+
+    assert_allclose(holm_adjusted([0.01, 0.04, 0.03, 0.005]), [0.03, 0.06, 0.06, 0.02], rtol=1e-12)
+    got = holm_adjusted([float("nan"), 0.5, 0.4])
+    assert_allclose(got[1:], [0.8, 0.8])
+    assert np.isnan(got[0])
+
+
+def test_a_candidate_wins_only_with_the_adjusted_test():
+    """An interval above zero is not enough when the Holm-adjusted p-value is not below 0.05 (common practice
+    for many comparisons against one control)."""
+    import pandas as pd
+
+    from threefold.pipeline.select import _winner, judged
+
+    table = pd.DataFrame({"candidate": ["mf", "a", "b", "c"], "structure": ["s0", "s1", "s2", "s3"],
+                          "value": [0.5, 0.51, 0.52, 0.53], "mean_difference": [np.nan, 0.01, 0.02, 0.03],
+                          "low": [np.nan, 0.001, 0.002, -0.01], "high": [np.nan, 0.02, 0.03, 0.06],
+                          "p_value": [np.nan, 0.04, 0.01, 0.2]})
+    out = judged(table)
+    assert out["wins"].tolist() == [False, False, True, False]  # a: 0.04·2 = 0.08 after b's 0.01·3 = 0.03
+    assert _winner(table) == "b"
+    assert _winner(table.assign(p_value=[np.nan, 0.04, 0.03, 0.2])) == "mf"
+
+
+def test_candidates_start_from_the_fitted_mf_columns():
+    """Warm start: the first R' user and item columns are MF's fitted (unnormalized) columns, the rest small."""
+    from threefold.pipeline.select import warm_start
+
+    from _tracking import tiny_cp
+
+    mf, _ = tiny_cp(seed=1, structure="user*item:3")
+    tensor_shape = mf.shape
+    class _Shape:  # only the shape of the selection tensor is read
+        shape = tensor_shape
+    init = warm_start(mf, "user*item:2 + item*device:1", _Shape(), 3, random_state=0)
+    fitted = mf.unnormalized_factors()
+    from numpy.testing import assert_allclose
+
+    assert_allclose(init[0][:, :2], fitted[0][:, :2])
+    assert_allclose(init[1][:, :2], fitted[1][:, :2])
+    assert init[1].shape == (tensor_shape[1], 3) and 0 <= init[3][:, 2].min() and init[3][:, 2].max() < 0.1
+    assert warm_start(mf, "item*device:2 + user*item:2", _Shape(), 3, random_state=0) is None
+    assert warm_start(mf, "user*item:5", _Shape(), 3, random_state=0) is None  # more columns than MF has

@@ -116,7 +116,7 @@ _SECTIONS: dict[str, dict[str, tuple[Rule, object]]] = {
                    "n_resamples": (_int(low=1), _EVAL.n_resamples), "random_state": (_SEED, _EVAL.random_state),
                    "propensity_clip": (_float(low=1.0), _EVAL.propensity_clip),
                    "sensitivity_users": (_int(low=1), _EVAL.sensitivity_users)},
-    "select": {"context_ranks": (_list(_int(low=1), "ints", 1), [2, 4]), "metric": (_metric, "ndcg"),
+    "select": {"context_ranks": (_list(_int(low=1), "ints", 1), [4, 8]), "metric": (_metric, "ndcg"),
                "k": (_int(low=1), 10), "candidates": (_choice("eligible", "shown"), "shown")},
     "sweep": {"model": (_STR, None), "search": (_choice("grid", "random"), "grid"), "n_trials": (_int(low=1), None),
               "metric": (_metric, "ndcg"), "k": (_int(low=1), 10), "random_state": (_SEED, 0), "space": (None, {})},
@@ -284,7 +284,8 @@ def parse_config(raw: Mapping, *, source: str = "<config>", base: Path | None = 
     auto = [name for name, spec in out["models"].items() if spec["method"] == "cp" and spec.get("structure") == AUTO]
     if auto and out["split"]["validation_window"] is None:
         raise ConfigError(f"{source}: [models.{auto[0]}] structure = \"auto\" is chosen on the validation window; "
-                          "set [split] validation_window (e.g. \"24h\").")
+                          "set [split] validation_window (e.g. \"48h\": the longer the window, the more "
+                          "requests the paired test has to find a gain).")
     if sweep["model"] is not None and sweep["model"] not in out["models"]:
         raise ConfigError(f"{source}: [sweep] model {sweep['model']!r} is not a model; models are {sorted(out['models'])}.")
     return ExperimentConfig(sections=out, source=source)
