@@ -1,8 +1,11 @@
 """The invented scenarios of the context-gain study (planted effects stated; log-odds units).
 
 * ``quillfen``: the demo site, *The Quillfen Courier*, as ``threefold demo`` simulates it
-  (audio on mobile in the morning +1.2, long clips in the evening +1.0, tone match +0.6,
-  35% of readers with a daypart persona of strength 1.0).
+  (4 dayparts, 3 devices, 3 tones): 85% of readers with a daypart persona of strength 2.5,
+  audio on mobile in the morning +3.0, long clips in the evening +2.5, tone match +2.0.
+* ``quillfen-medium``: the same site with 60% personas of strength 2.0, +2.5, +2.0, +1.5.
+* ``quillfen-mild``: the same site with the effects it had before the study: 35% personas of
+  strength 1.0, +1.2, +1.0, +0.6.
 * ``brackenridge``: *Brackenridge Evening Post*, a second invented site with other labels and
   mode sizes (6 dayparts, 4 devices, 4 tones) and strong three-way effects: 85% of readers
   with a daypart persona of strength 2.5, audio on phones in the morning commute +3.0,
@@ -27,6 +30,10 @@ SCENARIOS = {
         shifter_share=0.85, shift_strength=2.5, audio_commute_boost=3.0, long_clip_evening_boost=2.5,
         tone_match=2.0,
     ),
+    "quillfen-medium": dict(shifter_share=0.6, shift_strength=2.0, audio_commute_boost=2.5,
+                            long_clip_evening_boost=2.0, tone_match=1.5),
+    "quillfen-mild": dict(shifter_share=0.35, shift_strength=1.0, audio_commute_boost=1.2,
+                          long_clip_evening_boost=1.0, tone_match=0.6),
     "flat": dict(shifter_share=0.0, shift_strength=0.0, audio_commute_boost=0.0, long_clip_evening_boost=0.0,
                  tone_match=0.0, context_jitter_sd=0.0),
 }

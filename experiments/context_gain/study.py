@@ -9,9 +9,12 @@ the simulator's true relevance on the test window (true-relevance NDCG@10).
 Usage (from the repository root)::
 
     .venv/bin/python experiments/context_gain/study.py --scenario quillfen brackenridge flat \
-        --seeds 3 --events 150000 --w0 1.0 0.1 --out experiments/context_gain/results.csv
+        --seeds 3 --events 200000 --w0 0.1 --out experiments/context_gain/results.csv
 
-Prints one row per (scenario, seed, weighting) and writes them as CSV.
+The test window is the last two days of the log, the validation window the
+``--validation-window`` before it (default 48h); ``--context-ranks`` (default 4 8)
+and ``--select-candidates`` set the ``[select]`` section. Prints one row per
+(scenario, seed, weighting) and writes them as CSV.
 """
 
 from __future__ import annotations
@@ -35,8 +38,9 @@ from threefold.pipeline.stages import load_dataset, prepare_stage  # noqa: E402
 from threefold.pipeline.experiment import fit_and_evaluate  # noqa: E402
 
 
-def config_for(site, log_dir: Path, weighting: dict, rank: int, context_ranks) -> object:
-    """The study's experiment config: the last two days for test, the day before for validation."""
+def config_for(site, log_dir: Path, weighting: dict, rank: int, context_ranks, candidates: str = "shown",
+               validation_window: str = "24h") -> object:
+    """The study's experiment config: the last two days for test, ``validation_window`` before them for validation."""
     p = site.params
     end = int(site.events["timestamp"].max())
     base = {"method": "cp", "rank": rank, "reg": 0.1, "max_sweeps": 10, "random_state": 1}
@@ -47,19 +51,20 @@ def config_for(site, log_dir: Path, weighting: dict, rank: int, context_ranks) -
         "build": {"contexts": ["daypart", "device", "page_tone"], "negatives": "skip_above",
                   "daypart_starts": [float(x) for x in p.daypart_starts], "daypart_labels": list(p.daypart_labels)},
         "weighting": weighting,
-        "split": {"cutoff": end - 2 * 86_400, "validation_window": "24h"},
+        "split": {"cutoff": end - 2 * 86_400, "validation_window": validation_window},
         "evaluation": {"ks": [10], "metrics": ["ndcg", "ndcg_true"], "n_resamples": 200, "random_state": 0},
-        "select": {"context_ranks": list(context_ranks)},
+        "select": {"context_ranks": list(context_ranks), "candidates": candidates},
         "models": {"mf": {**base, "structure": f"user*item:{rank}"}, "auto": {**base, "structure": "auto"}},
     }, source=f"study:{p.site_name}")
 
 
-def run_one(name: str, seed: int, n_events: int, weighting: dict, rank: int, context_ranks) -> dict:
+def run_one(name: str, seed: int, n_events: int, weighting: dict, rank: int, context_ranks,
+            candidates: str = "shown", validation_window: str = "24h") -> dict:
     started = time.perf_counter()
     site = simulate_site(scenario(name, n_events, seed))
     with tempfile.TemporaryDirectory() as tmp:
         log_dir = write_site(site, Path(tmp) / "site")
-        config = config_for(site, log_dir, weighting, rank, context_ranks)
+        config = config_for(site, log_dir, weighting, rank, context_ranks, candidates, validation_window)
         dataset = load_dataset(config, truth=site_truth)
         selection = select_structure(config, dataset, "auto", echo=lambda line: None, show_progress=False)
         truth_validation = {row["model"]: row["value"] for _, row in selection.evaluation.table.iterrows()
@@ -72,7 +77,8 @@ def run_one(name: str, seed: int, n_events: int, weighting: dict, rank: int, con
             test[model] = outcome.evaluation.value(model, "ndcg_true", 10)
     best_truth = max(truth_validation, key=truth_validation.get)
     return {
-        "scenario": name, "seed": seed, "events": n_events, **{f"w.{k}": v for k, v in weighting.items()},
+        "scenario": name, "seed": seed, "events": n_events, "select_candidates": candidates,
+        "validation_window": validation_window, **{f"w.{k}": v for k, v in weighting.items()},
         "chosen": selection.chosen, "chosen_structure": selection.structure,
         "test_true_ndcg_mf": test["mf"], "test_true_ndcg_chosen": test["auto"],
         "test_gain": test["auto"] / test["mf"] - 1.0,
@@ -88,11 +94,14 @@ def main(argv=None) -> int:
     parser.add_argument("--first-seed", type=int, default=1)
     parser.add_argument("--events", type=int, default=150_000)
     parser.add_argument("--rank", type=int, default=16)
-    parser.add_argument("--context-ranks", type=int, nargs="+", default=[2, 4])
+    parser.add_argument("--context-ranks", type=int, nargs="+", default=[4, 8])
     parser.add_argument("--w0", type=float, nargs="+", default=[1.0])
     parser.add_argument("--w0-scope", nargs="+", default=["cell"])
     parser.add_argument("--alpha", type=float, nargs="+", default=[10.0])
     parser.add_argument("--signal", nargs="+", default=["clicks"])
+    parser.add_argument("--select-candidates", default="shown", choices=["shown", "eligible"],
+                        help="what each validation request ranks during selection ([select] candidates)")
+    parser.add_argument("--validation-window", default="48h", help="[split] validation_window of the selection")
     parser.add_argument("--out", default=None, help="CSV of the rows")
     args = parser.parse_args(argv)
     warnings.filterwarnings("ignore")
@@ -104,7 +113,8 @@ def main(argv=None) -> int:
                     for alpha in args.alpha:
                         for signal in args.signal:
                             weighting = {"w0": w0, "w0_scope": scope, "alpha": alpha, "signal": signal}
-                            row = run_one(name, seed, args.events, weighting, args.rank, args.context_ranks)
+                            row = run_one(name, seed, args.events, weighting, args.rank, args.context_ranks,
+                                          args.select_candidates, args.validation_window)
                             rows.append(row)
                             print(" ".join(f"{k}={v:.4f}" if isinstance(v, float) else f"{k}={v}" for k, v in row.items()),
                                   flush=True)
