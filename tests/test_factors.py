@@ -20,8 +20,9 @@ def _dense(weights, factors):
 
 
 def test_cp_summaries_keep_the_model_and_orient_items_up():
-    """Orientation changes no score (tensorly's reconstruction before and after, reference library); energy shares
-    are λ² / Σλ² (unit-norm columns) and sum to 1; loadings are the context columns the term spans."""
+    """Orientation changes no score (tensorly's reconstruction before and after, reference library); each strength
+    is the Frobenius norm of that one component's full tensor (tensorly.cp_to_tensor of the component alone) and
+    the shares sum to 1; loadings are the context columns the term spans."""
     result, _ = tiny_cp(seed=3, structure="user*item:2 + item*device:1 + user*item*daypart:2")
     summaries = factor_summaries(result, n_top=3)
     from threefold.explain.factors import _oriented_cp
@@ -29,7 +30,9 @@ def test_cp_summaries_keep_the_model_and_orient_items_up():
     weights, factors = _oriented_cp(result)
     assert_allclose(_dense(weights, factors), _dense(result.weights, result.factors), atol=1e-12)
     assert_allclose(sum(f.share for f in summaries), 1.0)
-    assert_allclose(sorted(f.share for f in summaries), sorted(result.weights ** 2 / np.sum(result.weights ** 2)))
+    for f in summaries:
+        alone = _dense(result.weights[[f.index]], [col[:, [f.index]] for col in result.factors])
+        assert_allclose(f.strength, np.linalg.norm(alone), rtol=1e-9)
     for f in summaries:
         assert factors[1][f.top_items[0], f.index] == factors[1][:, f.index].max() >= 0
         expected = {"user*item": set(), "item*device": {"device"}, "user*item*daypart": {"daypart"}}[f.term]

@@ -39,11 +39,11 @@ from threefold.pipeline.experiment import fit_and_evaluate  # noqa: E402
 
 
 def config_for(site, log_dir: Path, weighting: dict, rank: int, context_ranks, candidates: str = "shown",
-               validation_window: str = "24h") -> object:
+               validation_window: str = "24h", reg: float = 0.1) -> object:
     """The study's experiment config: the last two days for test, ``validation_window`` before them for validation."""
     p = site.params
     end = int(site.events["timestamp"].max())
-    base = {"method": "cp", "rank": rank, "reg": 0.1, "max_sweeps": 10, "random_state": 1}
+    base = {"method": "cp", "rank": rank, "reg": reg, "max_sweeps": 10, "random_state": 1}
     return parse_config({
         "experiment": {"name": "context-gain-study"},
         "data": {"events": str(log_dir / "events.parquet"), "items": str(log_dir / "items.parquet"),
@@ -59,12 +59,12 @@ def config_for(site, log_dir: Path, weighting: dict, rank: int, context_ranks, c
 
 
 def run_one(name: str, seed: int, n_events: int, weighting: dict, rank: int, context_ranks,
-            candidates: str = "shown", validation_window: str = "24h") -> dict:
+            candidates: str = "shown", validation_window: str = "24h", reg: float = 0.1) -> dict:
     started = time.perf_counter()
     site = simulate_site(scenario(name, n_events, seed))
     with tempfile.TemporaryDirectory() as tmp:
         log_dir = write_site(site, Path(tmp) / "site")
-        config = config_for(site, log_dir, weighting, rank, context_ranks, candidates, validation_window)
+        config = config_for(site, log_dir, weighting, rank, context_ranks, candidates, validation_window, reg)
         dataset = load_dataset(config, truth=site_truth)
         selection = select_structure(config, dataset, "auto", echo=lambda line: None, show_progress=False)
         truth_validation = {row["model"]: row["value"] for _, row in selection.evaluation.table.iterrows()
@@ -78,7 +78,7 @@ def run_one(name: str, seed: int, n_events: int, weighting: dict, rank: int, con
     best_truth = max(truth_validation, key=truth_validation.get)
     return {
         "scenario": name, "seed": seed, "events": n_events, "select_candidates": candidates,
-        "validation_window": validation_window, **{f"w.{k}": v for k, v in weighting.items()},
+        "validation_window": validation_window, "reg": reg, **{f"w.{k}": v for k, v in weighting.items()},
         "chosen": selection.chosen, "chosen_structure": selection.structure,
         "test_true_ndcg_mf": test["mf"], "test_true_ndcg_chosen": test["auto"],
         "test_gain": test["auto"] / test["mf"] - 1.0,
@@ -101,6 +101,7 @@ def main(argv=None) -> int:
     parser.add_argument("--signal", nargs="+", default=["clicks"])
     parser.add_argument("--select-candidates", default="shown", choices=["shown", "eligible"],
                         help="what each validation request ranks during selection ([select] candidates)")
+    parser.add_argument("--reg", type=float, nargs="+", default=[0.1], help="reg of every candidate")
     parser.add_argument("--validation-window", default="48h", help="[split] validation_window of the selection")
     parser.add_argument("--out", default=None, help="CSV of the rows")
     args = parser.parse_args(argv)
@@ -112,16 +113,17 @@ def main(argv=None) -> int:
                 for scope in args.w0_scope:
                     for alpha in args.alpha:
                         for signal in args.signal:
-                            weighting = {"w0": w0, "w0_scope": scope, "alpha": alpha, "signal": signal}
-                            row = run_one(name, seed, args.events, weighting, args.rank, args.context_ranks,
-                                          args.select_candidates, args.validation_window)
-                            rows.append(row)
-                            print(" ".join(f"{k}={v:.4f}" if isinstance(v, float) else f"{k}={v}" for k, v in row.items()),
-                                  flush=True)
+                            for reg in args.reg:
+                                weighting = {"w0": w0, "w0_scope": scope, "alpha": alpha, "signal": signal}
+                                row = run_one(name, seed, args.events, weighting, args.rank, args.context_ranks,
+                                              args.select_candidates, args.validation_window, reg)
+                                rows.append(row)
+                                print(" ".join(f"{k}={v:.4f}" if isinstance(v, float) else f"{k}={v}"
+                                               for k, v in row.items()), flush=True)
     table = pd.DataFrame(rows)
     if args.out:
         table.to_csv(args.out, index=False)
-    print(table.groupby([c for c in table.columns if c.startswith(("scenario", "w."))])[["test_gain"]].describe())
+    print(table.groupby([c for c in table.columns if c.startswith(("scenario", "w.", "reg"))])[["test_gain"]].describe())
     return 0
 
 

@@ -451,19 +451,43 @@ def cmd_demo(args: argparse.Namespace) -> int:
     report = train(config, store, echo=lambda line: print(f"   {line}"), truth=site_truth)
     print(summary_text(report))
     print(f"   list the runs: threefold runs --store {out / 'runs'}")
-    _demo_score(out, log_dir, report, store)
+    run = _demo_score(out, log_dir, report, store)
+    if run is not None:
+        _demo_explain(out, log_dir, run, store, folder)
     return 0
 
 
-def _demo_score(out: Path, log_dir: Path, report, store) -> None:
-    """Step 5: the nightly job on the last day's requests, with the reasons behind every item."""
+def _demo_explain(out: Path, log_dir: Path, run, store, tensor_folder: Path) -> None:
+    """Step 6: the factor report of the scored model, for the editors."""
+    from threefold.pipeline.explain import explain_model
+
+    report_dir = out / "report"
+    compare = [("daypart=morning,device=mobile", "daypart=evening,device=tablet")]
+    print(f"== 6. explain {run.name!r}: what each factor means and what changes from a mobile morning to a tablet "
+          "evening")
+    print(f"   threefold explain --model {run.run_id} --items {log_dir / 'items.parquet'} --compare "
+          f"{compare[0][0]} {compare[0][1]} --out {report_dir} --store {out / 'runs'}")
+    lines: list[str] = []
+    explain_model(run.run_id, out=report_dir, items=log_dir / "items.parquet", compare=compare, store=store,
+                  echo=lines.append)
+    text = "\n".join(lines).splitlines()
+    factors = [line.strip() for line in text if line.strip().startswith("component") and "[user*item]" not in line
+               and "no enriched attribute" not in line]  # the context factors the catalog can name
+    changes = [line.strip() for line in text if line.strip().startswith(("top-", "rise most", "fall most", "driven"))]
+    for line in factors[:4] + changes:
+        print(f"   {line}")
+    print(f"   open {report_dir / 'report.html'} (also logged as artifacts explain/ of run {run.run_id})")
+
+
+def _demo_score(out: Path, log_dir: Path, report, store):
+    """Step 5: the nightly job on the last day's requests, with the reasons behind every item; returns the run."""
     import pandas as pd
 
     from threefold.pipeline.score import score_requests
 
     scored = [r for r in report.runs if r.model_uri and r.name != "mf"] or [r for r in report.runs if r.model_uri]
     if not scored:
-        return
+        return None
     run = scored[0]
     events = pd.read_parquet(log_dir / "events.parquet", columns=["request_id", "user_id", "timestamp", "device",
                                                                   "page_tone"])
@@ -481,6 +505,7 @@ def _demo_score(out: Path, log_dir: Path, report, store) -> None:
     print("   " + first[[c for c in columns if c in first.columns]].to_string(index=False).replace("\n", "\n   "))
     print(f"   {lists['request_id'].nunique():,} lists, {len(lists):,} rows in {out / 'lists'} "
           "(a rerun of the same command resumes; see docs/scoring.md)")
+    return run
 
 
 def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
@@ -498,7 +523,7 @@ def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
                   "daypart_starts": [float(x) for x in p.daypart_starts], "daypart_labels": list(p.daypart_labels)},
         "weighting": {"alpha": 10.0, "w_skip": 2.0, "w0": 0.1},
         "split": {"cutoff": int(cutoff), "validation_window": "48h"},
-        "evaluation": {"ks": [3, 5, 10], "baseline": "popularity", "metrics": ["recall", "ndcg", "ndcg_true"],
+        "evaluation": {"ks": [3, 5, 10], "baseline": "mf", "metrics": ["recall", "ndcg", "ndcg_true"],
                        "n_resamples": 200, "random_state": 0},
         "models": {
             "popularity": {"method": "popularity", "window": "24h"},

@@ -1,9 +1,11 @@
 """What each latent factor is: strength, context loadings, top items and users, and a label from the catalog.
 
 * **CP** (plain or structured): one entry per component ``r``. Its strength is
-  the weight ``λ_r`` and its share ``λ_r² / Σ λ²`` of the model's energy (the
-  factor columns are unit-norm, so the squared Frobenius norm of a rank-one term
-  is ``λ_r²``). Its loadings on a context mode are the column ``F_c[:, r]``, one
+  the Frobenius norm of its rank-one term over the whole tensor,
+  ``λ_r · Π_{n not in its term} sqrt(I_n)`` (the columns it owns are unit-norm; a
+  mode outside its term contributes a column of ones), and its share is the
+  squared strength over the sum of all of them: an item × daypart term counts
+  for every user it moves, so it is comparable with a user × item term. Its loadings on a context mode are the column ``F_c[:, r]``, one
   value per level, for the modes its term spans. Components are oriented so that
   the item column's largest absolute entry is positive (flipping the item column
   and one other column of the component together leaves the model unchanged), so
@@ -41,7 +43,7 @@ class Factor:
     term : str
         CP: the structure term (``"user*item*daypart"``); Tucker: ``"item column j"``.
     strength : float
-        CP: ``λ_r``; Tucker: ``‖G[:, j, …]‖``.
+        CP: the norm of the component's rank-one term over the whole tensor; Tucker: ``‖G[:, j, …]‖``.
     share : float
         Share of the model's energy, in [0, 1].
     loadings : dict of str to ndarray
@@ -172,13 +174,15 @@ def factor_summaries(result, catalog: pd.DataFrame | None = None, *, n_top: int 
         owned = result.structure.active_mask(names)
         terms = result.structure.component_terms()
         term_names = ["*".join(t.modes) for t in result.structure.terms]
-        total = float(np.sum(weights ** 2)) or 1.0
+        sizes = np.asarray(result.shape, dtype=np.float64)
+        norms = np.abs(weights) * np.prod(np.where(owned, 1.0, np.sqrt(sizes)[:, None]), axis=0)
+        total = float(np.sum(norms ** 2)) or 1.0
         for r in range(weights.size):
             loadings = {names[n]: factors[n][:, r].copy() for n in range(2, len(names)) if owned[n, r]}
             top = np.argsort(-factors[1][:, r], kind="stable")[:n_top]
             users = np.argsort(-factors[0][:, r], kind="stable")[:n_top] if owned[0, r] else np.zeros(0, dtype=np.int64)
-            out.append(Factor(index=r, term=term_names[terms[r]], strength=float(weights[r]),
-                              share=float(weights[r] ** 2 / total), loadings=loadings, top_items=top,
+            out.append(Factor(index=r, term=term_names[terms[r]], strength=float(norms[r]),
+                              share=float(norms[r] ** 2 / total), loadings=loadings, top_items=top,
                               item_values=factors[1][top, r], top_users=users, user_values=factors[0][users, r],
                               enrichment=enrichment(top, catalog, columns) if catalog is not None else None,
                               level_names=levels))

@@ -74,7 +74,7 @@ class Report:
         peaks = f.peak_levels(self.level_names)
         where = ", ".join(f"{levels} ({mode})" for mode, levels in peaks.items())
         what = f.enrichment.label() if f.enrichment is not None else "no catalog given"
-        head = f"{self._factor_name(f)} ({100 * f.share:.1f}% of the model's energy)"
+        head = f"{self._factor_name(f)} ({_percent(f.share)} of the model's energy)"
         if where:
             head += f" is switched on by {where}"
         return f"{head}; its top items have in common: {what}."
@@ -210,6 +210,11 @@ def build_report(result, *, title: str = "factor report", catalog: pd.DataFrame 
                   comparisons=list(comparisons), notes=list(notes), ranks=ranks)
 
 
+def _percent(share: float) -> str:
+    """A share as a percentage with two significant digits (``"0.042%"``, ``"12%"``)."""
+    return f"{100 * share:.2g}%"
+
+
 def _closest_pair(cosine: np.ndarray):
     if cosine.shape[0] < 2:
         return None
@@ -252,7 +257,7 @@ def _shares_figure(report: Report) -> str:
     fig.tight_layout()
     top = factors[0]
     return _figure(title, _png(fig), f"The strongest factor is {report._factor_name(top)} with "
-                                     f"{100 * top.share:.1f}% of the model's energy.")
+                                     f"{_percent(top.share)} of the model's energy.")
 
 
 def _loadings_figure(report: Report, f: Factor) -> str | None:

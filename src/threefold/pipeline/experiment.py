@@ -50,11 +50,15 @@ class FitOutcome:
 
 
 def fit_and_evaluate(config: ExperimentConfig, data: StageData, dataset: Dataset, name: str, *,
-                     callback: Callable | None = None, with_baseline: bool = True) -> FitOutcome:
+                     callback: Callable | None = None, with_baseline: bool = True,
+                     fitted_baseline=None) -> FitOutcome:
     """Fit the model ``name`` on the stage's tensor and evaluate it (with the baseline beside it).
 
-    Factor models are fitted here; baselines (popularity, random) are fitted by
-    the evaluation on the stage's events, as of each request.
+    Factor models are fitted here; event baselines (popularity, random) are
+    fitted by the evaluation on the stage's events, as of each request. A
+    factor model as the baseline (e.g. ``baseline = "mf"``) is fitted here too,
+    unless ``fitted_baseline`` (its estimator, already fitted on this stage's
+    tensor) is given.
     """
     from threefold.evaluation.harness import evaluate_stage
     from threefold.pipeline.config import evaluation_options
@@ -70,7 +74,16 @@ def fit_and_evaluate(config: ExperimentConfig, data: StageData, dataset: Dataset
     models = {name: estimator}
     baseline = config["evaluation"]["baseline"]
     if with_baseline and baseline is not None and baseline != name:
-        models[baseline] = make_estimator(config.models[baseline])
+        base_spec = config.models[baseline]
+        if base_spec["method"] in FACTOR_METHODS:
+            if fitted_baseline is None:
+                fitted_baseline = make_estimator(base_spec)
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore", category=UserWarning)
+                    fitted_baseline.fit(data.tensor)
+            models[baseline] = fitted_baseline
+        else:
+            models[baseline] = make_estimator(base_spec)
     options = evaluation_options(config, baseline=baseline if baseline in models and len(models) > 1 else None)
     evaluation = evaluate_stage(data.stage, models, data.contexts, options, catalog=dataset.items,
                                 build_options=data.build_options, true_relevance=dataset.true_relevance)
@@ -110,6 +123,7 @@ class ModelRun:
     metrics: dict
     model_uri: str | None
     seconds: float
+    comparisons: pd.DataFrame | None = None  # paired with the config's baseline (model, metric, k, mean_difference, ...)
 
 
 @dataclass
@@ -229,7 +243,7 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
     tags = {**config["experiment"]["tags"], **environment_tags(), "threefold.data_sha256": dataset.fingerprint["sha256"],
             "threefold.config_sha256": config.fingerprint(), "threefold.key_metrics": ",".join(keys),
             "threefold.stage": stage_name}
-    runs, tables = [], []
+    runs, tables, estimators = [], [], {}
     with store.run(experiment_id, run_name=f"train {Path(config.source).stem}",
                    tags={**tags, "threefold.kind": "train"}) as parent_id:
         log_params(store, parent_id, config.flat())
@@ -254,7 +268,9 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
                         logger(record, model)
                         bar.update(1)
 
-                    outcome = fit_and_evaluate(config, data, dataset, name, callback=on_sweep)
+                    outcome = fit_and_evaluate(config, data, dataset, name, callback=on_sweep,
+                                               fitted_baseline=estimators.get(config["evaluation"]["baseline"]))
+                estimators[name] = outcome.estimator
                 logger.log_history(outcome.history)
                 metrics = log_outcome(store, run_id, outcome, config)
                 result = getattr(outcome.estimator, "result_", None)
@@ -263,7 +279,8 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
                     store.call(store.client.set_tag, run_id, "threefold.model_uri", uri)
                 if name in auto and any(result.owned_columns(m).any() for m in range(2, len(data.tensor.mode_names))):
                     _log_context_gain(store, run_id, config, data, dataset, result, name, echo)
-            runs.append(ModelRun(name=name, run_id=run_id, metrics=metrics, model_uri=uri, seconds=outcome.seconds))
+            runs.append(ModelRun(name=name, run_id=run_id, metrics=metrics, model_uri=uri, seconds=outcome.seconds,
+                                 comparisons=outcome.evaluation.comparisons))
             table = outcome.evaluation.table
             tables.append(table[table["model"] == name])
             echo(f"  {name}: " + "  ".join(_interval_text(metrics, m) for m in keys) + f"  ({outcome.seconds:.1f} s)")
@@ -289,4 +306,29 @@ def summary_text(report: TrainReport) -> str:
     lines = ["  ".join(str(c).ljust(w) for c, w in zip(header, widths))]
     lines += ["  ".join(str(c).ljust(w) for c, w in zip(r, widths)) for r in rows]
     lines.append(f"parent run {report.parent_run_id}; intervals are 95% percentile bootstrap over users")
+    lines += _paired_lines(report)
     return "\n".join(lines)
+
+
+def _paired_lines(report: TrainReport) -> list[str]:
+    """One line per model and key metric: the paired difference with the baseline, its interval and p-value."""
+    out = []
+    values = {run.name: run.metrics for run in report.runs}
+    for run in report.runs:
+        c = run.comparisons
+        if c is None or c.empty:
+            continue
+        for key in report.key_metrics:
+            metric, _, k = key.rpartition("_at_")
+            row = c[(c["model"] == run.name) & (c["metric"] == metric) & (c["k"] == int(k))] if k.isdigit() else c[:0]
+            if row.empty:
+                continue
+            r = row.iloc[0]
+            base = values.get(r["baseline"], {}).get(key, float("nan"))
+            ratio = run.metrics.get(key, float("nan")) / base - 1.0 if base > 0 else float("nan")
+            relative = f" ({100 * ratio:+.1f}% of the means)" if ratio == ratio else ""
+            out.append(f"  {run.name} - {r['baseline']}: {key} {r['mean_difference']:+.4f} "
+                       f"[{r['low']:+.4f}, {r['high']:+.4f}]{relative}, paired per user, p = {r['p_value']:.2g}")
+    if out:
+        out.insert(0, "paired with the baseline (Wilcoxon signed-rank p):")
+    return out

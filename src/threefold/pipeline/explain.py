@@ -247,7 +247,11 @@ def explain_model(model: str | os.PathLike, *, out: str | os.PathLike, items=Non
                              f"(one side leaves {sorted(set(free_a) ^ set(free_b))} unset).")
         comparisons.append(compare_contexts(scorer, users, a, b, k=k, label_a=a_text, label_b=b_text,
                                             column_labels=_column_labels(result)))
-    title = f"factor report: {meta.get('extra', {}).get('name') or Path(str(model)).name}"
+    name = meta.get("extra", {}).get("name") or Path(str(model)).name
+    if run_id is not None:
+        run = store.call(store.client.get_run, run_id)
+        name = f"{run.data.tags.get('threefold.model', name)} (run {run_id[:8]})"
+    title = f"factor report: {name}"
     ranks = rank_trials(store, run_id)
     report = build_report(result, title=title, catalog=catalog, n_top=n_top, gain=gain, stability=stab,
                           comparisons=comparisons, notes=notes, ranks=ranks)
