@@ -237,3 +237,22 @@ def test_rank_trials_are_read_from_the_run_store(tmp_path):
     assert table["rank"].tolist() == [4, 8] and table["trials"].tolist() == [2, 1]
     np.testing.assert_allclose(table["value"], [0.21, 0.25])
     assert rank_trials(store, None) is None
+
+
+def test_a_segment_restricts_the_comparison_and_unknown_ids_are_named(tmp_path):
+    from threefold.models.model_io import save_model
+    from threefold.pipeline.explain import explain_model
+
+    result, _ = tiny_cp(seed=2, structure="user*item:2 + user*item*device:2")
+    save_model(result, tmp_path / "model", parameters={"method": "cp"})
+    users = [str(u) for u in result.vocabularies[0].labels]
+    device = [str(x) for x in result.vocabularies[3].labels]
+    pd.DataFrame({"user_id": users[:3]}).to_csv(tmp_path / "segment.csv", index=False)
+    report = explain_model(tmp_path / "model", out=tmp_path / "out", compare=[(f"device={device[0]}", f"device={device[1]}")],
+                           segment=tmp_path / "segment.csv", echo=lambda line: None)
+    assert len(report.comparisons[0].per_user) == 3
+    pd.DataFrame({"user_id": [users[0], "nobody"]}).to_csv(tmp_path / "bad.csv", index=False)
+    with pytest.raises(ValueError, match=r"bad.csv: column user_id names 1 user\(s\) the model does not know "
+                                         r"\(row 2: 'nobody'\)"):
+        explain_model(tmp_path / "model", out=tmp_path / "o2", compare=[(f"device={device[0]}", f"device={device[1]}")],
+                      segment=tmp_path / "bad.csv", echo=lambda line: None)

@@ -194,6 +194,8 @@ def _add_explain_command(commands) -> None:
     explain.add_argument("--compare", nargs=2, action="append", default=[], metavar=("CONTEXT_A", "CONTEXT_B"),
                          help="two settings such as device=mobile device=tablet (repeatable; MODE=LEVEL[,MODE=LEVEL])")
     explain.add_argument("--user", default=None, metavar="USER_ID", help="compare this user's lists only")
+    explain.add_argument("--segment", default=None, metavar="USERS",
+                         help="compare these users' lists only: CSV or Parquet with a user_id column")
     explain.add_argument("--k", type=int, default=10, help="list length of the comparisons (default 10)")
     explain.add_argument("--top", type=int, default=10, help="top items and users per factor (default 10)")
     explain.add_argument("--out", required=True, help="folder for report.html, report.json, summary.txt")
@@ -213,7 +215,8 @@ def cmd_explain(args: argparse.Namespace) -> int:
         store = open_store(args.store)
     quiet = (lambda line: None) if args.json else print
     report = explain_model(args.model, out=args.out, items=args.items, tensor=args.tensor, seeds=args.seeds,
-                           compare=[tuple(pair) for pair in args.compare], user=args.user, k=args.k, n_top=args.top,
+                           compare=[tuple(pair) for pair in args.compare], user=args.user, segment=args.segment,
+                           k=args.k, n_top=args.top,
                            store=store, echo=quiet)
     if args.json:
         print(json.dumps(report.to_dict(), indent=2, default=float))

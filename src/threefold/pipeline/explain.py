@@ -105,6 +105,27 @@ def _read_catalog(path) -> pd.DataFrame:
     return catalog
 
 
+def _segment_rows(segment, labels: dict) -> np.ndarray:
+    """Model rows of a user segment (a file with a ``user_id`` column, or a sequence of ids)."""
+    if isinstance(segment, (str, os.PathLike)):
+        path = Path(segment)
+        if not path.is_file():
+            raise FileNotFoundError(f"--segment {path}: no such file.")
+        frame = pd.read_parquet(path) if path.suffix.lower() in (".parquet", ".pq") else pd.read_csv(path, dtype=str)
+        if "user_id" not in frame.columns:
+            raise ValueError(f"--segment {path}: no user_id column; the columns are {list(frame.columns)}.")
+        ids, where = frame["user_id"].astype(str).str.strip().tolist(), f"--segment {path}"
+    else:
+        ids, where = [str(u) for u in segment], "segment"
+    unknown = [(row, u) for row, u in enumerate(ids, start=1) if u not in labels]
+    if unknown:
+        shown = ", ".join(f"row {row}: {u!r}" for row, u in unknown[:5])
+        raise ValueError(f"{where}: column user_id names {len(unknown)} user(s) the model does not know ({shown}).")
+    if not ids:
+        raise ValueError(f"{where}: no users.")
+    return np.unique(np.array([labels[u] for u in ids], dtype=np.int64))
+
+
 def _run_of(model: str, store) -> str | None:
     """The run id behind a run id, a run prefix or a ``runs:/`` URI (None for folders and registry URIs)."""
     text = str(model)
@@ -175,8 +196,8 @@ def rank_trials(store, run_id: str | None) -> pd.DataFrame | None:
 
 
 def explain_model(model: str | os.PathLike, *, out: str | os.PathLike, items=None, tensor=None, seeds: int = 2,
-                  compare: Sequence[tuple[str, str]] = (), user: str | None = None, k: int = 10, n_top: int = 10,
-                  store=None, echo: Callable[[str], None] = print):
+                  compare: Sequence[tuple[str, str]] = (), user: str | None = None, segment=None, k: int = 10,
+                  n_top: int = 10, store=None, echo: Callable[[str], None] = print):
     """Write the factor report of ``model`` into ``out`` (and log it on the model's run); returns the Report.
 
     Parameters
@@ -195,6 +216,10 @@ def explain_model(model: str | os.PathLike, *, out: str | os.PathLike, items=Non
         Pairs of settings such as ``("device=phone", "device=tv")``.
     user : str, optional
         Compare the lists of this user only (default: up to 2,000 users).
+    segment : path or sequence of str, optional
+        Compare the lists of these users only: a CSV or Parquet file with a
+        ``user_id`` column, or the ids themselves. Ids the model does not know
+        are refused, naming the first few.
     k, n_top : int
         List length of the comparisons; top items and users per factor.
     store : RunStore, optional
@@ -229,11 +254,15 @@ def explain_model(model: str | os.PathLike, *, out: str | os.PathLike, items=Non
             stab = stability(spec, data, seeds)
     comparisons = []
     users = np.arange(min(result.shape[0], MAX_COMPARE_USERS))
+    if user is not None and segment is not None:
+        raise ValueError("--user and --segment name the compared users twice; give one of them.")
+    labels = {str(x): i for i, x in enumerate(result.vocabularies[0].labels)}
     if user is not None:
-        labels = [str(x) for x in result.vocabularies[0].labels]
         if str(user) not in labels:
             raise ValueError(f"--user {user!r} is not a user of the model ({len(labels):,} users).")
-        users = np.array([labels.index(str(user))])
+        users = np.array([labels[str(user)]])
+    if segment is not None:
+        users = _segment_rows(segment, labels)
     for a_text, b_text in compare:
         a, free_a = parse_setting(a_text, result)
         b, free_b = parse_setting(b_text, result)
