@@ -456,7 +456,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     print(f"   list the runs: threefold runs --store {out / 'runs'}")
     run = _demo_score(out, log_dir, report, store)
     if run is not None:
-        _demo_explain(out, log_dir, run, store, folder)
+        _demo_explain(out, log_dir, run, store, out / "tensor")
     return 0
 
 
@@ -468,16 +468,17 @@ def _demo_explain(out: Path, log_dir: Path, run, store, tensor_folder: Path) -> 
     compare = [("daypart=morning,device=mobile", "daypart=evening,device=tablet")]
     print(f"== 6. explain {run.name!r}: what each factor means and what changes from a mobile morning to a tablet "
           "evening")
-    print(f"   threefold explain --model {run.run_id} --items {log_dir / 'items.parquet'} --compare "
-          f"{compare[0][0]} {compare[0][1]} --out {report_dir} --store {out / 'runs'}")
+    print(f"   threefold explain --model {run.run_id} --items {log_dir / 'items.parquet'} --tensor {tensor_folder} "
+          f"--seeds 1 --compare {compare[0][0]} {compare[0][1]} --out {report_dir} --store {out / 'runs'}")
     lines: list[str] = []
-    explain_model(run.run_id, out=report_dir, items=log_dir / "items.parquet", compare=compare, store=store,
-                  echo=lines.append)
+    explain_model(run.run_id, out=report_dir, items=log_dir / "items.parquet", tensor=tensor_folder, seeds=1,
+                  compare=compare, store=store, echo=lines.append)
     text = "\n".join(lines).splitlines()
     factors = [line.strip() for line in text if line.strip().startswith("component") and "[user*item]" not in line
                and "no enriched attribute" not in line]  # the context factors the catalog can name
     changes = [line.strip() for line in text if line.strip().startswith(("top-", "rise most", "fall most", "driven"))]
-    for line in factors[:4] + changes:
+    stability = [line.strip() for line in text if line.startswith("stability:")]
+    for line in factors[:4] + changes + stability:
         print(f"   {line}")
     print(f"   open {report_dir / 'report.html'} (also logged as artifacts explain/ of run {run.run_id})")
 
