@@ -388,9 +388,10 @@ def _table(frame: pd.DataFrame) -> str:
 
 
 def _cell(value) -> str:
-    if isinstance(value, float):
-        return f"{value:.4g}"
-    return "" if value is None or (isinstance(value, float) and np.isnan(value)) else str(value)
+    """Table cell text: floats to 4 significant digits, NaN and None blank."""
+    if value is None or (isinstance(value, float) and np.isnan(value)):
+        return ""
+    return f"{value:.4g}" if isinstance(value, float) else str(value)
 
 
 def _html(report: Report) -> str:
