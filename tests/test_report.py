@@ -256,3 +256,15 @@ def test_a_segment_restricts_the_comparison_and_unknown_ids_are_named(tmp_path):
                                          r"\(row 2: 'nobody'\)"):
         explain_model(tmp_path / "model", out=tmp_path / "o2", compare=[(f"device={device[0]}", f"device={device[1]}")],
                       segment=tmp_path / "bad.csv", echo=lambda line: None)
+
+
+def test_a_catalog_file_with_blank_ids_names_the_rows(tmp_path):
+    from threefold.models.model_io import save_model
+    from threefold.pipeline.explain import explain_model
+
+    result, _ = tiny_cp(seed=2)
+    save_model(result, tmp_path / "model", parameters={"method": "cp"})
+    pd.DataFrame({"item_id": ["i00", "", "i02", None], "shelf": ["a", "b", "c", "d"]}).to_csv(tmp_path / "items.csv",
+                                                                                               index=False)
+    with pytest.raises(ValueError, match=r"--items .*items.csv: column item_id is blank in data row\(s\) \[2, 4\]"):
+        explain_model(tmp_path / "model", out=tmp_path / "out", items=tmp_path / "items.csv", echo=lambda line: None)

@@ -91,30 +91,29 @@ def _comparable(result) -> list[np.ndarray]:
     return [np.asarray(f, dtype=np.float64) for f in result.factors]
 
 
-def _read_catalog(path) -> pd.DataFrame:
+def _read_id_table(path, flag: str, column: str) -> pd.DataFrame:
+    """A small CSV or Parquet file of ``--items`` or ``--segment``, with a non-blank ``column`` (read as strings).
+
+    Errors name the flag, the file, the column and the 1-based data rows.
+    """
     path = Path(path)
     if not path.is_file():
-        raise FileNotFoundError(f"--items {path}: no such file.")
-    catalog = pd.read_parquet(path) if path.suffix.lower() in (".parquet", ".pq") else pd.read_csv(path, dtype=str)
-    if "item_id" not in catalog.columns:
-        raise ValueError(f"--items {path}: no item_id column; the columns are {list(catalog.columns)}.")
-    blank = catalog["item_id"].isna() | (catalog["item_id"].astype(str).str.strip() == "")
+        raise FileNotFoundError(f"{flag} {path}: no such file.")
+    frame = pd.read_parquet(path) if path.suffix.lower() in (".parquet", ".pq") else pd.read_csv(path, dtype=str)
+    if column not in frame.columns:
+        raise ValueError(f"{flag} {path}: no {column} column; the columns are {list(frame.columns)}.")
+    blank = frame[column].isna() | (frame[column].astype(str).str.strip() == "")
     if blank.any():
         rows = (np.flatnonzero(blank.to_numpy()) + 1)[:5].tolist()
-        raise ValueError(f"--items {path}: column item_id is blank in data row(s) {rows}.")
-    return catalog
+        raise ValueError(f"{flag} {path}: column {column} is blank in data row(s) {rows}.")
+    return frame
 
 
 def _segment_rows(segment, labels: dict) -> np.ndarray:
     """Model rows of a user segment (a file with a ``user_id`` column, or a sequence of ids)."""
     if isinstance(segment, (str, os.PathLike)):
-        path = Path(segment)
-        if not path.is_file():
-            raise FileNotFoundError(f"--segment {path}: no such file.")
-        frame = pd.read_parquet(path) if path.suffix.lower() in (".parquet", ".pq") else pd.read_csv(path, dtype=str)
-        if "user_id" not in frame.columns:
-            raise ValueError(f"--segment {path}: no user_id column; the columns are {list(frame.columns)}.")
-        ids, where = frame["user_id"].astype(str).str.strip().tolist(), f"--segment {path}"
+        frame = _read_id_table(segment, "--segment", "user_id")
+        ids, where = frame["user_id"].astype(str).str.strip().tolist(), f"--segment {Path(segment)}"
     else:
         ids, where = [str(u) for u in segment], "segment"
     unknown = [(row, u) for row, u in enumerate(ids, start=1) if u not in labels]
@@ -235,7 +234,9 @@ def explain_model(model: str | os.PathLike, *, out: str | os.PathLike, items=Non
     result, meta, _ = load_model(folder)
     spec = dict(meta.get("parameters") or {})
     run_id = _run_of(str(model), store)
-    catalog = items if isinstance(items, pd.DataFrame) or items is None else _read_catalog(items)
+    catalog = items
+    if items is not None and not isinstance(items, pd.DataFrame):
+        catalog = _read_id_table(items, "--items", "item_id")
     notes = []
     if catalog is None:
         notes.append("No catalog was given (--items): factors are labelled by their context levels only.")
