@@ -22,7 +22,7 @@ from threefold.core.exceptions import InputRowsError
 from threefold.data.context import parse_context
 from threefold.data.events import load_events
 from threefold.models.model_io import save_model
-from threefold.pipeline import score as score_module
+from threefold.pipeline import cluster as cluster_module
 from threefold.pipeline.score import SchedulerUnreachable, score_requests
 from threefold.ranking.batch import JobMismatch, read_output
 from threefold.ranking.recommender import Recommender
@@ -176,7 +176,7 @@ def test_dask_workers_write_the_same_bytes(saved, tmp_path):
 
 def test_an_unreachable_scheduler_is_one_clear_error(saved, tmp_path, monkeypatch):
     folder, *_ = saved
-    monkeypatch.setattr(score_module, "CONNECT_TIMEOUT", 2)
+    monkeypatch.setattr(cluster_module, "CONNECT_TIMEOUT", 2)
     with pytest.raises(SchedulerUnreachable, match=r"No Dask scheduler answered at 'tcp://127.0.0.1:9' within 2 s"):
         score_requests(folder / "model", folder / "requests.csv", out=tmp_path / "out", scheduler="tcp://127.0.0.1:9",
                        show_progress=False)

@@ -172,3 +172,31 @@ def test_candidates_start_from_the_fitted_mf_columns():
     assert init[1].shape == (tensor_shape[1], 3) and 0 <= init[3][:, 2].min() and init[3][:, 2].max() < 0.1
     assert warm_start(mf, "item*device:2 + user*item:2", _Shape(), 3, random_state=0) is None
     assert warm_start(mf, "user*item:5", _Shape(), 3, random_state=0) is None  # more columns than MF has
+
+
+def test_candidates_fitted_on_dask_workers_give_the_same_selection(tmp_path):
+    """The same candidates fitted in a Dask worker process (a real local cluster) and here: the same table."""
+    import pandas as pd
+
+    from threefold.pipeline.cluster import dask_client
+
+    site = simulate_site(ScenarioParameters.scaled(6_000, seed=3, **STRONG))
+    log_dir = write_site(site, tmp_path / "site")
+    config = _config(site, log_dir, context_ranks=[2])
+    dataset = load_dataset(config)
+    here = select_structure(config, dataset, "auto", echo=lambda line: None, show_progress=False)
+    with dask_client(workers=1) as client:
+        there = select_structure(config, dataset, "auto", echo=lambda line: None, show_progress=False, client=client)
+    pd.testing.assert_frame_equal(here.table, there.table)
+    assert here.structure == there.structure
+
+
+def test_dask_client_refuses_both_and_neither():
+    from threefold.pipeline.cluster import dask_client
+
+    with pytest.raises(ValueError, match=r"Give workers= \(a local Dask cluster\) or scheduler= \(a running one\), not both"):
+        with dask_client(workers=1, scheduler="tcp://127.0.0.1:9"):
+            pass
+    with pytest.raises(ValueError, match=r"or scheduler= \(a running one\)\.$"):
+        with dask_client():
+            pass

@@ -126,6 +126,11 @@ def _add_tracking_commands(commands) -> None:
             sub.add_argument("--model", action="append", default=[], metavar="NAME",
                              help="only this model (repeatable; default every \"auto\" model)")
             sub.add_argument("--json", action="store_true", help="print the selections as JSON")
+            where = sub.add_mutually_exclusive_group()
+            where.add_argument("--workers", type=int, default=None,
+                               help="fit the candidates on a local Dask cluster of N processes")
+            where.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                               help="fit the candidates on an existing Dask cluster, e.g. tcp://10.0.0.5:8786")
         if name == "sweep":
             sub.add_argument("--workers", type=int, default=2, help="local Dask worker processes (default 2)")
             sub.add_argument("--scheduler", default=None, metavar="ADDRESS",
@@ -224,15 +229,11 @@ def cmd_explain(args: argparse.Namespace) -> int:
 
 
 def cmd_score(args: argparse.Namespace) -> int:
-    from threefold.pipeline.score import SchedulerUnreachable, score_requests
+    from threefold.pipeline.score import score_requests
 
-    try:
-        manifest = score_requests(args.model, args.requests, out=args.out, candidates=args.candidates, k=args.k,
-                                  explain=args.explain, format=args.format, chunk_rows=args.chunk_rows,
-                                  workers=args.workers, scheduler=args.scheduler, store=args.store, load=False)
-    except SchedulerUnreachable as error:
-        print(f"threefold score: error: {error}", file=sys.stderr)
-        return 1
+    manifest = score_requests(args.model, args.requests, out=args.out, candidates=args.candidates, k=args.k,
+                              explain=args.explain, format=args.format, chunk_rows=args.chunk_rows,
+                              workers=args.workers, scheduler=args.scheduler, store=args.store, load=False)
     print(f"{manifest['requests']:,} requests, {manifest['rows']:,} rows in {len(manifest['parts'])} part(s): "
           f"{Path(args.out) / '_manifest.json'}")
     return 0
@@ -260,7 +261,15 @@ def cmd_select(args: argparse.Namespace) -> int:
         raise ValueError(f"{args.config}: no CP model has structure = \"auto\"; set it in a [models.NAME] table "
                          "with method = \"cp\" (see docs/models.md, choosing a structure).")
     quiet = (lambda line: None) if args.json else print
-    _, selections = select_and_log(config, open_store(args.store), truth=site_truth, models=args.model, echo=quiet)
+    store = open_store(args.store)
+    if args.workers is None and args.scheduler is None:
+        _, selections = select_and_log(config, store, truth=site_truth, models=args.model, echo=quiet)
+    else:
+        from threefold.pipeline.cluster import dask_client
+
+        with dask_client(args.workers, args.scheduler, owner="select") as client:
+            _, selections = select_and_log(config, store, truth=site_truth, models=args.model, echo=quiet,
+                                           client=client)
     if args.json:
         print(json.dumps([s.to_dict() for s in selections], indent=2, default=str))
     return 0
@@ -546,6 +555,8 @@ def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``threefold`` console command."""
+    from threefold.pipeline.cluster import SchedulerUnreachable
+
     args = _parser().parse_args(argv)
     import os
 
@@ -559,7 +570,7 @@ def main(argv: Sequence[str] | None = None) -> int:
                 "select": cmd_select, "gain": cmd_gain, "explain": cmd_explain}
     try:
         return handlers[args.command](args)
-    except (ValueError, KeyError, FileNotFoundError, MemoryError) as error:
+    except (ValueError, KeyError, FileNotFoundError, MemoryError, SchedulerUnreachable) as error:
         message = error.args[0] if isinstance(error, KeyError) and error.args else error
         print(f"threefold {args.command}: error: {message}", file=sys.stderr)
         return 1

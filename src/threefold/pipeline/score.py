@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import os
 import shutil
+from contextlib import nullcontext
 from pathlib import Path
 
 import pandas as pd
@@ -29,14 +30,9 @@ from threefold.ranking.batch import (
 )
 from threefold.ranking.recommender import DEFAULT_K
 
+from threefold.pipeline.cluster import SchedulerUnreachable, dask_client
+
 __all__ = ["score_requests", "SchedulerUnreachable"]
-
-#: Seconds to wait for a Dask scheduler before giving up.
-CONNECT_TIMEOUT = 10
-
-
-class SchedulerUnreachable(RuntimeError):
-    """No Dask scheduler answered at the given address."""
 
 
 def _model_folder(model, out: Path, store) -> Path:
@@ -49,23 +45,6 @@ def _model_folder(model, out: Path, store) -> Path:
     opened = store if hasattr(store, "client") else open_store(store)
     out.mkdir(parents=True, exist_ok=True)
     return model_folder(model, store=opened, download_to=out / MODEL_COPY)
-
-
-def _client(workers: int | None, scheduler: str | None):
-    """A Dask client on a new local cluster or a running scheduler (caller closes it)."""
-    from distributed import Client, LocalCluster
-
-    if scheduler is not None:
-        try:
-            return Client(scheduler, timeout=CONNECT_TIMEOUT)
-        except (OSError, TimeoutError, ValueError) as error:
-            raise SchedulerUnreachable(
-                f"No Dask scheduler answered at {scheduler!r} within {CONNECT_TIMEOUT} s ({type(error).__name__}). "
-                "Check the address (e.g. tcp://10.0.0.5:8786) and that the scheduler runs, or use --workers N "
-                "for a local cluster."
-            ) from None
-    cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None)
-    return Client(cluster)
 
 
 def score_requests(model, requests, *, out: str | os.PathLike, candidates=None, k: int = DEFAULT_K,
@@ -115,8 +94,8 @@ def score_requests(model, requests, *, out: str | os.PathLike, candidates=None, 
         workers = check_int("workers", workers, low=1, owner="score")
     out = Path(out)
     folder = _model_folder(model, out, store)
-    client = _client(workers, scheduler) if workers is not None or scheduler is not None else None
-    try:
+    on_dask = workers is not None or scheduler is not None
+    with dask_client(workers, scheduler, owner="score") if on_dask else nullcontext() as client:
         with progress(None, "stage", "requests", enabled=show_progress) as bar:
             todo = prepare_job(out, folder, requests, candidates=candidates, k=k, explain=explain, format=format,
                                chunk_rows=chunk_rows, report=bar.update)
@@ -129,19 +108,9 @@ def score_requests(model, requests, *, out: str | os.PathLike, candidates=None, 
                         bar.update(score_part(out, index))
                 else:
                     _run_on_dask(client, out, todo, bar)
-    finally:
-        if client is not None:
-            _close(client, local=workers is not None)
     manifest = finish_job(out)
     shutil.rmtree(out / MODEL_COPY, ignore_errors=True)
     return read_output(out) if load else manifest
-
-
-def _close(client, local: bool) -> None:
-    cluster = getattr(client, "cluster", None)
-    client.close()
-    if local and cluster is not None:
-        cluster.close()
 
 
 def _run_on_dask(client, out: Path, todo: list[int], bar) -> None:

@@ -138,7 +138,7 @@ class Selection:
 
 
 def select_structure(config: ExperimentConfig, dataset, model: str, *, data=None,
-                     echo: Callable[[str], None] = print, show_progress: bool = True) -> Selection:
+                     echo: Callable[[str], None] = print, show_progress: bool = True, client=None) -> Selection:
     """Choose the structure of the ``"auto"`` CP model ``model`` on the validation window.
 
     Parameters
@@ -149,6 +149,9 @@ def select_structure(config: ExperimentConfig, dataset, model: str, *, data=None
         A ``[models.NAME]`` with ``method = "cp"`` and ``structure = "auto"``.
     data : StageData or None
         The validation stage (prepared here when None).
+    client : dask.distributed.Client or None
+        Fit the candidates on its workers (:func:`threefold.pipeline.cluster.dask_client`);
+        ranking the validation window stays in this process.
 
     Returns
     -------
@@ -156,7 +159,7 @@ def select_structure(config: ExperimentConfig, dataset, model: str, *, data=None
     """
     from threefold.evaluation.harness import evaluate_stage
     from threefold.pipeline.config import evaluation_options
-    from threefold.pipeline.stages import make_estimator, prepare_stage
+    from threefold.pipeline.stages import prepare_stage
 
     select = config["select"]
     if select["metric"] == "ndcg_true":
@@ -173,7 +176,7 @@ def select_structure(config: ExperimentConfig, dataset, model: str, *, data=None
 
     def add(candidates: dict):
         """Fit new candidates, rank them with mf on the validation window, append their rows."""
-        new = _fit_all(candidates, spec, data.tensor, make_estimator, show_progress, mf=fitted.get("mf"))
+        new = _fit_all(candidates, spec, data.tensor, show_progress, mf=fitted.get("mf"), client=client)
         models = {**({"mf": fitted["mf"]} if "mf" in fitted else {}), **new}  # paired with mf: others not needed
         evaluation = _evaluate(models, config, data, dataset, evaluate_stage, evaluation_options)
         fitted.update(new)
@@ -242,25 +245,51 @@ def warm_start(mf_result, structure: str, tensor, rank: int, random_state) -> li
     return factors
 
 
-def _fit_all(family: dict, spec: dict, tensor, make_estimator, show_progress: bool, mf=None) -> dict:
-    """Fit every candidate; with ``mf`` (the family's fitted MF) the others are warm-started from it."""
+def fit_candidate(params: dict, tensor):
+    """Fit one candidate (a ``[models.NAME]`` table with its structure and start); runs here or on a Dask worker."""
+    from threefold.pipeline.stages import make_estimator
+
+    estimator = make_estimator(params)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", category=UserWarning)  # convergence is in the history
+        estimator.fit(tensor)
+    return estimator
+
+
+def _fit_all(family: dict, spec: dict, tensor, show_progress: bool, mf=None, client=None) -> dict:
+    """Fit every candidate; the others are warm-started from the family's fitted MF (``mf``, or fitted first).
+
+    With a Dask ``client`` the candidates after MF run on its workers (the tensor
+    is sent to each worker once); the fits are the same as here.
+    """
     fitted = {}
-    order = sorted(family, key=lambda name: name != "mf")  # mf first: the others start from it
     with progress(len(family), "select", "candidates", enabled=show_progress) as bar:
-        for name in order:
-            structure = family[name]
+        if "mf" in family:  # first, here: the others start from it
+            fitted["mf"] = fit_candidate({**spec, "structure": family["mf"]}, tensor)
+            bar.update(1)
+        base = fitted.get("mf", mf)
+        todo = {}
+        for name, structure in family.items():
+            if name == "mf":
+                continue
             params = {**spec, "structure": structure}
-            base = fitted.get("mf", mf)
-            if name != "mf" and base is not None and spec.get("init", "random") == "random":
+            if base is not None and spec.get("init", "random") == "random":
                 init = warm_start(base.result_, structure, tensor, int(spec["rank"]), spec.get("random_state"))
                 if init is not None:
                     params["init"] = init
-            estimator = make_estimator(params)
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", category=UserWarning)  # convergence is in the history
-                estimator.fit(tensor)
-            fitted[name] = estimator
-            bar.update(1)
+            todo[name] = params
+        if client is None:
+            for name, params in todo.items():
+                fitted[name] = fit_candidate(params, tensor)
+                bar.update(1)
+        elif todo:
+            from distributed import as_completed
+
+            shared = client.scatter(tensor, broadcast=True)
+            futures = {client.submit(fit_candidate, params, shared, pure=False): name for name, params in todo.items()}
+            for future in as_completed(futures):
+                fitted[futures[future]] = future.result()
+                bar.update(1)
     return {name: fitted[name] for name in family}
 
 
@@ -349,7 +378,8 @@ def log_selection(store, experiment_id: str, parent_id: str, selection: Selectio
 
 
 def select_and_log(config: ExperimentConfig, store, *, dataset=None, truth=None, models=None,
-                   echo: Callable[[str], None] = print, parent_id: str | None = None) -> tuple[ExperimentConfig, list]:
+                   echo: Callable[[str], None] = print, parent_id: str | None = None,
+                   client=None) -> tuple[ExperimentConfig, list]:
     """Resolve every ``"auto"`` model of ``config`` and log the candidates; return the resolved config and selections.
 
     With ``parent_id`` the candidates are logged under that run (``train``);
@@ -373,7 +403,7 @@ def select_and_log(config: ExperimentConfig, store, *, dataset=None, truth=None,
 
     def run_all(parent: str) -> None:
         for name in names:
-            selection = select_structure(config, dataset, name, data=data, echo=echo)
+            selection = select_structure(config, dataset, name, data=data, echo=echo, client=client)
             log_selection(store, experiment_id, parent, selection, tags)
             selections.append(selection)
 

@@ -42,6 +42,7 @@ import pandas as pd
 
 from threefold.pipeline.config import ExperimentConfig, parse_config
 from threefold.core.progress import progress
+from threefold.pipeline.cluster import dask_client
 from threefold.evaluation.splits import check_selection
 
 __all__ = ["SweepReport", "trial_overrides", "trial_hash", "run_trial", "sweep"]
@@ -153,17 +154,6 @@ class SweepReport:
     trials: pd.DataFrame
     best_run_id: str | None
     metric: str
-
-
-def _client(workers: int, scheduler: str | None):
-    from dask.distributed import Client, LocalCluster
-
-    if scheduler is not None:
-        return Client(scheduler), None
-    env = {name: "1" for name in ("NUMBA_NUM_THREADS", "OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")}
-    cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                           dashboard_address="127.0.0.1:0", env=env, silence_logs=40)
-    return Client(cluster), cluster
 
 
 def _finished_trials(store, experiment_id: str, hashes: list[str]) -> dict[str, object]:
@@ -282,9 +272,8 @@ def sweep(config: ExperimentConfig, store, *, workers: int = 2, scheduler: str |
 def _run_trials(store, experiment_id, parent_id, todo, metric, workers, scheduler, echo, truth) -> list[dict]:
     from dask.distributed import as_completed
 
-    client, cluster = _client(workers, scheduler)
     rows = []
-    try:
+    with dask_client(workers if scheduler is None else None, scheduler, owner="sweep") as client:
         futures = {client.submit(run_trial, t["config"].sections, t["config"].source, t["model"], truth, pure=False): t
                    for t in todo}
         started = time.perf_counter()
@@ -304,8 +293,4 @@ def _run_trials(store, experiment_id, parent_id, todo, metric, workers, schedule
             echo(f"  trial {trial['index']} {status.lower()} after {time.perf_counter() - started:.0f} s: "
                  f"{trial['overrides']} -> {shown}")
         bar.close()
-    finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
     return rows
