@@ -12,6 +12,10 @@ known users; users second, against the item rows just added, so a new user's
 clicks on new items count. Each step starts again from the trained model, so a
 newcomer's row always uses all of its events before the step.
 
+The fold-in is :func:`threefold.models.refresh.refresh_result`, the code path of
+``threefold refresh``: a model refreshed by the deployed hourly job with the
+same events is the model this protocol ranks with.
+
 Baselines need no fold-in: they are computed as of each request time anyway.
 Models that cannot fold in rank every step with their trained rows (unknown
 users and items score as zero rows), and the report says so.
@@ -24,52 +28,13 @@ from typing import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from threefold.data.build import build_tensor
 from threefold.data.context import ContextSpec
 from threefold.evaluation.rankers import as_ranker
 from threefold.evaluation.queries import QuerySet
 from threefold.evaluation.splits import Stage, _requests, to_seconds
-from threefold.core.vocabulary import Vocabulary
+from threefold.models.refresh import refresh_result
 
-__all__ = ["rolling_schedule", "fold_in_newcomers"]
-
-
-def fold_in_newcomers(
-    result, events: pd.DataFrame, contexts: Sequence[ContextSpec], new_users: np.ndarray,
-    new_items: np.ndarray, build_options: Mapping,
-):
-    """A fitted result with rows for ``new_items`` then ``new_users``, solved from ``events``.
-
-    Parameters
-    ----------
-    result : Scorer
-        A fitted result that supports fold-in (``result.fold_in(tensor, mode) -> rows``).
-    events : DataFrame
-        Events before the step (whole requests).
-    contexts : sequence of ContextSpec
-        The model's context modes.
-    new_users, new_items : ndarray of str
-        Labels outside the model's vocabularies.
-    build_options : mapping
-        Options of :func:`threefold.data.build.build_tensor` used for the training
-        tensor (weighting, negatives); the fold-in must use the same ``w0``.
-
-    Returns
-    -------
-    CPResult or TuckerResult
-    """
-    vocabs = list(result.vocabularies)
-    options = {**build_options, "unseen_ids": "drop", "unseen_context": "unknown"}
-    for mode, labels in ((1, new_items), (0, new_users)):
-        if labels.size == 0:
-            continue
-        vocab = Vocabulary(tuple(sorted(labels)), name=vocabs[mode].name)
-        vocabs[mode] = vocab
-        tensor, _ = build_tensor(events, contexts, vocabularies=vocabs, **options)
-        rows = result.fold_in(tensor, mode)
-        result = result.with_rows(mode, rows, vocab.labels)
-        vocabs = list(result.vocabularies)
-    return result
+__all__ = ["rolling_schedule"]
 
 
 def rolling_schedule(
@@ -142,11 +107,10 @@ def rolling_schedule(
             rows_before = np.isin(user_code[:before], users) | np.isin(item_code[:before], items)
             touched[request[:before][rows_before]] = True
             subset = events.iloc[:before].loc[touched[request[:before]]]
-            refreshed = fold_in_newcomers(result, subset, contexts, user_labels[users].astype(str),
-                                          item_labels[items].astype(str), build_options)
+            refreshed, _, counts = refresh_result(result, subset, contexts, build_options)
             step_rankers[name] = refreshed
-            folded_users += users.size
-            folded_items += items.size
+            folded_users += counts.new[result.mode_names[0]]
+            folded_items += counts.new[result.mode_names[1]]
         schedule.append((rows, step_rankers))
     report = {"steps": len(schedule), "step_seconds": step, "folded_users": folded_users,
               "folded_items": folded_items, "static_models": sorted(n for n, r in rankers.items() if not r.supports_fold_in and not r.learns_from_events)}

@@ -6,7 +6,7 @@ Both :class:`threefold.models.cp.result.CPResult` and
 
 from __future__ import annotations
 
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from typing import Callable, Sequence
 
 import numpy as np
@@ -15,7 +15,7 @@ from threefold.core.params import ParamModel
 from threefold.core.scoring import FittedScorer
 from threefold.core.vocabulary import Vocabulary
 
-__all__ = ["FactorEstimator", "FactorResultMixin", "mode_position"]
+__all__ = ["FactorEstimator", "FactorResultMixin", "RowPosterior", "mode_position", "solve_posterior"]
 
 
 class FactorEstimator(ParamModel, FittedScorer):
@@ -83,6 +83,56 @@ class FactorResultMixin:
     def fit(self) -> float:
         """Final relative fit (weighted for implicit models)."""
         return self.history[-1].fit
+
+
+@dataclass(frozen=True)
+class RowPosterior:
+    """Rows solved with their normal-equation matrices, from :meth:`row_posterior` of a result.
+
+    Attributes
+    ----------
+    rows : ndarray of shape (n, R)
+        In the model's coordinates (ready for ``with_rows``).
+    columns : ndarray of shape (k,), int64
+        The columns the solve owns (all of them in Tucker; the structure's in CP).
+    covariance : ndarray of shape (n, k, k), float64
+        ``M_i⁻¹`` of each row's regularized weighted system ``M_i`` in the same
+        coordinates: the posterior covariance of the row under the Gaussian
+        reading of ridge least squares (unit noise), used for exploration.
+    """
+
+    rows: np.ndarray
+    columns: np.ndarray
+    covariance: np.ndarray
+
+
+def solve_posterior(systems: np.ndarray, rights: np.ndarray, *, reg: float,
+                    prior: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Solve ``M_i x_i = b_i + reg·μ_i`` for every row and invert every ``M_i``.
+
+    With ``prior`` (``μ``) the ridge term ``reg·‖x − μ‖²`` pulls the row toward
+    ``μ`` instead of zero: the normal equations gain ``reg·μ`` on the right side
+    only, ``M`` already holds ``reg·I``.
+
+    Parameters
+    ----------
+    systems : ndarray of shape (n, k, k), float64, symmetric positive definite
+    rights : ndarray of shape (n, k), float64
+    reg : float
+    prior : ndarray of shape (n, k) or None
+
+    Returns
+    -------
+    x : ndarray of shape (n, k), float64
+    covariance : ndarray of shape (n, k, k), float64
+    """
+    if prior is not None:
+        rights = rights + reg * np.asarray(prior, dtype=np.float64)
+    if systems.shape[0] == 0:
+        return np.zeros(rights.shape), np.zeros(systems.shape)
+    covariance = np.linalg.inv(systems)
+    covariance = 0.5 * (covariance + np.swapaxes(covariance, 1, 2))
+    return np.einsum("nij,nj->ni", covariance, rights), covariance
 
 
 def mode_position(mode_names: Sequence[str], mode: int | str) -> int:

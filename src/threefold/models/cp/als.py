@@ -26,7 +26,8 @@ import numpy as np
 from threefold.models.cp import kernels
 from threefold.core.tensor import SparseTensor
 
-__all__ = ["Problem", "make_problem", "update_mode", "loss_and_fit", "BLOCK_CELLS", "BUFFER_CELLS"]
+__all__ = ["Problem", "make_problem", "update_mode", "row_system_terms", "row_systems", "cell_blocks", "loss_and_fit",
+           "BLOCK_CELLS", "BUFFER_CELLS"]
 
 #: A mode whose rows hold at least this many cells on average is updated by
 #: blocked matrix products (:func:`threefold.models.cp.kernels.block_systems`); blocks
@@ -168,7 +169,7 @@ def _mode_cells(
     counts = np.diff(indptr)
     blocks = None
     if counts.size and counts.mean() >= block_cells:
-        blocks = _cell_blocks(indptr, block_cells)
+        blocks = cell_blocks(indptr, block_cells)
     n_chunks = min(counts.size, 16 * numba.get_num_threads())
     cost = np.cumsum(counts + k, dtype=np.float64)
     cuts = np.searchsorted(cost, np.linspace(0.0, cost[-1], n_chunks + 1)[1:-1], side="right")
@@ -176,7 +177,7 @@ def _mode_cells(
     return ModeCells(indptr=indptr, other=other, c=c, wp=wp, chunk_bounds=chunk_bounds, blocks=blocks)
 
 
-def _cell_blocks(indptr: np.ndarray, block_cells: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def cell_blocks(indptr: np.ndarray, block_cells: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Cut every row's cell range into blocks of at most ``block_cells`` cells."""
     counts = np.diff(indptr)
     per_row = -(-counts // block_cells)
@@ -211,6 +212,44 @@ def row_system_terms(problem: Problem, n: int) -> tuple[np.ndarray, np.ndarray, 
     return active, inactive, base, rhs0
 
 
+def row_systems(problem: Problem, n: int, blocks: tuple[np.ndarray, np.ndarray, np.ndarray], n_rows: int,
+                active: np.ndarray, inactive: np.ndarray, base: np.ndarray, rhs0: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """The full row systems ``M_i x_i = b_i`` of mode ``n`` (the rows of ``blocks``), formed explicitly.
+
+    ``M_i = base + Σ_e c_e v_e v_eᵀ`` and ``b_i = rhs0 + Σ_e (wp_e − c_e off_e) v_e``
+    over row ``i``'s stored cells (the normal equations of the implicit loss
+    with every other factor fixed; Hu, Koren & Volinsky, ICDM 2008). Used by
+    the blocked update and by fold-ins that need the matrices themselves
+    (a prior mean, a posterior covariance).
+
+    Parameters
+    ----------
+    problem : Problem
+    n : int
+    blocks : (starts, stops, block_rows)
+        Cell blocks of mode ``n`` (:func:`cell_blocks`), ``block_rows`` counted from 0.
+    n_rows : int
+    active, inactive, base, rhs0
+        From :func:`row_system_terms`.
+
+    Returns
+    -------
+    systems : ndarray of shape (n_rows, k, k), float64
+    rights : ndarray of shape (n_rows, k), float64
+    """
+    starts, stops, block_rows = blocks
+    grams = np.empty((starts.size, active.size, active.size))
+    rhs = np.empty((starts.size, active.size))
+    cells = problem.cells[n]
+    kernels.block_systems(problem.F, cells.other, cells.c, cells.wp, starts, stops, active, inactive, grams, rhs)
+    systems = np.broadcast_to(base, (n_rows,) + base.shape).copy()
+    rights = np.broadcast_to(rhs0, (n_rows, rhs0.size)).copy()
+    np.add.at(systems, block_rows, grams)
+    np.add.at(rights, block_rows, rhs)
+    return systems, rights
+
+
 def update_mode(problem: Problem, n: int, cg_steps: int = 0) -> None:
     """Replace every row of mode ``n`` (in place) by its row-system solution.
 
@@ -234,17 +273,9 @@ def update_mode(problem: Problem, n: int, cg_steps: int = 0) -> None:
             active, inactive, base, rhs0, cells.chunk_bounds, int(cg_steps), BUFFER_CELLS,
         )
     else:
-        starts, stops, block_rows = cells.blocks
-        grams = np.empty((starts.size, active.size, active.size))
-        rhs = np.empty((starts.size, active.size))
-        kernels.block_systems(problem.F, cells.other, cells.c, cells.wp, starts, stops, active, inactive, grams, rhs)
-        n_rows = cells.indptr.size - 1
-        systems = np.broadcast_to(base, (n_rows,) + base.shape).copy()
-        rights = np.broadcast_to(rhs0, (n_rows, rhs0.size)).copy()
-        np.add.at(systems, block_rows, grams)
-        np.add.at(rights, block_rows, rhs)
-        rows = problem.offsets[n] + np.arange(n_rows, dtype=np.int64)
-        kernels.solve_systems(systems, rights, problem.F, rows, active)
+        rows = np.arange(cells.indptr.size - 1, dtype=np.int64)
+        systems, rights = row_systems(problem, n, cells.blocks, rows.size, active, inactive, base, rhs0)
+        kernels.solve_systems(systems, rights, problem.F, problem.offsets[n] + rows, active)
     problem.grams[n] = _gram(problem.factor(n))
 
 

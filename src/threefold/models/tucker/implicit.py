@@ -43,6 +43,7 @@ import scipy.linalg
 from threefold.models.cp import kernels
 from threefold.core.checks import check_choice
 from threefold.core.params import Param, choice_rule, float_rule, int_rule
+from threefold.models.base import RowPosterior, solve_posterior
 from threefold.models.fitloop import SweepRecord, run_sweeps
 from threefold.core.tensor import SparseTensor
 from threefold.models.tucker.result import (
@@ -106,6 +107,57 @@ def _weights64(tensor: SparseTensor) -> tuple[np.ndarray, np.ndarray]:
     return preference.astype(np.float64, copy=False), confidence.astype(np.float64, copy=False)
 
 
+def _base_matrix(core: np.ndarray, factors: Sequence[np.ndarray], mode: int, w0: float, reg: float) -> np.ndarray:
+    """The all-cells part of a mode's row systems, ``w0·G_(n)(⊗_{m≠n} F_mᵀF_m)G_(n)ᵀ + reg·I``."""
+    grams = [None if m == mode else f.T @ f for m, f in enumerate(factors)]
+    base = w0 * _unfold(core, mode) @ _unfold(_multi_mode(core, grams), mode).T
+    return 0.5 * (base + base.T) + reg * np.eye(core.shape[mode])
+
+
+def row_posterior_systems(tensor: SparseTensor, mode: int, core: np.ndarray, factors: Sequence[np.ndarray],
+                          reg: float, *, chunk_cells: int = 4096) -> tuple[np.ndarray, np.ndarray]:
+    """The row systems of :func:`update_rows`, formed explicitly: ``M_i`` and ``b_i`` of every row.
+
+    ``M_i = base + Σ_e (w_e − w0) v_e v_eᵀ`` and ``b_i = Σ_e w_e p_e v_e`` with
+    ``v_e = G ×_{m≠n} F_m[i_m(e)]`` (the same systems the fiber-tree kernel
+    solves), built in chunks of cells so memory stays ``chunk_cells · R_n²``.
+
+    Returns
+    -------
+    systems : ndarray of shape (tensor.shape[mode], R_n, R_n), float64
+    rights : ndarray of shape (tensor.shape[mode], R_n), float64
+    """
+    r = core.shape[mode]
+    unfolded = _unfold(core, mode)
+    others = [m for m in range(tensor.ndim) if m != mode]
+    preference, confidence = _weights64(tensor)
+    systems = np.broadcast_to(_base_matrix(core, factors, mode, tensor.w0, reg), (tensor.shape[mode], r, r)).copy()
+    rights = np.zeros((tensor.shape[mode], r))
+    for start in range(0, tensor.nnz, chunk_cells):
+        stop = min(start + chunk_cells, tensor.nnz)
+        kron = factors[others[0]][tensor.coords[others[0], start:stop]]
+        for m in others[1:]:
+            rows = factors[m][tensor.coords[m, start:stop]]
+            kron = (kron[:, :, None] * rows[:, None, :]).reshape(kron.shape[0], -1)
+        v = kron @ unfolded.T
+        w, p = confidence[start:stop], preference[start:stop]
+        row = tensor.coords[mode, start:stop]
+        np.add.at(systems, row, ((w - tensor.w0)[:, None, None] * v[:, :, None]) * v[:, None, :])
+        np.add.at(rights, row, (w * p)[:, None] * v)
+    return systems, rights
+
+
+def implicit_tucker_row_posterior(result: TuckerResult, tensor: SparseTensor, mode: int | str, *,
+                                  prior: np.ndarray | None = None) -> RowPosterior:
+    """Fold-in rows with their covariances (and an optional prior mean); see ``CPResult.row_posterior``."""
+    n = check_fold_in(result, tensor, mode)
+    factors = [np.asarray(f, dtype=np.float64) for f in result.factors]
+    systems, rights = row_posterior_systems(tensor, n, np.asarray(result.core, dtype=np.float64), factors, result.reg)
+    x, covariance = solve_posterior(systems, rights, reg=result.reg, prior=prior)
+    return RowPosterior(rows=x.astype(result.core.dtype), columns=np.arange(result.core.shape[n], dtype=np.int64),
+                        covariance=covariance)
+
+
 def update_rows(tensor: SparseTensor, mode: int, core: np.ndarray, factors: Sequence[np.ndarray], reg: float,
                 *, trees: dict | None = None) -> np.ndarray:
     """Solve every row of one mode's weighted system, the core and other factors fixed.
@@ -125,9 +177,7 @@ def update_rows(tensor: SparseTensor, mode: int, core: np.ndarray, factors: Sequ
     -------
     ndarray of shape (tensor.shape[mode], R_mode), float64
     """
-    grams = [None if m == mode else f.T @ f for m, f in enumerate(factors)]
-    base = tensor.w0 * _unfold(core, mode) @ _unfold(_multi_mode(core, grams), mode).T
-    base = 0.5 * (base + base.T) + reg * np.eye(core.shape[mode])
+    base = _base_matrix(core, factors, mode, tensor.w0, reg)
     preference, confidence = _weights64(tensor)
     shaped = list(factors)
     shaped[mode] = np.zeros((tensor.shape[mode], core.shape[mode]))
@@ -433,6 +483,10 @@ class ImplicitTuckerResult(TuckerResult):
 
     def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
         return implicit_tucker_fold_in(self, tensor, mode)
+
+    def row_posterior(self, tensor: SparseTensor, mode: int | str, *, prior: np.ndarray | None = None) -> RowPosterior:
+        """Fold-in rows with their covariances; see :func:`implicit_tucker_row_posterior`."""
+        return implicit_tucker_row_posterior(self, tensor, mode, prior=prior)
 
 
 class ImplicitTuckerModel(TuckerEstimator):
