@@ -236,3 +236,84 @@ def test_items_without_events_get_their_metadata_rows_then_folded_rows(site):
                                       metadata_prior=True)
     j = labels.index(unseen[0])
     assert not np.allclose(with_prior.factors[1][j], second.factors[1][j])
+
+
+# ---------------------------------------------------------------------- the command and the store
+@pytest.fixture(scope="module")
+def trained(tmp_path_factory):
+    """The small tracking config on the committed sample log (invented data), trained into a fresh store."""
+    from _tracking import write_config
+
+    from threefold.pipeline.config import load_config
+    from threefold.pipeline.experiment import train
+    from threefold.tracking.store import open_store
+
+    folder = tmp_path_factory.mktemp("refresh")
+    store = open_store(str(folder / "runs"))
+    config = load_config(write_config(folder))
+    report = train(config, store, echo=lambda line: None)
+    run = next(r for r in report.runs if r.name == "cp")
+    return {"folder": folder, "store": store, "run": run, "config": config}
+
+
+def test_refresh_by_run_id_logs_a_child_run_and_scores_metadata_items(trained):
+    from _tracking import SAMPLE
+
+    from threefold.data.events import load_events, load_items
+    from threefold.models.model_io import load_model
+    from threefold.pipeline.refresh import refresh_model
+    from threefold.pipeline.score import score_requests
+
+    store, run, folder = trained["store"], trained["run"], trained["folder"]
+    events = load_events(SAMPLE / "events.parquet", timezone="Europe/Berlin")
+    catalog = load_items(SAMPLE / "items.parquet", timezone="Europe/Berlin")
+    cutoff = int(pd.Timestamp("2026-04-04T12:00:00+00:00").timestamp())  # end of the 12 h test window
+    window = events[events["timestamp"] < cutoff]
+    report = refresh_model(run.run_id[:8], window, folder / "hourly", items=catalog, store=store)
+    assert report.ignored_events == int((window["timestamp"] < cutoff - 12 * 3600).sum()) > 0
+    assert report.counts["new"]["item"] > 0 and report.counts["from_metadata"] > 0
+    child = store.client.get_run(report.run_id)
+    assert child.data.tags["mlflow.parentRunId"] == run.run_id and child.data.tags["threefold.kind"] == "refresh"
+    assert child.data.metrics["new_items"] == report.counts["new"]["item"]
+    result, meta, extra = load_model(folder / "hourly")
+    assert meta["extra"]["refreshes"][0]["counts"] == report.counts and "metadata_map" in meta["extra"]
+    assert extra["published_at"].shape == (result.shape[1],)
+    cold = [label for label, origin in zip(result.vocabularies[1].labels, extra["item_origin"]) if origin == 2]
+    requests = pd.DataFrame({"request_id": ["q1"], "user_id": ["u000001"], "timestamp": [cutoff]})
+    candidates = pd.DataFrame({"request_id": ["q1"] * 3, "item_id": [cold[0], cold[1], result.vocabularies[1].labels[0]]})
+    lists = score_requests(report.model_uri, requests, out=folder / "lists", candidates=candidates, k=3, store=store)
+    status = dict(zip(lists["item_id"], lists["item_status"]))
+    assert status[cold[0]] == "from_metadata" and status[result.vocabularies[1].labels[0]] == "known"
+    # A second refresh with a longer window starts from the refreshed model and keeps its map.
+    again = refresh_model(folder / "hourly", events[events["timestamp"] < cutoff + 3600], folder / "hourly",
+                          items=catalog)
+    assert again.run_id is None and len(load_model(folder / "hourly")[1]["extra"]["refreshes"]) == 2
+
+
+def test_the_rolling_protocol_ranks_with_the_model_refresh_writes(trained):
+    # One code path: the model the evaluation ranks step s with is the refresh of the trained
+    # model with the events before step s (the rows of every label agree).
+    from threefold.evaluation.queries import build_queries
+    from threefold.evaluation.rolling import rolling_schedule
+    from threefold.models.model_io import load_model
+    from threefold.pipeline.refresh import refresh_model
+    from threefold.pipeline.stages import load_dataset, prepare_stage
+    from threefold.tracking.pyfunc import model_folder
+
+    config, store, folder = trained["config"], trained["store"], trained["folder"]
+    dataset = load_dataset(config)
+    data = prepare_stage(config, dataset, "test")
+    base, _, _ = load_model(model_folder(trained["run"].run_id, store=store))
+    queries = build_queries(data.stage.evaluate, data.contexts, candidates="shown", catalog=dataset.items,
+                            item_vocabulary=base.vocabularies[1], history=data.stage.train)
+    schedule, _ = rolling_schedule(data.stage, queries, {"cp": base}, data.contexts, step="1h",
+                                   build_options=data.build_options)
+    rows, rankers = schedule[3]
+    step_start = data.stage.start + (queries.times[rows[0]] - data.stage.start) // 3600 * 3600
+    before = data.stage.evaluate[data.stage.evaluate["timestamp"] < step_start]
+    refreshed = load_model(refresh_model(trained["run"].run_id, before, folder / "step3", store=store).out)[0]
+    rolled = rankers["cp"]
+    for mode in (0, 1):
+        labels = rolled.vocabularies[mode].labels
+        index = [refreshed.vocabularies[mode].index(label) for label in labels]
+        assert_allclose(refreshed.factors[mode][index], rolled.factors[mode], rtol=1e-5, atol=1e-6)

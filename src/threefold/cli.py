@@ -95,6 +95,7 @@ def _parser() -> argparse.ArgumentParser:
     models.add_argument("--json", action="store_true", help="print the tables as JSON")
     _add_tracking_commands(commands)
     _add_score_command(commands)
+    _add_refresh_command(commands)
     _add_explain_command(commands)
     return parser
 
@@ -182,6 +183,51 @@ def _add_score_command(commands) -> None:
     where.add_argument("--scheduler", default=None, metavar="ADDRESS",
                        help="run the parts on an existing Dask cluster, e.g. tcp://10.0.0.5:8786")
     _add_store_flag(score)
+
+
+def _add_refresh_command(commands) -> None:
+    """``refresh`` (docs/refresh.md)."""
+    refresh = commands.add_parser(
+        "refresh", help="fold the events since a model's training cutoff into it: new items and users, no retrain",
+        description="Read the events since MODEL's training cutoff, fold in new items (then users) with every "
+                    "trained factor fixed, give catalog items without events a row from their attributes, and "
+                    "write the result to OUT (a child run of the model's run when MODEL comes from the store). "
+                    "Example: threefold refresh <run id> --events today.parquet --items items.parquet "
+                    "--out models/hourly")
+    refresh.add_argument("model", metavar="MODEL",
+                         help="a model folder, a run id, or an MLflow model URI (as for threefold score)")
+    refresh.add_argument("--events", required=True,
+                         help="event log since the last full fit (older rows are counted and ignored)")
+    refresh.add_argument("--items", default=None,
+                         help="catalog: live times of new items; attribute rows for items without events")
+    refresh.add_argument("--out", required=True, help="the refreshed model folder (a new version if it exists)")
+    refresh.add_argument("--update-known", dest="update_known", action="store_true",
+                         help="also re-solve trained rows with new events, around their trained values")
+    refresh.add_argument("--metadata-prior", dest="metadata_prior", action="store_true",
+                         help="solve items with an attribute row around it instead of around zero")
+    refresh.add_argument("--json", action="store_true", help="print the counts as JSON")
+    _add_store_flag(refresh)
+
+
+def cmd_refresh(args: argparse.Namespace) -> int:
+    import json
+
+    from threefold.pipeline.refresh import refresh_model
+
+    store = None
+    if not Path(args.model).is_dir() or args.store is not None:
+        from threefold.tracking.store import open_store
+
+        store = open_store(args.store)
+    report = refresh_model(args.model, args.events, args.out, items=args.items, update_known=args.update_known,
+                           metadata_prior=args.metadata_prior, store=store)
+    if args.json:
+        print(json.dumps({"out": str(report.out), "counts": report.counts, "ignored_events": report.ignored_events,
+                          "window": list(report.window), "seconds": report.seconds, "run_id": report.run_id,
+                          "model_uri": report.model_uri}, indent=2))
+    else:
+        print(report.to_text())
+    return 0
 
 
 def _add_explain_command(commands) -> None:
@@ -567,7 +613,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
                 "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models, "score": cmd_score,
-                "select": cmd_select, "gain": cmd_gain, "explain": cmd_explain}
+                "select": cmd_select, "gain": cmd_gain, "explain": cmd_explain, "refresh": cmd_refresh}
     try:
         return handlers[args.command](args)
     except (ValueError, KeyError, FileNotFoundError, MemoryError, SchedulerUnreachable) as error:

@@ -29,7 +29,10 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-__all__ = ["AttributeEncoder", "MetadataMap", "fit_encoder", "fit_metadata_map"]
+#: Catalog columns that are live times, never attributes.
+CATALOG_TIME_COLUMNS = ("published_at", "expires_at")
+
+__all__ = ["CATALOG_TIME_COLUMNS", "AttributeEncoder", "MetadataMap", "fit_encoder", "fit_metadata_map"]
 
 
 @dataclass(frozen=True)
@@ -80,14 +83,15 @@ class AttributeEncoder:
 
 def fit_encoder(catalog: pd.DataFrame, columns: list[str] | None = None, *, id_column: str = "item_id",
                 max_levels: int = 200) -> AttributeEncoder:
-    """The encoder of ``columns`` (default: every column but the id and datetime columns).
+    """The encoder of ``columns`` (default: every column but the id, the live times and datetime columns).
 
     String, boolean and categorical columns are categorical; numeric columns are
     numeric. A categorical column with more than ``max_levels`` levels (free
     text, ids) is refused when named, skipped when not.
     """
     named = columns is not None
-    columns = [c for c in catalog.columns if c != id_column] if columns is None else list(columns)
+    skipped = {id_column, *CATALOG_TIME_COLUMNS}
+    columns = [c for c in catalog.columns if c not in skipped] if columns is None else list(columns)
     missing = [c for c in columns if c not in catalog.columns]
     if missing:
         raise ValueError(f"The catalog has no column(s) {missing}; it has {list(catalog.columns)}.")

@@ -142,8 +142,12 @@ def log_pyfunc_model(store, result, config: ExperimentConfig, dataset: Dataset, 
     from threefold.tracking.pyfunc import log_pyfunc
     from threefold.evaluation.queries import catalog_times
 
+    from threefold.pipeline.prepare import options_to_json
+
     published, expires = catalog_times(result.vocabularies[1], dataset.items, data.stage.train)
-    return log_pyfunc(store, result, serving_metadata(config), published=published, expires=expires,
+    serving = {**serving_metadata(config), "build": options_to_json(data.build_options),
+               "trained_until": int(data.stage.start)}
+    return log_pyfunc(store, result, serving, published=published, expires=expires,
                       parameters=config.models[name], training_fingerprint=dataset.fingerprint)
 
 

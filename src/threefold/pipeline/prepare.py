@@ -21,7 +21,7 @@ from threefold.core.feedback import FeedbackWeighting
 from threefold.data.build import build_tensor
 from threefold.data.propensity import PROPENSITY_COLUMNS, PositionPropensity, estimate_position_propensity
 
-__all__ = ["tensor_options", "build_from_log"]
+__all__ = ["tensor_options", "build_from_log", "options_to_json", "options_from_json"]
 
 
 def tensor_options(events: pd.DataFrame, *, weighting: FeedbackWeighting, negatives: str, dtype="float32",
@@ -90,3 +90,25 @@ def build_from_log(events_path: str | os.PathLike, contexts: Sequence, weighting
         options.pop("drop_duplicates")
         tensor, report = build_tensor(events, contexts, **options)
     return tensor, report, propensity, validation, list(caught)
+
+
+def options_to_json(options: dict) -> dict:
+    """The build options of :func:`tensor_options` as JSON (saved with a model, for its refreshes)."""
+    from dataclasses import asdict
+
+    out = {k: v for k, v in options.items() if k not in ("weighting", "dtype", "click_propensity")}
+    out["weighting"] = asdict(options.get("weighting") or FeedbackWeighting())
+    out["dtype"] = np.dtype(options.get("dtype", np.float32)).name
+    if options.get("click_propensity") is not None:
+        out["click_propensity"] = [float(v) for v in options["click_propensity"]]
+    return out
+
+
+def options_from_json(data: dict) -> dict:
+    """The inverse of :func:`options_to_json`."""
+    options = dict(data)
+    options["weighting"] = FeedbackWeighting(**data["weighting"])
+    options["dtype"] = np.dtype(data["dtype"])
+    if "click_propensity" in data:
+        options["click_propensity"] = np.asarray(data["click_propensity"], dtype=np.float64)
+    return options

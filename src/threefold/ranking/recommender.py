@@ -19,8 +19,10 @@ at its ``timestamp`` (published, not expired; every item when there is no time).
 Output, one row per (request, rank): ``request_id``, ``user_id``, ``rank``
 (1 = best), ``item_id``, ``score``, one column per context mode with the level
 used (empty where it fell back), ``user_status`` and ``item_status``
-(``known``, or ``unknown:<rule>`` naming the fallback of
-:class:`~threefold.core.resolve.UnknownPolicy`), ``status``, and with
+(``known``, ``unknown:<rule>`` naming the fallback of
+:class:`~threefold.core.resolve.UnknownPolicy`, or for an item
+``from_metadata``: a row predicted from catalog attributes by
+``threefold refresh --items``, the item having no events yet), ``status``, and with
 ``explain`` the reason columns (:meth:`Recommender.reasons`). Nothing unknown
 fails the batch; ``status`` joins the flags that apply with ``;``:
 
@@ -54,6 +56,7 @@ from threefold.core.resolve import FALLBACK_LABEL, ResolvedScorer
 from threefold.data.context import ColumnContext, CrossedContext, parse_context, spec_name
 from threefold.data.timestamps import check_timezone, parse_timestamps
 from threefold.models.model_io import load_model
+from threefold.models.refresh import FROM_METADATA as _FROM_METADATA
 from threefold.ranking.topk import ALWAYS_LIVE, top_k, top_k_product
 
 __all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "EXPLAIN_CHOICES", "context_specs", "raw_columns", "blank_mask"]
@@ -151,10 +154,14 @@ class Recommender:
     timezone : str or None
         IANA zone that timestamps without a UTC offset are local to (the
         training build's ``timezone``); None refuses such timestamps.
+    item_origin : ndarray of shape (n_items,), uint8, or None
+        Where each item row comes from (:mod:`threefold.models.refresh`): rows
+        predicted from catalog metadata are reported ``from_metadata``.
     """
 
     def __init__(self, result, contexts: Sequence, published: np.ndarray | None = None,
-                 expires: np.ndarray | None = None, timezone: str | None = None):
+                 expires: np.ndarray | None = None, timezone: str | None = None,
+                 item_origin: np.ndarray | None = None):
         names = tuple(spec_name(s) for s in contexts)
         if tuple(result.mode_names[2:]) != names:
             raise ValueError(f"The model's context modes {result.mode_names[2:]} differ from the specifications {names}.")
@@ -176,6 +183,8 @@ class Recommender:
         n_items = len(self.items)
         self.published = np.full(n_items, np.iinfo(np.int64).min) if published is None else np.asarray(published, np.int64)
         self.expires = np.full(n_items, np.iinfo(np.int64).max) if expires is None else np.asarray(expires, np.int64)
+        self.from_metadata = (np.zeros(n_items, bool) if item_origin is None
+                              else np.asarray(item_origin) == _FROM_METADATA)
 
     @classmethod
     def from_folder(cls, path: str | os.PathLike) -> "Recommender":
@@ -186,7 +195,7 @@ class Recommender:
             raise ValueError(f"The model at {path} has no serving metadata (context specifications); "
                              "save it with extra={'serving': ...} as the train pipeline does.")
         return cls(result, context_specs(serving), extra.get("published_at"), extra.get("expires_at"),
-                   timezone=serving.get("timezone"))
+                   timezone=serving.get("timezone"), item_origin=extra.get("item_origin"))
 
     def output_columns(self, explain: str = "none") -> list[str]:
         """The output's columns, in order, for an ``explain`` setting."""
@@ -354,8 +363,9 @@ class Recommender:
             code |= flags[flag].astype(np.int64) << bit
         status = _STATUS_TEXT[code]
         user_status = np.array(["known", f"unknown:{self.policy.user}"], dtype=object)[flags["unknown_user"].astype(np.int8)]
-        item_status = np.array(["known", f"unknown:{self.policy.item}", None], dtype=object)[
-            np.where(empty, 2, unknown_item.astype(np.int8))]
+        metadata_row = self.from_metadata[np.maximum(item_code, 0)] & (item_code >= 0) & ~empty
+        item_status = np.array(["known", f"unknown:{self.policy.item}", None, "from_metadata"], dtype=object)[
+            np.where(empty, 2, np.where(metadata_row, 3, unknown_item.astype(np.int8)))]
         out = {
             "request_id": np.asarray(request_ids, dtype=object)[request],
             "user_id": first["user_id"].astype(object).where(first["user_id"].notna(), None).to_numpy()[request],

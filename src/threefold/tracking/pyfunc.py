@@ -25,6 +25,7 @@ from threefold.data.context import spec_name
 from threefold.ranking.recommender import DEFAULT_K, OUTPUT_COLUMNS, Recommender, context_specs, raw_columns
 
 __all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for", "pyfunc_entry_path", "log_pyfunc",
+           "log_model_folder",
            "model_folder"]
 
 
@@ -53,7 +54,8 @@ def signature_for(serving: dict):
 
 
 def log_pyfunc(store, result, serving: dict, *, published: np.ndarray | None = None, expires: np.ndarray | None = None,
-               parameters: dict | None = None, training_fingerprint: dict | None = None, name: str = "model") -> str:
+               parameters: dict | None = None, training_fingerprint: dict | None = None, name: str = "model",
+               extra: dict | None = None, extra_arrays: dict | None = None) -> str:
     """Save ``result`` as a model folder and log it as a pyfunc model of the active run.
 
     Parameters
@@ -62,32 +64,50 @@ def log_pyfunc(store, result, serving: dict, *, published: np.ndarray | None = N
     result : CPResult or TuckerResult
     serving : dict
         ``contexts``, ``timezone``, ``daypart_starts``, ``daypart_labels``: how
-        requests' context levels are derived (as in the config's ``[build]``).
+        requests' context levels are derived (as in the config's ``[build]``);
+        ``build`` and ``trained_until`` for refreshes.
     published, expires : ndarray of shape (n_items,), int64, or None
         Live interval of each item (see :class:`Recommender`).
     parameters, training_fingerprint : dict or None
         Recorded in the model folder's metadata.
     name : str, default="model"
+    extra, extra_arrays : dict or None
+        More metadata and arrays of the model folder.
 
     Returns
     -------
     str
         The model URI MLflow returns (``models:/...``).
     """
+    import tempfile
+
+    from threefold.models.model_io import save_model
+
+    arrays = {k: v for k, v in (("published_at", published), ("expires_at", expires)) if v is not None}
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp) / "model"
+        save_model(result, folder, parameters=parameters, training_fingerprint=training_fingerprint,
+                   extra={**(extra or {}), "serving": serving, "name": name},
+                   extra_arrays={**arrays, **(extra_arrays or {})})
+        return log_model_folder(store, folder, serving, name=name)
+
+
+def log_model_folder(store, folder: str | os.PathLike, serving: dict, *, name: str = "model") -> str:
+    """Log an existing model folder as a pyfunc model of the active run; returns the model URI."""
     import importlib.metadata
+    import shutil
     import tempfile
     import warnings
 
     from threefold import __version__
-    from threefold.models.model_io import save_model
 
-    extra_arrays = {k: v for k, v in (("published_at", published), ("expires_at", expires)) if v is not None}
     requirements = [f"threefold=={__version__}"] + [f"{lib}=={importlib.metadata.version(lib)}" for lib in
                                                     ("mlflow", "numpy", "pandas", "scipy", "numba", "pyarrow")]
     with tempfile.TemporaryDirectory() as tmp:
-        folder = Path(tmp) / "model"
-        save_model(result, folder, parameters=parameters, training_fingerprint=training_fingerprint,
-                   extra={"serving": serving, "name": name}, extra_arrays=extra_arrays)
+        folder = Path(folder)
+        if folder.name != "model":  # MLflow stores a folder artifact under its own name: artifacts/model
+            shutil.copytree(folder, Path(tmp) / "model")
+            folder = Path(tmp) / "model"
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # MLflow's advice on type hints and input examples
             info = store.call(mlflow.pyfunc.log_model, name=name, python_model=str(pyfunc_entry_path()),
