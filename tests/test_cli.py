@@ -54,7 +54,7 @@ def test_bad_parameter_values_are_refused_with_the_parameter_name(tmp_path, flag
 def test_demo_runs_end_to_end(tmp_path):
     result = run("demo", "--out", str(tmp_path / "demo"), "--events", "20000")
     assert result.returncode == 0, result.stderr[-2000:]
-    for step in ("== 1.", "== 2.", "== 3.", "== 4.", "== 5.", "== 6."):
+    for step in ("== 1.", "== 2.", "== 3.", "== 4.", "== 5.", "== 6.", "== 7."):
         assert step in result.stdout
     assert "models:/" in result.stdout  # logged models any MLflow client can load
     assert "structure selection for [models.cp_context]" in result.stdout and "chosen: " in result.stdout
@@ -62,6 +62,9 @@ def test_demo_runs_end_to_end(tmp_path):
     assert {"rank", "item_id", "score", "reason_1", "reason_1_share", "status"} <= set(lists.columns)
     assert (tmp_path / "demo" / "lists" / "_manifest.json").is_file()
     assert "paired with the baseline" in result.stdout and " - mf: ndcg_true_at_10 " in result.stdout
+    refreshed = pd.read_parquet(tmp_path / "demo" / "lists-refreshed")  # the same requests, refreshed model
+    assert set(refreshed["request_id"]) == set(lists["request_id"])
+    assert "items known only from the catalog" in result.stdout and "refreshed model written to" in result.stdout
     report = tmp_path / "demo" / "report"
     assert (report / "report.html").is_file() and (report / "report.json").is_file()
     logged = list((tmp_path / "demo" / "runs").rglob("explain/report.html"))  # artifacts of the model's run

@@ -178,6 +178,11 @@ def _add_score_command(commands) -> None:
     score.add_argument("--format", choices=("parquet", "csv"), default="parquet", help="part files (default parquet)")
     score.add_argument("--chunk-rows", dest="chunk_rows", type=int, default=DEFAULT_CHUNK_ROWS,
                        help=f"requests per part (default {DEFAULT_CHUNK_ROWS:,})")
+    score.add_argument("--explore", default="off", metavar="BETA|thompson",
+                       help="exploration of items a refreshed model barely knows: an upper-confidence bonus "
+                            "BETA*sqrt(q'Σq), or 'thompson' for a posterior sample (default off)")
+    score.add_argument("--explore-slots", dest="explore_slots", type=int, default=1,
+                       help="most items per list that exploration may bring in (default 1)")
     where = score.add_mutually_exclusive_group()
     where.add_argument("--workers", type=int, default=None, help="run the parts on a local Dask cluster of N processes")
     where.add_argument("--scheduler", default=None, metavar="ADDRESS",
@@ -279,7 +284,8 @@ def cmd_score(args: argparse.Namespace) -> int:
 
     manifest = score_requests(args.model, args.requests, out=args.out, candidates=args.candidates, k=args.k,
                               explain=args.explain, format=args.format, chunk_rows=args.chunk_rows,
-                              workers=args.workers, scheduler=args.scheduler, store=args.store, load=False)
+                              workers=args.workers, scheduler=args.scheduler, store=args.store, load=False,
+                              explore=args.explore, explore_slots=args.explore_slots)
     print(f"{manifest['requests']:,} requests, {manifest['rows']:,} rows in {len(manifest['parts'])} part(s): "
           f"{Path(args.out) / '_manifest.json'}")
     return 0
@@ -511,17 +517,47 @@ def cmd_demo(args: argparse.Namespace) -> int:
     print(f"   list the runs: threefold runs --store {out / 'runs'}")
     run = _demo_score(out, log_dir, report, store)
     if run is not None:
+        _demo_refresh(out, log_dir, run, store)
         _demo_explain(out, log_dir, run, store, out / "tensor")
     return 0
 
 
+def _demo_refresh(out: Path, log_dir: Path, run, store) -> None:
+    """Step 6: the hourly refresh: fold the events since the training cutoff into the model, score again."""
+    import pandas as pd
+
+    from threefold.pipeline.refresh import refresh_model
+    from threefold.pipeline.score import score_requests
+
+    events = pd.read_parquet(log_dir / "events.parquet")
+    end = int(events["timestamp"].max())
+    since = events[events["timestamp"] < end - 86_400]  # every event up to the last day: the day before it is new
+    since_path = out / "events-until-last-day.parquet"
+    since.to_parquet(since_path, index=False)
+    print(f"== 6. refresh {run.name!r} with the events since its training cutoff (up to the last day), "
+          "catalog items without events from their attributes")
+    print(f"   threefold refresh {run.run_id} --events {since_path} --items {log_dir / 'items.parquet'} "
+          f"--out {out / 'refreshed'} --store {out / 'runs'}")
+    report = refresh_model(run.run_id, since_path, out / "refreshed", items=log_dir / "items.parquet", store=store)
+    print("   " + report.to_text().replace("\n", "\n   "))
+    lists = score_requests(out / "refreshed", out / "requests.parquet", out=out / "lists-refreshed", k=10,
+                           show_progress=False)
+    stale = pd.read_parquet(out / "lists")
+    fresh_items = set(lists["item_id"].dropna()) - set(stale["item_id"].dropna())
+    share = lists["item_id"].isin(fresh_items).mean()
+    cold = (lists["item_status"] == "from_metadata").mean()
+    print(f"   the same requests scored with it: {100 * share:.1f}% of the slots go to items the stale model "
+          f"never listed, {100 * cold:.1f}% to items known only from the catalog (item_status from_metadata); "
+          f"lists in {out / 'lists-refreshed'} (docs/refresh.md)")
+
+
 def _demo_explain(out: Path, log_dir: Path, run, store, tensor_folder: Path) -> None:
-    """Step 6: the factor report of the scored model, for the editors."""
+    """Step 7: the factor report of the scored model, for the editors."""
     from threefold.pipeline.explain import explain_model
 
     report_dir = out / "report"
     compare = [("daypart=morning,device=mobile", "daypart=evening,device=tablet")]
-    print(f"== 6. explain {run.name!r}: what each factor means and what changes from a mobile morning to a tablet "
+    print(f"== 7. explain {run.name!r}: what each factor means and what changes from a mobile morning to a tablet "
           "evening")
     print(f"   threefold explain --model {run.run_id} --items {log_dir / 'items.parquet'} --tensor {tensor_folder} "
           f"--seeds 1 --compare {compare[0][0]} {compare[0][1]} --out {report_dir} --store {out / 'runs'}")

@@ -50,7 +50,8 @@ def _model_folder(model, out: Path, store) -> Path:
 def score_requests(model, requests, *, out: str | os.PathLike, candidates=None, k: int = DEFAULT_K,
                    explain: str = "none", format: str = "parquet", chunk_rows: int = DEFAULT_CHUNK_ROWS,
                    workers: int | None = None, scheduler: str | None = None, store=None,
-                   load: bool = True, show_progress: bool = True) -> pd.DataFrame | dict:
+                   load: bool = True, show_progress: bool = True, explore=None,
+                   explore_slots: int = 1) -> pd.DataFrame | dict:
     """Rank the items of every request with a saved model; write the parts and the manifest to ``out``.
 
     Parameters
@@ -79,6 +80,12 @@ def score_requests(model, requests, *, out: str | os.PathLike, candidates=None, 
     load : bool, default=True
         Return the output as a DataFrame; False returns the manifest (for outputs too large to hold).
     show_progress : bool, default=True
+    explore : None, "off", "thompson" or float BETA, default None
+        Exploration of the items a refreshed model barely knows: an upper-confidence
+        bonus BETA·sqrt(qᵀΣq) (LinUCB) or a posterior sample (Thompson); off by default.
+        The output gains an ``explored`` column (see docs/scoring.md).
+    explore_slots : int, default=1
+        Most items per list that exploration may bring in.
 
     Returns
     -------
@@ -98,7 +105,8 @@ def score_requests(model, requests, *, out: str | os.PathLike, candidates=None, 
     with dask_client(workers, scheduler, owner="score") if on_dask else nullcontext() as client:
         with progress(None, "stage", "requests", enabled=show_progress) as bar:
             todo = prepare_job(out, folder, requests, candidates=candidates, k=k, explain=explain, format=format,
-                               chunk_rows=chunk_rows, report=bar.update)
+                               chunk_rows=chunk_rows, report=bar.update, explore=explore,
+                               explore_slots=explore_slots)
         if todo:
             counts = job_parts(out)
             with progress(sum(counts), "score", "requests", enabled=show_progress) as bar:

@@ -57,6 +57,7 @@ from threefold.core.bundle import bundle_fingerprint, sha256_file
 from threefold.core.checks import check_choice, check_int
 from threefold.core.exceptions import InputRowsError
 from threefold.data.events import open_source
+from threefold.ranking.explore import parse_explore
 from threefold.ranking.recommender import DEFAULT_K, EXPLAIN_CHOICES, Recommender, blank_mask
 
 __all__ = ["JobArguments", "JobMismatch", "local_model_folder", "prepare_job", "score_part", "finish_job", "read_output", "job_parts",
@@ -98,6 +99,9 @@ class JobArguments:
     explain : {"none", "top3", "all"}
     format : {"parquet", "csv"}
     chunk_rows : int
+    explore : str
+        ``"off"``, ``"thompson"`` or BETA as text (:mod:`threefold.ranking.explore`).
+    explore_slots : int
     """
 
     model: str
@@ -110,8 +114,11 @@ class JobArguments:
     explain: str
     format: str
     chunk_rows: int
+    explore: str = "off"
+    explore_slots: int = 1
 
-    _COMPARED = ("model", "requests_sha256", "candidates_sha256", "k", "explain", "format", "chunk_rows")
+    _COMPARED = ("model", "requests_sha256", "candidates_sha256", "k", "explain", "format", "chunk_rows", "explore",
+                 "explore_slots")
 
     def differences(self, other: "JobArguments") -> list[str]:
         """``"k: 10 -> 20"`` for every compared field that differs."""
@@ -265,7 +272,8 @@ def _write_json(data: dict, path: Path) -> None:
 # ---------------------------------------------------------------------------- the job
 def prepare_job(out: str | os.PathLike, model_folder: str | os.PathLike, requests, *, candidates=None,
                 k: int = DEFAULT_K, explain: str = "none", format: str = "parquet",
-                chunk_rows: int = DEFAULT_CHUNK_ROWS, report: Callable[[int], None] | None = None) -> list[int]:
+                chunk_rows: int = DEFAULT_CHUNK_ROWS, report: Callable[[int], None] | None = None,
+                explore=None, explore_slots: int = 1) -> list[int]:
     """Create or reopen a job folder and stage its inputs; return the parts still to compute.
 
     Parameters
@@ -287,6 +295,10 @@ def prepare_job(out: str | os.PathLike, model_folder: str | os.PathLike, request
         Requests per part.
     report : callable(int) or None
         Called with the number of requests staged, chunk by chunk (progress).
+    explore : None, "off", "thompson" or float, default None
+        Exploration of items with a posterior covariance (refreshed models); Thompson
+        samples are seeded by part, so a rerun or a Dask run gives the same lists.
+    explore_slots : int, default=1
 
     Returns
     -------
@@ -304,6 +316,8 @@ def prepare_job(out: str | os.PathLike, model_folder: str | os.PathLike, request
     check_choice("explain", explain, EXPLAIN_CHOICES, owner="score")
     check_choice("format", format, FORMATS, owner="score")
     chunk_rows = check_int("chunk_rows", chunk_rows, low=1, owner="score")
+    explore = parse_explore(explore)
+    explore_slots = check_int("explore_slots", explore_slots, low=0, owner="score")
     out = Path(out)
     report = report or (lambda n: None)
     requests_name, requests_sha = _content_sha256(requests)
@@ -311,7 +325,8 @@ def prepare_job(out: str | os.PathLike, model_folder: str | os.PathLike, request
     arguments = JobArguments(model=bundle_fingerprint(model_folder), model_path=str(Path(model_folder).resolve()),
                              requests=requests_name, requests_sha256=requests_sha, candidates=candidates_name,
                              candidates_sha256=candidates_sha, k=k, explain=explain, format=format,
-                             chunk_rows=chunk_rows)
+                             chunk_rows=chunk_rows, explore="off" if explore is None else str(explore),
+                             explore_slots=explore_slots)
     _open_folder(out, arguments)
     staging = out / STAGING
     if (out / MANIFEST_FILE).is_file():
@@ -406,12 +421,14 @@ def _part_input(out: Path, index: int) -> tuple[pd.DataFrame, bool]:
     return pd.concat([base, joined[list(base.columns) + ["item_id"]]], ignore_index=True), True
 
 
-def _schema(recommender: Recommender, explain: str) -> pa.Schema:
+def _schema(recommender: Recommender, explain: str, explore: str = "off") -> pa.Schema:
     """The output schema: one type per column whatever a part holds (all-empty columns included)."""
     fields = []
-    for name in recommender.output_columns(explain):
+    for name in recommender.output_columns(explain, explore):
         if name == "rank":
             kind = pa.int64()
+        elif name == "explored":
+            kind = pa.bool_()
         elif name == "score" or name.endswith(("_term", "_share")):
             kind = pa.float64()
         else:
@@ -434,8 +451,11 @@ def score_part(out: str | os.PathLike, index: int) -> int:
         return counts[index]
     recommender = _recommender(arguments)
     frame, with_candidates = _part_input(out, index)
-    ranked = recommender.recommend(frame, k=arguments.k, explain=arguments.explain, catalog=not with_candidates)
-    table = pa.Table.from_pandas(ranked, schema=_schema(recommender, arguments.explain), preserve_index=False)
+    ranked = recommender.recommend(frame, k=arguments.k, explain=arguments.explain, catalog=not with_candidates,
+                                   explore=arguments.explore, explore_slots=arguments.explore_slots,
+                                   explore_seed=[0, index])
+    table = pa.Table.from_pandas(ranked, schema=_schema(recommender, arguments.explain, arguments.explore),
+                                 preserve_index=False)
     temporary = path.with_name(f".{path.name}.tmp")
     if arguments.format == "parquet":
         pq.write_table(table, temporary)

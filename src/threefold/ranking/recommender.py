@@ -57,6 +57,7 @@ from threefold.data.context import ColumnContext, CrossedContext, parse_context,
 from threefold.data.timestamps import check_timezone, parse_timestamps
 from threefold.models.model_io import load_model
 from threefold.models.refresh import FROM_METADATA as _FROM_METADATA
+from threefold.ranking.explore import exploration_values, merge_explored, parse_explore
 from threefold.ranking.topk import ALWAYS_LIVE, top_k, top_k_product
 
 __all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "EXPLAIN_CHOICES", "context_specs", "raw_columns", "blank_mask"]
@@ -105,6 +106,8 @@ def _dtype_of(column: str) -> str:
     """The pandas dtype of an output column (for an empty output with the full schema)."""
     if column == "rank":
         return "int64"
+    if column == "explored":
+        return "bool"
     if column == "score" or column.endswith(("_term", "_share")):
         return "float64"
     return "object"
@@ -157,11 +160,14 @@ class Recommender:
     item_origin : ndarray of shape (n_items,), uint8, or None
         Where each item row comes from (:mod:`threefold.models.refresh`): rows
         predicted from catalog metadata are reported ``from_metadata``.
+    item_covariance : (rows, covariance, columns) or None
+        Posterior covariances of the folded-in and predicted item rows (from
+        refresh), for exploration (:mod:`threefold.ranking.explore`).
     """
 
     def __init__(self, result, contexts: Sequence, published: np.ndarray | None = None,
                  expires: np.ndarray | None = None, timezone: str | None = None,
-                 item_origin: np.ndarray | None = None):
+                 item_origin: np.ndarray | None = None, item_covariance: tuple | None = None):
         names = tuple(spec_name(s) for s in contexts)
         if tuple(result.mode_names[2:]) != names:
             raise ValueError(f"The model's context modes {result.mode_names[2:]} differ from the specifications {names}.")
@@ -185,6 +191,13 @@ class Recommender:
         self.expires = np.full(n_items, np.iinfo(np.int64).max) if expires is None else np.asarray(expires, np.int64)
         self.from_metadata = (np.zeros(n_items, bool) if item_origin is None
                               else np.asarray(item_origin) == _FROM_METADATA)
+        rows, cov, columns = item_covariance if item_covariance is not None else (np.zeros(0, np.int64), None, None)
+        self.explorable = np.asarray(rows, np.int64)
+        if self.explorable.size:  # Σ = L Lᵀ once per model; a tiny ridge keeps float32 round-off PSD
+            cov = np.asarray(cov, np.float64)
+            scale = np.maximum(np.abs(np.diagonal(cov, axis1=1, axis2=2)).max(axis=1), 1e-300)[:, None, None]
+            self.chol = np.linalg.cholesky(cov + 1e-9 * scale * np.eye(cov.shape[1]))
+            self.chol_columns = np.asarray(columns, np.int64)
 
     @classmethod
     def from_folder(cls, path: str | os.PathLike) -> "Recommender":
@@ -195,12 +208,16 @@ class Recommender:
             raise ValueError(f"The model at {path} has no serving metadata (context specifications); "
                              "save it with extra={'serving': ...} as the train pipeline does.")
         return cls(result, context_specs(serving), extra.get("published_at"), extra.get("expires_at"),
-                   timezone=serving.get("timezone"), item_origin=extra.get("item_origin"))
+                   timezone=serving.get("timezone"), item_origin=extra.get("item_origin"),
+                   item_covariance=(extra["item_covariance_rows"], extra["item_covariance"],
+                                    extra["item_covariance_columns"]) if "item_covariance_rows" in extra else None)
 
-    def output_columns(self, explain: str = "none") -> list[str]:
-        """The output's columns, in order, for an ``explain`` setting."""
+    def output_columns(self, explain: str = "none", explore=None) -> list[str]:
+        """The output's columns, in order, for an ``explain`` setting (``explored`` when exploring)."""
         check_choice("explain", explain, EXPLAIN_CHOICES, owner="predict")
         columns = list(OUTPUT_COLUMNS[:5]) + list(self.context_names) + list(OUTPUT_COLUMNS[5:])
+        if parse_explore(explore) is not None:
+            columns.append("explored")
         count = 0 if explain == "none" else len(self.reason_labels)
         if explain == "top3":
             count = min(count, _TOP3)
@@ -274,7 +291,7 @@ class Recommender:
 
     # ------------------------------------------------------------------ ranking
     def recommend(self, requests: pd.DataFrame, k: int = DEFAULT_K, explain: str = "none",
-                  catalog: bool = True) -> pd.DataFrame:
+                  catalog: bool = True, explore=None, explore_slots: int = 1, explore_seed: int = 0) -> pd.DataFrame:
         """Top ``k`` items of every request; see the module docstring.
 
         Parameters
@@ -289,6 +306,13 @@ class Recommender:
         catalog : bool, default=True
             Whether a request without candidate rows ranks the live catalog;
             False gives it a ``no_candidates`` row (batch jobs with a candidates table).
+        explore : None, "off", "thompson" or float BETA
+            Exploration of the items with a posterior covariance
+            (:mod:`threefold.ranking.explore`); off by default.
+        explore_slots : int, default=1
+            Most items per list that exploration may bring in.
+        explore_seed : int, default=0
+            Seed of Thompson sampling (the same seed and batch give the same lists).
 
         Returns
         -------
@@ -302,7 +326,9 @@ class Recommender:
             of a bad ``timestamp`` or ``k``.
         """
         k = check_int("k", k, low=1, owner="predict")
-        columns = self.output_columns(explain)
+        explore = parse_explore(explore)
+        explore_slots = check_int("explore_slots", explore_slots, low=0, owner="predict")
+        columns = self.output_columns(explain, explore)
         missing = [c for c in ("request_id", "user_id") if c not in requests.columns]
         if missing:
             raise ValueError(f"The requests need the column(s) {missing}; they have {list(requests.columns)}.")
@@ -343,8 +369,19 @@ class Recommender:
         ranked = [np.concatenate(v) for v in zip(*parts)]
         order = np.lexsort((ranked[1], ranked[0]))
         request, rank, item_code, item_label, score = (v[order] for v in ranked)
+        explored = None
+        if explore is not None:
+            candidates = None
+            if item_ids is not None:
+                rows = np.flatnonzero(item_ids.notna().to_numpy(dtype=bool))
+                candidates = (request_codes[rows], self.resolved.item_codes(item_ids.to_numpy(dtype=object)[rows]))
+            request, rank, item_code, item_label, score, explored = self._explore(
+                (request, rank, item_code, item_label, score), queries, times, lengths, with_candidates, candidates,
+                explore, explore_slots, np.random.default_rng(explore_seed))
         out = self._frame(first, request_ids, labels, context_rows, request, rank, item_code, item_label, score,
                           unknown_user, unknown_context)
+        if explored is not None:
+            out["explored"] = explored
         if explain != "none":
             reasons = self.reasons(user_rows[request], context_rows[request], item_code,
                                    top=_TOP3 if explain == "top3" else None, queries=queries, query_of=request)
@@ -461,6 +498,51 @@ class Recommender:
         r, c = np.nonzero((best >= 0) & (np.arange(best.shape[1])[None, :] < lengths[requests][:, None]))
         chosen = pair_index[r, best[r, c]]
         return requests[r], c + 1, codes[chosen], labels[chosen], scores[chosen]
+
+    def _explore(self, ranked, queries, times, lengths, with_candidates, candidates, explore, slots, rng):
+        """The ranked rows with exploration applied (:mod:`threefold.ranking.explore`), plus the ``explored`` flags."""
+        request, rank, item_code, item_label, score = ranked
+        m = self.explorable.size
+        if m == 0 or slots == 0:
+            return (*ranked, np.zeros(request.size, bool))
+        n = len(lengths)
+        width = int(lengths.max())
+        listed = rank > 0
+        plain_items = np.full((n, width), -2, np.int64)
+        plain_scores = np.full((n, width), -np.inf)
+        entry_row = np.full((n, width), -1, np.int64)
+        at = (request[listed], rank[listed] - 1)
+        plain_items[at], plain_scores[at], entry_row[at] = item_code[listed], score[listed], np.flatnonzero(listed)
+        codes = self.explorable
+        allowed = np.zeros((n, m), bool)
+        catalog_rows = np.flatnonzero(~with_candidates)
+        t = times[catalog_rows][:, None]
+        allowed[catalog_rows] = (t == ALWAYS_LIVE) | ((self.published[codes][None, :] <= t) & (t < self.expires[codes][None, :]))
+        if candidates is not None:
+            position = np.full(len(self.item_labels), -1)
+            position[codes] = np.arange(m)
+            cand_request, cand_code = candidates
+            j = np.where(cand_code >= 0, position[np.maximum(cand_code, 0)], -1)
+            allowed[cand_request[j >= 0], j[j >= 0]] = True
+        allowed[~np.isin(np.arange(n), request[listed])] = False  # no_candidates requests stay as they are
+        rows = self.item_factors[codes]
+        bias = None if self.item_bias is None else self.item_bias[codes]
+        values = exploration_values(queries, rows, bias, self.chol, self.chol_columns, explore, rng)
+        entry, explored_code = merge_explored(plain_items, plain_scores, codes, values, allowed, lengths, slots)
+        r, c = np.nonzero((entry >= 0) | (explored_code >= 0))
+        from_plain = entry[r, c] >= 0
+        source = entry_row[r, np.maximum(entry[r, c], 0)]
+        new_code = np.where(from_plain, item_code[np.maximum(source, 0)], explored_code[r, c])
+        plain_score = np.einsum("ij,ij->i", np.asarray(queries[r], np.float64), np.asarray(self.item_factors[
+            np.maximum(new_code, 0)], np.float64)) + (0.0 if self.item_bias is None else self.item_bias[np.maximum(new_code, 0)])
+        new_score = np.where(from_plain, score[np.maximum(source, 0)], plain_score)
+        new_label = np.where(from_plain, item_label[np.maximum(source, 0)], self.item_labels[np.maximum(new_code, 0)])
+        empty = ~listed
+        out = (np.concatenate([r, request[empty]]), np.concatenate([c + 1, rank[empty]]),
+               np.concatenate([new_code, item_code[empty]]), np.concatenate([new_label, item_label[empty]]),
+               np.concatenate([new_score, score[empty]]), np.concatenate([~from_plain, np.zeros(empty.sum(), bool)]))
+        order = np.lexsort((out[1], out[0]))
+        return tuple(v[order] for v in out)
 
     @staticmethod
     def _empty(requests):
