@@ -354,3 +354,30 @@ def test_exploration_gives_new_items_at_most_the_capped_slots(trained):
                            explore="thompson", explore_slots=1, show_progress=False)
     assert thompson["explored"].sum() > 0 and thompson.groupby("request_id")["explored"].sum().max() <= 1
     pd.testing.assert_frame_equal(thompson, again)  # seeded by part: a rerun gives the same lists
+
+
+def test_train_final_logs_deployable_models_fitted_on_every_event(tmp_path):
+    from _tracking import write_config
+
+    from threefold.models.model_io import load_model
+    from threefold.pipeline.config import load_config
+    from threefold.pipeline.experiment import summary_text, train
+    from threefold.pipeline.stages import load_dataset
+    from threefold.tracking.pyfunc import model_folder
+    from threefold.tracking.store import open_store
+
+    store = open_store(str(tmp_path / "runs"))
+    config = load_config(write_config(tmp_path))
+    report = train(config, store, echo=lambda line: None, final=True)
+    evaluated = next(r for r in report.runs if r.name == "cp")
+    (final,) = report.finals  # popularity has no factor model to refit
+    run = store.client.get_run(final.run_id)
+    assert run.data.tags["threefold.kind"] == "final" and run.data.tags["threefold.evaluated_run"] == evaluated.run_id
+    assert run.data.tags["mlflow.parentRunId"] == report.parent_run_id
+    events = load_dataset(config).events
+    result, meta, _ = load_model(model_folder(final.run_id, store=store))
+    assert meta["extra"]["serving"]["trained_until"] == int(events["timestamp"].max()) + 1
+    assert set(result.vocabularies[1].labels) == set(events["item_id"].astype(str))  # test-window items too
+    base = load_model(model_folder(evaluated.run_id, store=store))[0]
+    assert len(result.vocabularies[1]) > len(base.vocabularies[1])
+    assert "deployable models, refitted on every event" in summary_text(report)

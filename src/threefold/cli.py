@@ -117,6 +117,10 @@ def _add_tracking_commands(commands) -> None:
         sub.add_argument("--set", dest="overrides", action="append", default=[], metavar="SECTION.KEY=VALUE",
                          help="override a config value, e.g. --set models.cp.rank=8 (repeatable)")
         _add_store_flag(sub)
+        if name == "train":
+            sub.add_argument("--final", action="store_true",
+                             help="after the evaluation, refit the factor models on every event and log them as "
+                                  "the deployable models (child runs 'NAME final'; refresh them hourly)")
         if name == "gain":
             sub.add_argument("--model", required=True, metavar="NAME", help="the [models.NAME] to fit and report on")
             sub.add_argument("--stage", choices=("validation", "test"), default=None,
@@ -298,7 +302,7 @@ def cmd_train(args: argparse.Namespace) -> int:
     from threefold.tracking.store import open_store
 
     config = load_config(args.config, parse_overrides(args.overrides))
-    print(summary_text(train(config, open_store(args.store), truth=site_truth)))
+    print(summary_text(train(config, open_store(args.store), truth=site_truth, final=args.final)))
     return 0
 
 

@@ -135,6 +135,7 @@ class TrainReport:
     table: pd.DataFrame
     key_metrics: list
     reaped: list
+    finals: list = None  # with final=True: one ModelRun per factor model refitted on every event
 
 
 def log_pyfunc_model(store, result, config: ExperimentConfig, dataset: Dataset, data: StageData, name: str) -> str:
@@ -219,7 +220,7 @@ def _default_sweeps(method: str) -> int | None:
 
 
 def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = print,
-          truth: TruthSource | None = None) -> TrainReport:
+          truth: TruthSource | None = None, final: bool = False) -> TrainReport:
     """Fit, evaluate and log every model of ``config``; see the module docstring.
 
     Parameters
@@ -228,6 +229,13 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
     store : threefold.tracking.store.RunStore
     echo : callable, default=print
         Receives progress lines.
+    final : bool, default=False
+        After the evaluation, refit every factor model (with the structure
+        selection chose) on every event of the log and log it as the deployable
+        model: a child run ``NAME final`` tagged ``threefold.kind = final`` and
+        ``threefold.evaluated_run`` (the run whose figures describe it), its
+        training cutoff the end of the log, so ``threefold refresh`` folds in
+        whatever comes next.
 
     Returns
     -------
@@ -290,7 +298,52 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
             echo(f"  {name}: " + "  ".join(_interval_text(metrics, m) for m in keys) + f"  ({outcome.seconds:.1f} s)")
         combined = pd.concat(tables, ignore_index=True)
         store.call(store.client.log_text, parent_id, combined.to_csv(index=False), "evaluation/metrics.csv")
-    return TrainReport(parent_run_id=parent_id, runs=runs, table=combined, key_metrics=keys, reaped=reaped)
+        finals = _fit_final(config, store, dataset, data, runs, experiment_id, tags, echo) if final else None
+    return TrainReport(parent_run_id=parent_id, runs=runs, table=combined, key_metrics=keys, reaped=reaped,
+                       finals=finals)
+
+
+def _fit_final(config, store, dataset, data, runs, experiment_id, tags, echo) -> list:
+    """Refit the factor models on every event and log them as deployable child runs (see :func:`train`)."""
+    from threefold.data.build import build_tensor
+    from threefold.evaluation.queries import catalog_times
+    from threefold.pipeline.prepare import options_to_json
+    from threefold.pipeline.stages import build_options
+    from threefold.tracking.pyfunc import log_pyfunc
+    from threefold.tracking.runlog import log_metrics, log_params
+
+    events = dataset.events
+    options = build_options(config, events)
+    tensor, _ = build_tensor(events, data.contexts, **options)
+    end = int(events["timestamp"].max()) + 1
+    echo(f"final fit on every event ({len(events):,} rows, up to the end of the log): tensor {tensor}")
+    serving = {**serving_metadata(config), "build": options_to_json(options), "trained_until": end}
+    finals = []
+    for run in runs:
+        if run.model_uri is None:
+            continue
+        spec = config.models[run.name]
+        with store.run(experiment_id, run_name=f"{run.name} final", nested=True,
+                       tags={**tags, "threefold.kind": "final", "threefold.model": run.name,
+                             "threefold.evaluated_run": run.run_id}) as run_id:
+            log_params(store, run_id, model_params(config, run.name))
+            started = time.perf_counter()
+            sweeps = spec.get("max_sweeps", _default_sweeps(spec["method"]))
+            with progress(sweeps, f"final fit {run.name}", "sweeps") as bar:
+                estimator = make_estimator(spec, lambda record, model=None: bar.update(1))
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore", category=UserWarning)
+                    estimator.fit(tensor)
+            seconds = time.perf_counter() - started
+            result = estimator.result_
+            published, expires = catalog_times(result.vocabularies[1], dataset.items, events)
+            uri = log_pyfunc(store, result, serving, published=published, expires=expires, parameters=spec,
+                             training_fingerprint=dataset.fingerprint)
+            store.call(store.client.set_tag, run_id, "threefold.model_uri", uri)
+            log_metrics(store, run_id, {"wall_seconds": seconds, "tensor_cells": tensor.nnz})
+        finals.append(ModelRun(name=run.name, run_id=run_id, metrics={}, model_uri=uri, seconds=seconds))
+        echo(f"  {run.name} final: {uri} ({seconds:.1f} s; evaluated as run {run.run_id})")
+    return finals
 
 
 def _interval_text(metrics: dict, name: str) -> str:
@@ -311,6 +364,9 @@ def summary_text(report: TrainReport) -> str:
     lines += ["  ".join(str(c).ljust(w) for c, w in zip(r, widths)) for r in rows]
     lines.append(f"parent run {report.parent_run_id}; intervals are 95% percentile bootstrap over users")
     lines += _paired_lines(report)
+    if report.finals:
+        lines.append("deployable models, refitted on every event (the figures above are their evaluated runs'):")
+        lines += [f"  {run.name}: run {run.run_id}  {run.model_uri}" for run in report.finals]
     return "\n".join(lines)
 
 

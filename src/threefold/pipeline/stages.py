@@ -17,7 +17,7 @@ import pandas as pd
 from threefold.models.registry import FACTOR_METHODS, model_class
 from threefold.pipeline.config import ExperimentConfig
 
-__all__ = ["Dataset", "StageData", "TruthSource", "load_dataset", "prepare_stage", "make_estimator"]
+__all__ = ["Dataset", "StageData", "TruthSource", "load_dataset", "prepare_stage", "build_options", "make_estimator"]
 
 
 @dataclass(eq=False)
@@ -71,9 +71,8 @@ def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> 
 def prepare_stage(config: ExperimentConfig, dataset: Dataset, stage_name: str) -> StageData:
     """Split the events and build the training tensor of the ``"validation"`` or ``"test"`` stage."""
     from threefold.evaluation.splits import temporal_split
-    from threefold.pipeline.prepare import tensor_options
 
-    split_cfg, build = config["split"], config["build"]
+    split_cfg = config["split"]
     if stage_name == "validation" and split_cfg["validation_window"] is None:
         raise ValueError(f"{config.source}: selecting on the validation window needs [split] validation_window "
                          "(e.g. \"24h\"); model selection on the test window is refused.")
@@ -82,12 +81,21 @@ def prepare_stage(config: ExperimentConfig, dataset: Dataset, stage_name: str) -
                            test_window=split_cfg["test_window"])
     stage = split.selection_stage() if stage_name == "validation" else split.final_stage()
     contexts = config.contexts()
-    options, _ = tensor_options(stage.train, weighting=config.weighting(), negatives=build["negatives"],
+    options = build_options(config, stage.train)
+    tensor, report = stage.train_tensor(contexts, **options)
+    return StageData(stage=stage, tensor=tensor, build_report=report, contexts=contexts, build_options=options)
+
+
+def build_options(config: ExperimentConfig, events: pd.DataFrame) -> dict:
+    """The ``build_tensor`` options of ``[build]`` and ``[weighting]``, propensities estimated from ``events``."""
+    from threefold.pipeline.prepare import tensor_options
+
+    build = config["build"]
+    options, _ = tensor_options(events, weighting=config.weighting(), negatives=build["negatives"],
                                 dtype=build["dtype"], drop_duplicates=build["drop_duplicates"],
                                 position_propensity=build["position_propensity"],
                                 propensity_clip=build["propensity_clip"])
-    tensor, report = stage.train_tensor(contexts, **options)
-    return StageData(stage=stage, tensor=tensor, build_report=report, contexts=contexts, build_options=options)
+    return options
 
 
 def make_estimator(spec: dict, callback: Callable | None = None):
