@@ -83,12 +83,11 @@ def make_site(n_events, hour_events, new_items, returning, new_users, seed):
     popularity = rng.permutation(1.0 / np.arange(1, n_items + 1))
     home = rng.integers(0, 3, n_users + new_users)
 
-    def requests(n, ts, users, weights):
-        who = rng.choice(users, n, p=weights / weights.sum())
-        return who, np.where(rng.random(n) < 0.8, home[who], rng.integers(0, 3, n))
+    def requests(who):  # each request on the user's usual device with probability 0.8
+        return who, np.where(rng.random(who.size) < 0.8, home[who], rng.integers(0, 3, who.size))
     n_req = int(n_events / ROWS_PER_REQUEST)
     ts = np.sort(rng.integers(CUTOFF - 7 * 86_400, CUTOFF - 60, n_req))
-    users, devices = requests(n_req, ts, np.arange(n_users), activity)
+    users, devices = requests(rng.choice(n_users, n_req, p=activity / activity.sum()))
     items = rng.choice(n_items, (n_req, SLATE), p=popularity / popularity.sum())
     train = _rows(rng, ts, users, items, devices)
     seen = np.flatnonzero(np.bincount(users, minlength=n_users) > 0)
@@ -98,10 +97,8 @@ def make_site(n_events, hour_events, new_items, returning, new_users, seed):
     if n_req_h < hour_users.size or n_req_h * SLATE * 0.25 < new_items:
         raise SystemExit(f"{hour_events} hour events are too few for {hour_users.size} users and {new_items} new items")
     weights = np.concatenate([activity[back], np.full(new_users, np.median(activity))])
-    who, dev = requests(n_req_h - hour_users.size, None, hour_users, weights)
-    order = rng.permutation(n_req_h)
-    who = np.concatenate([hour_users, who])[order]
-    dev = np.concatenate([np.where(rng.random(hour_users.size) < 0.8, home[hour_users], 0), dev])[order]
+    extra = rng.choice(hour_users, n_req_h - hour_users.size, p=weights / weights.sum())
+    who, dev = requests(rng.permutation(np.concatenate([hour_users, extra])))  # every hour user at least once
     items_h = rng.choice(n_items, (n_req_h, SLATE), p=popularity / popularity.sum())
     slot_new = rng.random(items_h.shape) < 0.3
     k = int(slot_new.sum())

@@ -189,6 +189,8 @@ class Recommender:
         n_items = len(self.items)
         self.published = np.full(n_items, np.iinfo(np.int64).min) if published is None else np.asarray(published, np.int64)
         self.expires = np.full(n_items, np.iinfo(np.int64).max) if expires is None else np.asarray(expires, np.int64)
+        if item_origin is not None and len(item_origin) != n_items:
+            raise ValueError(f"item_origin has {len(item_origin)} entries for a model of {n_items} items.")
         self.from_metadata = (np.zeros(n_items, bool) if item_origin is None
                               else np.asarray(item_origin) == _FROM_METADATA)
         rows, cov, columns = item_covariance if item_covariance is not None else (np.zeros(0, np.int64), None, None)
