@@ -41,6 +41,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from threefold.core.progress import progress
 from threefold.data.build import build_tensor
 from threefold.data.context import ColumnContext, Daypart
 from threefold.demo.simulate import SimulatedSite, daypart_of, true_relevance
@@ -74,7 +75,7 @@ class LoopResult:
 def closed_loop(site: SimulatedSite, *, train_days: float, hours: int, step_hours: int = 1,
                 structure: str = "user*item:12 + item*daypart:4 + item*device:4 + item*page_tone:4",
                 rank: int = 24, sweeps: int = 10, explore_beta: float = 0.5, policies=POLICIES,
-                seed: int = 0, shared_traffic: bool = True, echo=print) -> LoopResult:
+                seed: int = 0, shared_traffic: bool = True, echo=print, show_progress: bool = True) -> LoopResult:
     """Run the closed loop of the module docstring.
 
     Parameters
@@ -98,6 +99,10 @@ def closed_loop(site: SimulatedSite, *, train_days: float, hours: int, step_hour
         clicks of each replayed hour (the site's other traffic) join its event
         stream beside its own. False: a pure loop, the policy learns only from
         what it showed itself (then a new item it never shows never gets events).
+    echo : callable, default=print
+        Receives one line per finished policy.
+    show_progress : bool, default=True
+        Report the replayed hours of each policy (:func:`threefold.core.progress.progress`).
 
     Returns
     -------
@@ -106,12 +111,16 @@ def closed_loop(site: SimulatedSite, *, train_days: float, hours: int, step_hour
     unknown = [p for p in policies if p not in POLICIES]
     if unknown:
         raise ValueError(f"Unknown policies {unknown}; choose among {list(POLICIES)}.")
-    p, truth = site.params, site.truth
+    p = site.params
     contexts = [Daypart(timezone=p.timezone, starts=p.daypart_starts, labels=p.daypart_labels),
                 ColumnContext("device"), ColumnContext("page_tone")]
     events = site.events
     cutoff = int(events["timestamp"].min() + train_days * 86_400) // HOUR * HOUR
     history = events[events["timestamp"] < cutoff]
+    end = int(events["timestamp"].max())
+    if cutoff + hours * HOUR > end + HOUR:
+        raise ValueError(f"The log ends {max((end - cutoff) // HOUR + 1, 0)} h after its first {train_days:g} days; "
+                         f"{hours} h cannot be replayed (simulate more days or replay fewer hours).")
     replay = events[(events["timestamp"] >= cutoff) & (events["timestamp"] < cutoff + hours * HOUR)]
     requests = replay.drop_duplicates("request_id")[["request_id", "user_id", "timestamp", "device", "page_tone"]]
     if requests.empty:
@@ -122,7 +131,7 @@ def closed_loop(site: SimulatedSite, *, train_days: float, hours: int, step_hour
         started = time.perf_counter()
         gains, clicks, shown = _run_policy(policy, site, base, history, requests, contexts, cutoff, hours,
                                            step_hours, structure, rank, sweeps, explore_beta, seed,
-                                           replay if shared_traffic else None)
+                                           replay if shared_traffic else None, show_progress)
         rows.append({"policy": policy, "requests": len(requests), "ndcg_true_at_10": float(np.mean(gains)),
                      "clicks_per_1000": 1000.0 * clicks / max(shown, 1), "seconds": time.perf_counter() - started})
         echo(f"  {policy}: ndcg_true_at_10 {rows[-1]['ndcg_true_at_10']:.4f}, "
@@ -138,7 +147,7 @@ def _fit(events, contexts, structure, rank, sweeps):
 
 
 def _run_policy(policy, site, base, history, requests, contexts, cutoff, hours, step_hours, structure, rank,
-                sweeps, explore_beta, seed, other_traffic):
+                sweeps, explore_beta, seed, other_traffic, show_progress):
     """One policy through the replayed hours; returns per-request NDCG gains, clicks and impressions."""
     truth = site.truth
     rng = np.random.default_rng([seed, 7])
@@ -147,39 +156,45 @@ def _run_policy(policy, site, base, history, requests, contexts, cutoff, hours, 
     metadata = _metadata_map(site, base) if policy == "hourly+metadata" else None
     gains, clicks, shown = [], 0, 0
     times = requests["timestamp"].to_numpy(dtype=np.int64)
-    for hour in range(hours):
-        start = cutoff + hour * HOUR
-        batch = requests[(times >= start) & (times < start + HOUR)]
-        since = pd.concat(stream[1:]) if len(stream) > 1 else history.iloc[:0]
-        if policy == "nightly" and hour > 0 and _local_day(start, site) != _local_day(start - HOUR, site):
-            model = _fit(pd.concat(stream), contexts, structure, rank, sweeps)
-            state = RefreshState.fresh(model)
-            stream = [pd.concat(stream)]  # the new base: later hours refresh nothing (nightly only)
-        elif policy.startswith("hourly") and hour % step_hours == 0 and len(since):
-            rows = _metadata_rows(metadata, site, base, start) if metadata is not None else None
-            model, state, _ = refresh_result(base, since, contexts, {}, metadata_rows=rows)
-        if batch.empty:
-            continue
-        pool = np.flatnonzero((truth.published_at <= start) & (truth.expires_at > start))
-        lists = _rank(policy, model, state, batch, pool, site, contexts, stream, explore_beta)
-        relevance = _relevance(truth, batch, lists)
-        examined = truth.examination[np.arange(K)][None, :] * np.where(lists >= 0, relevance, 0.0)
-        clicked = (rng.random(lists.shape) < examined) & (lists >= 0)
-        gains.extend(_true_ndcg(truth, batch, lists, relevance, pool))
-        clicks += int(clicked.sum())
-        shown += int((lists >= 0).sum())
-        own = _events(batch, lists, clicked, truth)
-        if other_traffic is not None:
-            hour_rows = other_traffic[(other_traffic["timestamp"] >= start) & (other_traffic["timestamp"] < start + HOUR)]
-            own = pd.concat([own.assign(request_id="loop-" + own["request_id"].astype(str)), hour_rows],
-                            ignore_index=True)
-        stream.append(own)
+    with progress(hours, f"loop {policy}", "hours", enabled=show_progress) as bar:
+        for hour in range(hours):
+            start = cutoff + hour * HOUR
+            since = pd.concat(stream[1:]) if len(stream) > 1 else history.iloc[:0]
+            if policy == "nightly" and hour > 0 and _local_day(start, site) != _local_day(start - HOUR, site):
+                model = _fit(pd.concat(stream), contexts, structure, rank, sweeps)
+                state = RefreshState.fresh(model)
+                stream = [pd.concat(stream)]  # the new base: later hours refresh nothing (nightly only)
+            elif policy.startswith("hourly") and hour % step_hours == 0 and len(since):
+                rows = _metadata_rows(metadata, site, base, start) if metadata is not None else None
+                model, state, _ = refresh_result(base, since, contexts, {}, metadata_rows=rows)
+            batch = requests[(times >= start) & (times < start + HOUR)]
+            if not batch.empty:
+                lists = _rank(policy, model, state, batch, start, site, contexts, stream, explore_beta)
+                relevance = _relevance(truth, batch, lists)
+                clicked = (rng.random(lists.shape) < truth.examination[np.arange(K)][None, :] * relevance) & (lists >= 0)
+                gains.extend(_true_ndcg(truth, batch, relevance, _live(truth, start)))
+                clicks += int(clicked.sum())
+                shown += int((lists >= 0).sum())
+                own = _events(batch, lists, clicked, truth)
+                if other_traffic is not None:
+                    others = other_traffic[(other_traffic["timestamp"] >= start)
+                                           & (other_traffic["timestamp"] < start + HOUR)]
+                    own = pd.concat([own.assign(request_id="loop-" + own["request_id"].astype(str)), others],
+                                    ignore_index=True)
+                stream.append(own)
+            bar.update(1)
     return gains, clicks, shown
 
 
-def _rank(policy, model, state, batch, pool, site, contexts, stream, explore_beta) -> np.ndarray:
+def _live(truth, start: int) -> np.ndarray:
+    """Site codes of the items live at ``start`` (the candidates of that hour)."""
+    return np.flatnonzero((truth.published_at <= start) & (truth.expires_at > start))
+
+
+def _rank(policy, model, state, batch, start, site, contexts, stream, explore_beta) -> np.ndarray:
     """Top-K item codes of the site (shape (n, K), -1 past the end) for each request of ``batch``."""
     truth = site.truth
+    pool = _live(truth, start)
     if policy == "oracle":
         scores = _relevance(truth, batch, np.broadcast_to(pool, (len(batch), pool.size)))
         order = np.argsort(-scores, axis=1, kind="stable")[:, :K]
@@ -225,7 +240,7 @@ def _relevance(truth, batch, lists) -> np.ndarray:
     return np.where(valid, gamma, 0.0)
 
 
-def _true_ndcg(truth, batch, lists, relevance, pool) -> list[float]:
+def _true_ndcg(truth, batch, relevance, pool) -> list[float]:
     """NDCG@K with gains γ; the ideal list is the K most relevant live items."""
     discount = 1.0 / np.log2(np.arange(2, K + 2))
     ideal = -np.sort(-_relevance(truth, batch, np.broadcast_to(pool, (len(batch), pool.size))), axis=1)[:, :K]
