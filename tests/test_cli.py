@@ -54,7 +54,7 @@ def test_bad_parameter_values_are_refused_with_the_parameter_name(tmp_path, flag
 def test_demo_runs_end_to_end(tmp_path):
     result = run("demo", "--out", str(tmp_path / "demo"), "--events", "20000")
     assert result.returncode == 0, result.stderr[-2000:]
-    for step in ("== 1.", "== 2.", "== 3.", "== 4.", "== 5.", "== 6.", "== 7."):
+    for step in ("== 1.", "== 2.", "== 3.", "== 4.", "== 5.", "== 6.", "== 7.", "== 8."):
         assert step in result.stdout
     assert "models:/" in result.stdout  # logged models any MLflow client can load
     assert "structure selection for [models.cp_context]" in result.stdout and "chosen: " in result.stdout
@@ -69,6 +69,7 @@ def test_demo_runs_end_to_end(tmp_path):
     assert (report / "report.html").is_file() and (report / "report.json").is_file()
     logged = list((tmp_path / "demo" / "runs").rglob("explain/report.html"))  # artifacts of the model's run
     assert len(logged) == 1, logged
+    assert "oracle" in result.stdout.split("== 8.")[1]  # the closed loop's table, oracle row included
 
 
 def test_models_lists_every_parameter_from_the_tables(tmp_path):

@@ -578,7 +578,23 @@ def cmd_demo(args: argparse.Namespace) -> int:
     if run is not None:
         _demo_refresh(out, log_dir, run, store)
         _demo_explain(out, log_dir, run, store, out / "tensor")
+    _demo_loop(site)
     return 0
+
+
+def _demo_loop(site) -> None:
+    """Step 8: the refresh policies in a closed loop over the log's last day but one."""
+    from threefold.demo.loop import closed_loop
+
+    policies = ("stale", "hourly", "hourly+metadata", "oracle")
+    print("== 8. what refreshing buys: replay a day against the simulator's true click model, each policy learning "
+          "from what it showed")
+    print(f"   threefold loop --events {len(site.events)} --days {site.params.days} --train-days "
+          f"{site.params.days - 2} --hours 24 " + " ".join(f"--policy {p}" for p in policies))
+    result = closed_loop(site, train_days=site.params.days - 2, hours=24, policies=policies,
+                         seed=site.params.seed, echo=lambda line: None, show_progress=False)
+    print("   " + result.to_text().replace("\n", "\n   "))
+    print("   the full comparison (nightly retrain, exploration, a pure loop): threefold loop; docs/refresh.md")
 
 
 def _demo_refresh(out: Path, log_dir: Path, run, store) -> None:
