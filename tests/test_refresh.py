@@ -92,6 +92,10 @@ def test_the_row_posterior_without_prior_is_the_fold_in(structure):
     sub = _rows_of(tensor, 0, np.array([0, 2, 5]))
     assert_allclose(result.row_posterior(sub, "user", chunk_rows=2).rows, result.fold_in(sub, "user"),
                     rtol=1e-10, atol=1e-12)
+    rows_only = result.row_posterior(sub, "user", prior=np.ones((3, result.rank)), covariance=False)  # solve, no inverse
+    assert rows_only.covariance is None
+    assert_allclose(rows_only.rows, result.row_posterior(sub, "user", prior=np.ones((3, result.rank))).rows,
+                    rtol=1e-10, atol=1e-12)
 
 
 def test_the_tucker_row_posterior_is_its_fold_in_and_inverts_its_systems():

@@ -95,19 +95,21 @@ class RowPosterior:
         In the model's coordinates (ready for ``with_rows``).
     columns : ndarray of shape (k,), int64
         The columns the solve owns (all of them in Tucker; the structure's in CP).
-    covariance : ndarray of shape (n, k, k), float64
+    covariance : ndarray of shape (n, k, k), float64, or None
         ``M_i⁻¹`` of each row's regularized weighted system ``M_i`` in the same
         coordinates: the posterior covariance of the row under the Gaussian
         reading of ridge least squares (unit noise), used for exploration.
+        None when the caller asked for the rows only.
     """
 
     rows: np.ndarray
     columns: np.ndarray
-    covariance: np.ndarray
+    covariance: np.ndarray | None
 
 
 def solve_posterior(systems: np.ndarray, rights: np.ndarray, *, reg: float,
-                    prior: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+                    prior: np.ndarray | None = None,
+                    covariance: bool = True) -> tuple[np.ndarray, np.ndarray | None]:
     """Solve ``M_i x_i = b_i + reg·μ_i`` for every row and invert every ``M_i``.
 
     With ``prior`` (``μ``) the ridge term ``reg·‖x − μ‖²`` pulls the row toward
@@ -120,19 +122,23 @@ def solve_posterior(systems: np.ndarray, rights: np.ndarray, *, reg: float,
     rights : ndarray of shape (n, k), float64
     reg : float
     prior : ndarray of shape (n, k) or None
+    covariance : bool, default=True
+        False: solve only, skip the inverses (about a third of the work).
 
     Returns
     -------
     x : ndarray of shape (n, k), float64
-    covariance : ndarray of shape (n, k, k), float64
+    covariance : ndarray of shape (n, k, k), float64, or None when not asked for
     """
     if prior is not None:
         rights = rights + reg * np.asarray(prior, dtype=np.float64)
     if systems.shape[0] == 0:
-        return np.zeros(rights.shape), np.zeros(systems.shape)
-    covariance = np.linalg.inv(systems)
-    covariance = 0.5 * (covariance + np.swapaxes(covariance, 1, 2))
-    return np.einsum("nij,nj->ni", covariance, rights), covariance
+        return np.zeros(rights.shape), (np.zeros(systems.shape) if covariance else None)
+    if not covariance:
+        return np.linalg.solve(systems, rights[..., None])[..., 0], None
+    inverse = np.linalg.inv(systems)
+    inverse = 0.5 * (inverse + np.swapaxes(inverse, 1, 2))
+    return np.einsum("nij,nj->ni", inverse, rights), inverse
 
 
 def mode_position(mode_names: Sequence[str], mode: int | str) -> int:

@@ -249,7 +249,7 @@ def _with_trained_rows(result, kept, mode):
 def _solve(result, tensor, mode, prior):
     """Rows of the tensor's mode ``mode`` (and item covariances when the model has them)."""
     if hasattr(result, "row_posterior"):
-        posterior = result.row_posterior(tensor, mode, prior=prior)
+        posterior = result.row_posterior(tensor, mode, prior=prior, covariance=mode == 1)  # exploration: items only
         return posterior.rows, posterior.covariance, posterior.columns
     if prior is not None:
         raise ValueError(f"A {type(result).__name__} folds in by projection and takes no prior mean; "

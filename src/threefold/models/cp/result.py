@@ -232,7 +232,7 @@ class CPResult(FactorResultMixin, Scorer):
             problem = als.make_problem(tensor.astype(dtype), factors, active, reg=self.reg, update_modes=(n,))
         return n, problem
 
-    def row_posterior(self, tensor, mode: int | str, *, prior: np.ndarray | None = None,
+    def row_posterior(self, tensor, mode: int | str, *, prior: np.ndarray | None = None, covariance: bool = True,
                       n_threads: int | None = None, chunk_rows: int = 2048) -> RowPosterior:
         """The fold-in of :meth:`fold_in` with each row's covariance, optionally around a prior mean.
 
@@ -249,6 +249,8 @@ class CPResult(FactorResultMixin, Scorer):
         prior : ndarray of shape (n_new, R) or None
             Prior means in the model's normalized coordinates (e.g. a row's
             previous value, or its prediction from catalog metadata); None: zero.
+        covariance : bool, default=True
+            False: the rows only (``covariance`` None), without the inverses.
         chunk_rows : int, default=2048
             Rows whose ``k × k`` systems are formed at once (bounds memory).
 
@@ -263,7 +265,7 @@ class CPResult(FactorResultMixin, Scorer):
         scale = np.where(norms > 0, norms, 1.0)
         n_rows = tensor.shape[n]
         rows = np.ones((n_rows, self.rank), dtype=self.factors[0].dtype)
-        covariance = np.zeros((n_rows, active.size, active.size))
+        covariances = np.zeros((n_rows, active.size, active.size)) if covariance else None
         indptr = problem.cells[n].indptr
         for start in range(0, n_rows, chunk_rows):
             stop = min(start + chunk_rows, n_rows)
@@ -271,7 +273,8 @@ class CPResult(FactorResultMixin, Scorer):
             with kernels.threads(n_threads):
                 systems, rights = als.row_systems(problem, n, blocks, stop - start, active, inactive, base, rhs0)
             mean = None if prior is None else np.asarray(prior, np.float64)[start:stop][:, active] * norms
-            x, cov = solve_posterior(systems, rights, reg=self.reg, prior=mean)
+            x, cov = solve_posterior(systems, rights, reg=self.reg, prior=mean, covariance=covariance)
             rows[start:stop, active] = np.where(norms > 0, x / scale, 0.0)
-            covariance[start:stop] = cov / np.outer(scale, scale)
-        return RowPosterior(rows=rows, columns=active, covariance=covariance)
+            if covariance:
+                covariances[start:stop] = cov / np.outer(scale, scale)
+        return RowPosterior(rows=rows, columns=active, covariance=covariances)

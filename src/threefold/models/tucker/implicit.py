@@ -148,14 +148,14 @@ def row_posterior_systems(tensor: SparseTensor, mode: int, core: np.ndarray, fac
 
 
 def implicit_tucker_row_posterior(result: TuckerResult, tensor: SparseTensor, mode: int | str, *,
-                                  prior: np.ndarray | None = None) -> RowPosterior:
+                                  prior: np.ndarray | None = None, covariance: bool = True) -> RowPosterior:
     """Fold-in rows with their covariances (and an optional prior mean); see ``CPResult.row_posterior``."""
     n = check_fold_in(result, tensor, mode)
     factors = [np.asarray(f, dtype=np.float64) for f in result.factors]
     systems, rights = row_posterior_systems(tensor, n, np.asarray(result.core, dtype=np.float64), factors, result.reg)
-    x, covariance = solve_posterior(systems, rights, reg=result.reg, prior=prior)
+    x, inverse = solve_posterior(systems, rights, reg=result.reg, prior=prior, covariance=covariance)
     return RowPosterior(rows=x.astype(result.core.dtype), columns=np.arange(result.core.shape[n], dtype=np.int64),
-                        covariance=covariance)
+                        covariance=inverse)
 
 
 def update_rows(tensor: SparseTensor, mode: int, core: np.ndarray, factors: Sequence[np.ndarray], reg: float,
@@ -484,9 +484,10 @@ class ImplicitTuckerResult(TuckerResult):
     def fold_in(self, tensor: SparseTensor, mode: int | str) -> np.ndarray:
         return implicit_tucker_fold_in(self, tensor, mode)
 
-    def row_posterior(self, tensor: SparseTensor, mode: int | str, *, prior: np.ndarray | None = None) -> RowPosterior:
+    def row_posterior(self, tensor: SparseTensor, mode: int | str, *, prior: np.ndarray | None = None,
+                      covariance: bool = True) -> RowPosterior:
         """Fold-in rows with their covariances; see :func:`implicit_tucker_row_posterior`."""
-        return implicit_tucker_row_posterior(self, tensor, mode, prior=prior)
+        return implicit_tucker_row_posterior(self, tensor, mode, prior=prior, covariance=covariance)
 
 
 class ImplicitTuckerModel(TuckerEstimator):
