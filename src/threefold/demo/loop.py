@@ -13,14 +13,16 @@ page tones) against each policy:
    at position k with probability ``θ_k · γ``, with γ the planted true
    relevance and θ the planted examination (the environment);
 3. the policy's own impressions and clicks join its event stream, and every
-   ``step_hours`` it refreshes (or retrains at each midnight for "nightly")
+   ``step_hours`` it refreshes (or retrains: every step for "retrain", at
+   each midnight for "nightly")
    from that stream. With ``shared_traffic`` (default) the policy is one module
    of the page: the log's own impressions and clicks of the hour (the site's
    other modules) join the stream too, so new stories get events elsewhere.
 
 Policies: ``stale`` (the trained model, never updated), ``nightly`` (a full
 retrain at each midnight of the site's time zone on every event so far),
-``hourly`` (:func:`threefold.models.refresh.refresh_result` every step, the
+``retrain`` (a full retrain every step on every event so far: what the
+refresh approximates, for the accuracy gap), ``hourly`` (:func:`threefold.models.refresh.refresh_result` every step, the
 code path of ``threefold refresh``), ``hourly+metadata`` (also rows predicted
 from catalog attributes for items without events), ``hourly+explore`` (also
 the LinUCB bonus of :mod:`threefold.ranking.explore` with one exploration
@@ -52,7 +54,7 @@ from threefold.ranking.recommender import Recommender
 
 __all__ = ["POLICIES", "LoopResult", "closed_loop"]
 
-POLICIES = ("stale", "nightly", "hourly", "hourly+metadata", "hourly+explore", "popularity", "oracle")
+POLICIES = ("stale", "nightly", "retrain", "hourly", "hourly+metadata", "hourly+explore", "popularity", "oracle")
 K = 10
 HOUR = 3600
 
@@ -164,6 +166,9 @@ def _run_policy(policy, site, base, history, requests, contexts, cutoff, hours, 
                 model = _fit(pd.concat(stream), contexts, structure, rank, sweeps)
                 state = RefreshState.fresh(model)
                 stream = [pd.concat(stream)]  # the new base: later hours refresh nothing (nightly only)
+            elif policy == "retrain" and hour > 0 and hour % step_hours == 0:
+                model = _fit(pd.concat(stream), contexts, structure, rank, sweeps)
+                state = RefreshState.fresh(model)
             elif policy.startswith("hourly") and hour % step_hours == 0 and len(since):
                 rows = _metadata_rows(metadata, site, base, start) if metadata is not None else None
                 model, state, _ = refresh_result(base, since, contexts, {}, metadata_rows=rows)
