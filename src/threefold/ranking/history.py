@@ -1,0 +1,143 @@
+"""What each user already consumed or kept ignoring, read from an event log in chunks (repetition control).
+
+:func:`read_history` reduces an impression and click log to two sorted sets of
+64-bit (user, item) keys:
+
+* ``clicked``: pairs with at least one click anywhere in the log (the user
+  consumed the item);
+* ``ignored``: pairs shown at least ``cap_shown`` times in the last
+  ``cap_days`` days before ``as_of`` with no click in that window (the
+  frequency cap).
+
+Memory: one pass per chunk of ``chunk_rows`` rows; the state is 12 bytes per
+distinct pair seen in the window (key and count) plus 8 per clicked pair, merged
+after every chunk, so a 30-day log of 10⁸ rows needs its distinct pairs, not
+its rows. Without ``as_of`` the window ends at the log's last event, found by a
+first pass over the timestamps. Rows the event reader drops (missing ids,
+unparseable times, unknown events, repeats) are skipped and counted.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+
+import numpy as np
+import pyarrow as pa
+
+from threefold.core.checks import check_int, check_number
+from threefold.data._eventscan import EVENT_VALUES, scan_events
+from threefold.data._hashing import combine, hash_strings
+from threefold.data._logreader import open_source
+from threefold.data.events import require_columns
+from threefold.data.timestamps import check_timezone
+
+__all__ = ["History", "read_history", "pair_keys"]
+
+_DAY = 86_400
+_CLICK = EVENT_VALUES.index("click")
+
+
+@dataclass(frozen=True)
+class History:
+    """Sorted uint64 (user, item) keys of :func:`pair_keys`; see the module docstring."""
+
+    clicked: np.ndarray = field(default_factory=lambda: np.zeros(0, np.uint64))
+    ignored: np.ndarray = field(default_factory=lambda: np.zeros(0, np.uint64))
+    as_of: int | None = None
+    rows: int = 0
+    skipped: int = 0
+
+    @staticmethod
+    def member(keys: np.ndarray, sorted_keys: np.ndarray) -> np.ndarray:
+        """Boolean mask of the same shape as ``keys``: which are in ``sorted_keys``."""
+        if sorted_keys.size == 0:
+            return np.zeros(keys.shape, bool)
+        at = np.minimum(np.searchsorted(sorted_keys, keys), sorted_keys.size - 1)
+        return sorted_keys[at] == keys
+
+
+def pair_keys(user_hash: np.ndarray, item_hash: np.ndarray) -> np.ndarray:
+    """The key of each (user, item) pair from the id hashes of :func:`threefold.data._hashing.hash_strings`."""
+    return combine(np.asarray(user_hash, np.uint64), np.asarray(item_hash, np.uint64))
+
+
+def id_hashes(ids) -> np.ndarray:
+    """Hashes of ids given as text, as the event reader computes them (uint64)."""
+    return hash_strings(pa.array([str(v) for v in ids], pa.string()))
+
+
+def _merge(keys: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    unique, inverse = np.unique(keys, return_inverse=True)
+    return unique, np.bincount(inverse, weights=counts, minlength=unique.size).astype(np.int64)
+
+
+def read_history(path: str | os.PathLike, *, cap_shown: int | None = None, cap_days: float = 7.0,
+                 as_of: int | None = None, timezone: str | None = None, chunk_rows: int = 1_000_000,
+                 report=None) -> History:
+    """Reduce an event log to the clicked and the ignored (user, item) pairs.
+
+    Parameters
+    ----------
+    path : path
+        Event log (CSV or Parquet) with ``user_id``, ``item_id``, ``timestamp``
+        and ``event`` (``impression`` / ``click``; without the column every row
+        is a click, as in training).
+    cap_shown : int or None
+        Impressions without a click that make a pair ignored; None: no cap.
+    cap_days : float, default=7
+    as_of : int or None
+        End of the cap's window (epoch seconds); None: the log's last event.
+    timezone : str or None
+        Zone of timestamps written without an offset (as for training).
+    chunk_rows : int, default=1,000,000
+    report : callable(int) or None
+        Called with rows read, chunk by chunk (progress).
+
+    Returns
+    -------
+    History
+    """
+    chunk_rows = check_int("chunk_rows", chunk_rows, low=1, owner="read_history")
+    if cap_shown is not None:
+        cap_shown = check_int("cap_shown", cap_shown, low=1, owner="read_history")
+        check_number("cap_days", cap_days, low=0.0, low_open=True, owner="read_history")
+    zone = check_timezone(timezone)
+    source = open_source(path)
+    missing = require_columns(source, ("user_id", "item_id", "timestamp"))
+    if missing:
+        raise ValueError(f"{source.path}: the history log needs the column(s) {missing}; it has {source.columns}.")
+    report = report or (lambda n: None)
+    if cap_shown is not None and as_of is None:
+        latest = None
+        for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows):
+            kept = chunk.timestamp[chunk.drop == 0]
+            if kept.size:
+                latest = int(kept.max()) if latest is None else max(latest, int(kept.max()))
+        as_of = latest
+    start = None if as_of is None else as_of - int(cap_days * _DAY)
+    clicked = np.zeros(0, np.uint64)
+    shown_keys, shown_counts = np.zeros(0, np.uint64), np.zeros(0, np.int64)
+    window_clicked = np.zeros(0, np.uint64)
+    rows = skipped = 0
+    for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows):
+        keep = chunk.drop == 0
+        rows += chunk.n
+        skipped += int((~keep).sum())
+        keys = pair_keys(chunk.user_hash[keep], chunk.item_hash[keep])
+        click = chunk.event[keep] == _CLICK
+        clicked = np.union1d(clicked, keys[click])
+        if cap_shown is not None and start is not None:
+            t = chunk.timestamp[keep]
+            inside = (t >= start) & (t <= as_of)
+            window_clicked = np.union1d(window_clicked, keys[inside & click])
+            shown = inside & ~click
+            shown_keys, shown_counts = _merge(np.concatenate([shown_keys, keys[shown]]),
+                                              np.concatenate([shown_counts, np.ones(int(shown.sum()), np.int64)]))
+        report(chunk.n)
+    ignored = np.zeros(0, np.uint64)
+    if cap_shown is not None:
+        candidates = shown_keys[shown_counts >= cap_shown]
+        ignored = candidates[~History.member(candidates, window_clicked)]
+    return History(clicked=clicked.astype(np.uint64), ignored=ignored.astype(np.uint64), as_of=as_of, rows=rows,
+                   skipped=skipped)
