@@ -188,6 +188,11 @@ def _add_score_command(commands) -> None:
                             "BETA*sqrt(q'Σq), or 'thompson' for a posterior sample (default off)")
     score.add_argument("--explore-slots", dest="explore_slots", type=int, default=1,
                        help="most items per list that exploration may bring in (default 1)")
+    score.add_argument("--policies", default=None, metavar="RULES.toml",
+                       help="list policies: guardrails, repetition, diversity, pins (docs/policies.md)")
+    score.add_argument("--items", default=None, help="items catalog whose columns the policies name")
+    score.add_argument("--history", default=None, metavar="EVENTS",
+                       help="impression and click log for the repetition rules of --policies")
     where = score.add_mutually_exclusive_group()
     where.add_argument("--workers", type=int, default=None, help="run the parts on a local Dask cluster of N processes")
     where.add_argument("--scheduler", default=None, metavar="ADDRESS",
@@ -344,9 +349,14 @@ def cmd_score(args: argparse.Namespace) -> int:
     manifest = score_requests(args.model, args.requests, out=args.out, candidates=args.candidates, k=args.k,
                               explain=args.explain, format=args.format, chunk_rows=args.chunk_rows,
                               workers=args.workers, scheduler=args.scheduler, store=args.store, load=False,
-                              explore=args.explore, explore_slots=args.explore_slots)
+                              explore=args.explore, explore_slots=args.explore_slots, policies=args.policies,
+                              items=args.items, history=args.history)
     print(f"{manifest['requests']:,} requests, {manifest['rows']:,} rows in {len(manifest['parts'])} part(s): "
           f"{Path(args.out) / '_manifest.json'}")
+    if "policies" in manifest:
+        from threefold.ranking.policies import PolicyCounts
+
+        print("list policies:\n  " + PolicyCounts(manifest["policies"]).to_text().replace("\n", "\n  "))
     return 0
 
 

@@ -51,7 +51,7 @@ def score_requests(model, requests, *, out: str | os.PathLike, candidates=None, 
                    explain: str = "none", format: str = "parquet", chunk_rows: int = DEFAULT_CHUNK_ROWS,
                    workers: int | None = None, scheduler: str | None = None, store=None,
                    load: bool = True, show_progress: bool = True, explore=None,
-                   explore_slots: int = 1) -> pd.DataFrame | dict:
+                   explore_slots: int = 1, policies=None, items=None, history=None) -> pd.DataFrame | dict:
     """Rank the items of every request with a saved model; write the parts and the manifest to ``out``.
 
     Parameters
@@ -86,6 +86,14 @@ def score_requests(model, requests, *, out: str | os.PathLike, candidates=None, 
         The output gains an ``explored`` column (see docs/scoring.md).
     explore_slots : int, default=1
         Most items per list that exploration may bring in.
+    policies : path, mapping or None
+        List policies (a TOML file; docs/policies.md): guardrails, repetition,
+        diversity and pins, applied before the cut to K. The output gains ``pinned``
+        and the manifest a ``policies`` table of what each rule did.
+    items : path, DataFrame or None
+        The items catalog whose columns the rules name.
+    history : path or None
+        Impression and click log for the repetition rules.
 
     Returns
     -------
@@ -106,7 +114,7 @@ def score_requests(model, requests, *, out: str | os.PathLike, candidates=None, 
         with progress(None, "stage", "requests", enabled=show_progress) as bar:
             todo = prepare_job(out, folder, requests, candidates=candidates, k=k, explain=explain, format=format,
                                chunk_rows=chunk_rows, report=bar.update, explore=explore,
-                               explore_slots=explore_slots)
+                               explore_slots=explore_slots, policies=policies, items=items, history=history)
         if todo:
             counts = job_parts(out)
             with progress(sum(counts), "score", "requests", enabled=show_progress) as bar:

@@ -57,7 +57,9 @@ from threefold.core.bundle import bundle_fingerprint, sha256_file
 from threefold.core.checks import check_choice, check_int
 from threefold.core.exceptions import InputRowsError
 from threefold.data.events import open_source
+from threefold.ranking._job_policies import policy_digest, stage_policies, staged_policies, summed_counts, write_counts
 from threefold.ranking.explore import parse_explore
+from threefold.ranking.policies import PolicyCounts
 from threefold.ranking.recommender import DEFAULT_K, EXPLAIN_CHOICES, Recommender, blank_mask
 
 __all__ = ["JobArguments", "JobMismatch", "local_model_folder", "prepare_job", "score_part", "finish_job", "read_output", "job_parts",
@@ -102,6 +104,10 @@ class JobArguments:
     explore : str
         ``"off"``, ``"thompson"`` or BETA as text (:mod:`threefold.ranking.explore`).
     explore_slots : int
+    policies : str or None
+        Where the list policies came from (not compared).
+    policies_sha256 : str or None
+        Digest of the rules, the catalog and the history they read (compared).
     """
 
     model: str
@@ -116,9 +122,11 @@ class JobArguments:
     chunk_rows: int
     explore: str = "off"
     explore_slots: int = 1
+    policies: str | None = None
+    policies_sha256: str | None = None
 
     _COMPARED = ("model", "requests_sha256", "candidates_sha256", "k", "explain", "format", "chunk_rows", "explore",
-                 "explore_slots")
+                 "explore_slots", "policies_sha256")
 
     def differences(self, other: "JobArguments") -> list[str]:
         """``"k: 10 -> 20"`` for every compared field that differs."""
@@ -273,7 +281,7 @@ def _write_json(data: dict, path: Path) -> None:
 def prepare_job(out: str | os.PathLike, model_folder: str | os.PathLike, requests, *, candidates=None,
                 k: int = DEFAULT_K, explain: str = "none", format: str = "parquet",
                 chunk_rows: int = DEFAULT_CHUNK_ROWS, report: Callable[[int], None] | None = None,
-                explore=None, explore_slots: int = 1) -> list[int]:
+                explore=None, explore_slots: int = 1, policies=None, items=None, history=None) -> list[int]:
     """Create or reopen a job folder and stage its inputs; return the parts still to compute.
 
     Parameters
@@ -299,6 +307,13 @@ def prepare_job(out: str | os.PathLike, model_folder: str | os.PathLike, request
         Exploration of items with a posterior covariance (refreshed models); Thompson
         samples are seeded by part, so a rerun or a Dask run gives the same lists.
     explore_slots : int, default=1
+    policies : path, mapping or None
+        List policies (a TOML file or a parsed ``[policies]`` table;
+        :mod:`threefold.ranking.policy_spec`), applied before the cut to K.
+    items : path, DataFrame or None
+        The items catalog the rules' columns come from.
+    history : path or None
+        Event log for repetition control (:func:`threefold.ranking.history.read_history`).
 
     Returns
     -------
@@ -326,7 +341,14 @@ def prepare_job(out: str | os.PathLike, model_folder: str | os.PathLike, request
                              requests=requests_name, requests_sha256=requests_sha, candidates=candidates_name,
                              candidates_sha256=candidates_sha, k=k, explain=explain, format=format,
                              chunk_rows=chunk_rows, explore="off" if explore is None else str(explore),
-                             explore_slots=explore_slots)
+                             explore_slots=explore_slots,
+                             policies=None if policies is None or not isinstance(policies, (str, os.PathLike))
+                             else str(policies), policies_sha256=policy_digest(policies, items, history))
+    if policies is not None and explore is not None:
+        raise ValueError("Exploration and list policies cannot be combined yet: score with --explore or with "
+                         "--policies.")
+    if policies is None and (items is not None or history is not None):
+        raise ValueError("--items and --history feed the list policies; give --policies too.")
     _open_folder(out, arguments)
     staging = out / STAGING
     if (out / MANIFEST_FILE).is_file():
@@ -336,6 +358,8 @@ def prepare_job(out: str | os.PathLike, model_folder: str | os.PathLike, request
         recommender = _recommender(arguments)
         shutil.rmtree(staging, ignore_errors=True)
         staging.mkdir(parents=True)
+        if policies is not None:  # the rules are checked before any request is read
+            stage_policies(staging, policies, items, history, recommender, lambda n: None)
         counts, hashes, parts = _stage_requests(requests, requests_name, staging, chunk_rows, recommender, report)
         if candidates is not None:
             _stage_candidates(candidates, candidates_name, staging, hashes, parts)
@@ -421,13 +445,13 @@ def _part_input(out: Path, index: int) -> tuple[pd.DataFrame, bool]:
     return pd.concat([base, joined[list(base.columns) + ["item_id"]]], ignore_index=True), True
 
 
-def _schema(recommender: Recommender, explain: str, explore: str = "off") -> pa.Schema:
+def _schema(recommender: Recommender, explain: str, explore: str = "off", policies: bool = False) -> pa.Schema:
     """The output schema: one type per column whatever a part holds (all-empty columns included)."""
     fields = []
-    for name in recommender.output_columns(explain, explore):
+    for name in recommender.output_columns(explain, explore, policies):
         if name == "rank":
             kind = pa.int64()
-        elif name == "explored":
+        elif name in ("explored", "pinned"):
             kind = pa.bool_()
         elif name == "score" or name.endswith(("_term", "_share")):
             kind = pa.float64()
@@ -451,11 +475,16 @@ def score_part(out: str | os.PathLike, index: int) -> int:
         return counts[index]
     recommender = _recommender(arguments)
     frame, with_candidates = _part_input(out, index)
+    with_policies = arguments.policies_sha256 is not None
+    tables = staged_policies(out / STAGING, arguments.policies_sha256, recommender) if with_policies else None
+    rule_counts = PolicyCounts()
     ranked = recommender.recommend(frame, k=arguments.k, explain=arguments.explain, catalog=not with_candidates,
                                    explore=arguments.explore, explore_slots=arguments.explore_slots,
-                                   explore_seed=[0, index])
-    table = pa.Table.from_pandas(ranked, schema=_schema(recommender, arguments.explain, arguments.explore),
-                                 preserve_index=False)
+                                   explore_seed=[0, index], policies=tables, policy_counts=rule_counts)
+    table = pa.Table.from_pandas(ranked, schema=_schema(recommender, arguments.explain, arguments.explore,
+                                                        with_policies), preserve_index=False)
+    if with_policies:  # before the part lands: a finished part always has its counts
+        write_counts(out / STAGING, index, rule_counts)
     temporary = path.with_name(f".{path.name}.tmp")
     if arguments.format == "parquet":
         pq.write_table(table, temporary)
@@ -490,6 +519,8 @@ def finish_job(out: str | os.PathLike) -> dict:
         parts.append({"file": path.name, "requests": n_requests, "rows": rows, "sha256": sha256_file(path)})
     manifest = {"format_name": _JOB_FORMAT, "arguments": asdict(arguments), "parts": parts,
                 "requests": sum(counts), "rows": sum(p["rows"] for p in parts)}
+    if arguments.policies_sha256 is not None:
+        manifest["policies"] = summed_counts(out / STAGING)
     _write_json(manifest, manifest_path)
     shutil.rmtree(out / STAGING, ignore_errors=True)
     return manifest

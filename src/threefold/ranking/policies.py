@@ -90,6 +90,9 @@ class PolicyTables:
     pins : ndarray of shape (n_pins,), int64
         Universe positions of the pinned items, in slot order.
     pin_slots : ndarray of shape (n_pins,), int64
+    pin_published, pin_expires : ndarray of shape (n_pins,), int64
+        Live interval of each pin from the catalog's ``published_at`` /
+        ``expires_at`` (open where the catalog gives none).
     history : History or None
     """
 
@@ -102,6 +105,8 @@ class PolicyTables:
     reconsumable: np.ndarray
     pins: np.ndarray
     pin_slots: np.ndarray
+    pin_published: np.ndarray
+    pin_expires: np.ndarray
     history: History | None = None
 
     def positions(self, labels) -> np.ndarray:
@@ -164,10 +169,21 @@ def compile_policies(policies: ListPolicies, catalog: pd.DataFrame | None = None
         full = np.full(n, -1, np.int64)
         full[universe.get_indexer(pd.Index(catalog_ids, dtype=object))] = codes
         levels[column], level_labels[column] = full, [str(v) for v in labels]
+    pin_ids = [item for item, _ in policies.pins]
+    live = {}
+    for column, missing in (("published_at", np.iinfo(np.int64).min), ("expires_at", np.iinfo(np.int64).max)):
+        live[column] = np.full(len(pin_ids), missing, np.int64)
+        if catalog is not None and column in catalog.columns and pin_ids:
+            row = pd.Index(catalog_ids, dtype=object).get_indexer(pin_ids)
+            values = pd.array(catalog[column], dtype="Int64")
+            for j, r in enumerate(row):
+                if r >= 0 and not pd.isna(values[r]):
+                    live[column][j] = int(values[r])
     tables = dict(policies=policies, universe=universe, item_hash=id_hashes(universe), levels=levels,
                   level_labels=level_labels, blocked=np.isin(np.arange(n), universe.get_indexer(list(policies.block))),
                   pins=universe.get_indexer([item for item, _ in policies.pins]).astype(np.int64),
-                  pin_slots=np.array([slot for _, slot in policies.pins], np.int64), history=history)
+                  pin_slots=np.array([slot for _, slot in policies.pins], np.int64),
+                  pin_published=live["published_at"], pin_expires=live["expires_at"], history=history)
     partial = PolicyTables(reconsumable=np.zeros(n, bool), **tables)
     reconsumable = (partial.item_match(policies.reconsumable, np.arange(n)) if policies.reconsumable
                     else np.zeros(n, bool))

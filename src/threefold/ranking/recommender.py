@@ -58,6 +58,8 @@ from threefold.data.timestamps import check_timezone, parse_timestamps
 from threefold.models.model_io import load_model
 from threefold.models.refresh import FROM_METADATA as _FROM_METADATA
 from threefold.ranking.explore import exploration_values, merge_explored, parse_explore
+from threefold.ranking.history import id_hashes
+from threefold.ranking.policies import PIN_BASE, PolicyCounts, PolicyTables, apply_policies, pool_size
 from threefold.ranking.topk import ALWAYS_LIVE, top_k, top_k_product
 
 __all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "EXPLAIN_CHOICES", "context_specs", "raw_columns", "blank_mask"]
@@ -214,12 +216,15 @@ class Recommender:
                    item_covariance=(extra["item_covariance_rows"], extra["item_covariance"],
                                     extra["item_covariance_columns"]) if "item_covariance_rows" in extra else None)
 
-    def output_columns(self, explain: str = "none", explore=None) -> list[str]:
-        """The output's columns, in order, for an ``explain`` setting (``explored`` when exploring)."""
+    def output_columns(self, explain: str = "none", explore=None, policies: bool = False) -> list[str]:
+        """The output's columns, in order, for an ``explain`` setting (``explored`` when exploring,
+        ``pinned`` with list policies)."""
         check_choice("explain", explain, EXPLAIN_CHOICES, owner="predict")
         columns = list(OUTPUT_COLUMNS[:5]) + list(self.context_names) + list(OUTPUT_COLUMNS[5:])
         if parse_explore(explore) is not None:
             columns.append("explored")
+        if policies:
+            columns.append("pinned")
         count = 0 if explain == "none" else len(self.reason_labels)
         if explain == "top3":
             count = min(count, _TOP3)
@@ -293,7 +298,8 @@ class Recommender:
 
     # ------------------------------------------------------------------ ranking
     def recommend(self, requests: pd.DataFrame, k: int = DEFAULT_K, explain: str = "none",
-                  catalog: bool = True, explore=None, explore_slots: int = 1, explore_seed: int = 0) -> pd.DataFrame:
+                  catalog: bool = True, explore=None, explore_slots: int = 1, explore_seed: int = 0,
+                  policies: PolicyTables | None = None, policy_counts: PolicyCounts | None = None) -> pd.DataFrame:
         """Top ``k`` items of every request; see the module docstring.
 
         Parameters
@@ -315,6 +321,11 @@ class Recommender:
             Most items per list that exploration may bring in.
         explore_seed : int, default=0
             Seed of Thompson sampling (the same seed and batch give the same lists).
+        policies : PolicyTables or None
+            List policies (:mod:`threefold.ranking.policies`) applied to a pool of the
+            best-scored candidates before the cut to K; the output gains ``pinned``.
+        policy_counts : PolicyCounts or None
+            Receives what each rule did (summed over calls).
 
         Returns
         -------
@@ -330,7 +341,10 @@ class Recommender:
         k = check_int("k", k, low=1, owner="predict")
         explore = parse_explore(explore)
         explore_slots = check_int("explore_slots", explore_slots, low=0, owner="predict")
-        columns = self.output_columns(explain, explore)
+        if policies is not None and explore is not None:
+            raise ValueError("Exploration and list policies cannot be combined yet: score with --explore or with "
+                             "--policies.")
+        columns = self.output_columns(explain, explore, policies is not None)
         missing = [c for c in ("request_id", "user_id") if c not in requests.columns]
         if missing:
             raise ValueError(f"The requests need the column(s) {missing}; they have {list(requests.columns)}.")
@@ -362,15 +376,22 @@ class Recommender:
         with_candidates = np.zeros(len(first), dtype=bool)
         if item_ids is not None:
             with_candidates[np.unique(request_codes[item_ids.notna().to_numpy(dtype=bool)])] = True
+        pool = lengths if policies is None else np.maximum(lengths, pool_size(policies.policies, int(lengths.max())))
         parts = []
         if with_candidates.any():
-            parts.append(self._rank_candidates(request_codes, item_ids, queries, with_candidates, lengths))
+            parts.append(self._rank_candidates(request_codes, item_ids, queries, with_candidates, pool))
         rest = np.flatnonzero(~with_candidates)
         if rest.size:
-            parts.append(self._rank_catalog(queries, times, rest, lengths) if catalog else self._empty(rest))
+            parts.append(self._rank_catalog(queries, times, rest, pool) if catalog else self._empty(rest))
         ranked = [np.concatenate(v) for v in zip(*parts)]
         order = np.lexsort((ranked[1], ranked[0]))
         request, rank, item_code, item_label, score = (v[order] for v in ranked)
+        pinned = None
+        if policies is not None:
+            levels = self._request_levels(policies, first, labels)
+            request, rank, item_code, item_label, score, pinned = self._apply_policies(
+                policies, (request, rank, item_code, item_label, score), first, levels, queries, times, lengths,
+                policy_counts if policy_counts is not None else PolicyCounts())
         explored = None
         if explore is not None:
             candidates = None
@@ -384,6 +405,8 @@ class Recommender:
                           unknown_user, unknown_context)
         if explored is not None:
             out["explored"] = explored
+        if pinned is not None:
+            out["pinned"] = pinned
         if explain != "none":
             reasons = self.reasons(user_rows[request], context_rows[request], item_code,
                                    top=_TOP3 if explain == "top3" else None, queries=queries, query_of=request)
@@ -543,6 +566,72 @@ class Recommender:
         out = (np.concatenate([r, request[empty]]), np.concatenate([c + 1, rank[empty]]),
                np.concatenate([new_code, item_code[empty]]), np.concatenate([new_label, item_label[empty]]),
                np.concatenate([new_score, score[empty]]), np.concatenate([~from_plain, np.zeros(empty.sum(), bool)]))
+        order = np.lexsort((out[1], out[0]))
+        return tuple(v[order] for v in out)
+
+    def _request_levels(self, tables: PolicyTables, first: pd.DataFrame, labels) -> dict:
+        """The value of every request column (or context mode) the guardrails condition on."""
+        levels = {}
+        for column in tables.policies.request_columns():
+            if column in first.columns:
+                values = first[column].astype("string")
+                levels[column] = values.where(~blank_mask(first[column]), None).to_numpy(dtype=object)
+            elif column in self.context_names:
+                levels[column] = np.asarray(labels[self.context_names.index(column)], dtype=object)
+            else:
+                raise ValueError(f"{tables.policies.source}: a guardrail conditions on {column!r}, which is neither a "
+                                 f"column of the requests ({list(first.columns)}) nor a context mode of the model "
+                                 f"({list(self.context_names)}).")
+        return levels
+
+    def _apply_policies(self, tables, ranked, first, levels, queries, times, lengths, counts):
+        """The ranked rows after the list policies, plus the ``pinned`` flags; as :meth:`_rank_candidates`."""
+        request, rank, item_code, item_label, score = ranked
+        n = len(first)
+        listed = rank > 0
+        width = int(rank[listed].max()) if listed.any() else 1
+        entry = np.full((n, width), -1, np.int64)
+        entry[request[listed], rank[listed] - 1] = np.flatnonzero(listed)
+        valid = entry >= 0
+        at = np.maximum(entry, 0)
+        codes = np.where(valid, item_code[at], -1)
+        cached = getattr(self, "_universe_cache", None)
+        if cached is None or cached[0] is not tables:  # model rows to universe positions, once per tables
+            self._universe_cache = cached = (tables, tables.positions(self.item_labels))
+        universe = np.where(codes >= 0, cached[1][np.maximum(codes, 0)], -1)
+        strangers = valid & (codes < 0)  # candidates the model does not know: looked up by id
+        universe[strangers] = tables.positions(item_label[at[strangers]])
+        item_hash = np.where(universe >= 0, tables.item_hash[np.maximum(universe, 0)], 0).astype(np.uint64)
+        if strangers.any():
+            item_hash[strangers] = id_hashes(item_label[at[strangers]])
+        users = first["user_id"].astype("string").fillna(FALLBACK_LABEL).to_numpy(dtype=object)
+        t = times[:, None]
+        pin_live = (t == ALWAYS_LIVE) | ((tables.pin_published[None, :] <= t) & (t < tables.pin_expires[None, :]))
+        chosen, rule_counts = apply_policies(
+            tables, universe=universe, codes=codes, valid=valid, scores=np.where(valid, score[at], -np.inf),
+            item_hash=item_hash, request_levels=levels, user_hash=id_hashes(users), lengths=lengths,
+            item_factors=self.item_factors, pin_live=pin_live)
+        counts.merge(rule_counts)
+        pin_ids = np.array([item for item, _ in tables.policies.pins], dtype=object)
+        pin_codes = self.resolved.item_codes(pin_ids) if pin_ids.size else np.zeros(0, np.int64)
+        r, c = np.nonzero(chosen != -1)
+        e = chosen[r, c]
+        is_pin = e <= PIN_BASE
+        j = np.where(is_pin, PIN_BASE - e, 0)
+        source = entry[r, np.maximum(e, 0)]
+        new_code = np.where(is_pin, pin_codes[j] if pin_ids.size else -1, item_code[np.maximum(source, 0)])
+        pin_score = np.einsum("ij,ij->i", np.asarray(queries[r], np.float64),
+                              np.asarray(self.item_factors[np.maximum(new_code, 0)], np.float64))
+        if self.item_bias is not None:
+            pin_score = pin_score + self.item_bias[np.maximum(new_code, 0)]
+        pin_score = np.where(new_code >= 0, pin_score, 0.0)
+        new_score = np.where(is_pin, pin_score, score[np.maximum(source, 0)])
+        new_label = np.where(is_pin, pin_ids[j] if pin_ids.size else None, item_label[np.maximum(source, 0)])
+        empty = np.setdiff1d(np.arange(n), r)  # every candidate removed (or none to begin with): one empty row
+        gone = self._empty(empty)
+        out = (np.concatenate([r, gone[0]]), np.concatenate([c + 1, gone[1]]), np.concatenate([new_code, gone[2]]),
+               np.concatenate([new_label, gone[3]]), np.concatenate([new_score, gone[4]]),
+               np.concatenate([is_pin, np.zeros(empty.size, bool)]))
         order = np.lexsort((out[1], out[0]))
         return tuple(v[order] for v in out)
 
