@@ -61,6 +61,8 @@ def test_demo_runs_end_to_end(tmp_path):
     lists = pd.read_parquet(tmp_path / "demo" / "lists")  # the score job's parts (its _files skipped)
     assert {"rank", "item_id", "score", "reason_1", "reason_1_share", "status"} <= set(lists.columns)
     assert (tmp_path / "demo" / "lists" / "_manifest.json").is_file()
+    assert "what each rule did" in result.stdout and "guardrail 'nothing upbeat beside a grave page'" in result.stdout
+    assert "alpha_ndcg@10" in result.stdout and "pinned" in lists.columns  # the rules' cost and gain, paired
     assert "paired with the baseline" in result.stdout and " - mf: ndcg_true_at_10 " in result.stdout
     refreshed = pd.read_parquet(tmp_path / "demo" / "lists-refreshed")  # the same requests, refreshed model
     assert set(refreshed["request_id"]) == set(lists["request_id"])

@@ -55,3 +55,29 @@ def test_alpha_ndcg_nan_without_relevant_items_and_errors():
         alpha_ndcg(np.array([[0, 1]]), np.ones((1, 3)), np.array([0, 1, 2]), alpha=2.0)
     with pytest.raises(ValueError, match=r"examination must give θ for each of the 3 positions"):
         expected_clicks(np.array([[0, 1, 2]]), np.ones((1, 3)), [1.0])
+
+
+def test_policy_effect_pairs_users_and_reports_the_mean_difference():
+    # Slow reference written here: per-user means of each measure, then the mean of their differences; the
+    # interval is a percentile bootstrap of that mean (common practice), so it must contain it.
+    from threefold.evaluation.policy_effect import list_measures, policy_effect
+
+    rng = np.random.default_rng(8)
+    q, n, k = 40, 15, 5
+    relevance = rng.random((q, n)) * (rng.random((q, n)) < 0.4)
+    users = rng.choice(["u1", "u2", "u3", "u4", "u5"], q)
+    a = np.stack([rng.permutation(n)[:k] for _ in range(q)])
+    b = np.stack([rng.permutation(n)[:k] for _ in range(q)])
+    aspect = rng.integers(0, 4, n)
+    theta = [1.0, 0.7, 0.5, 0.4, 0.3]
+    table = policy_effect(a, b, relevance, users, aspect=aspect, examination=theta, k=k, n_resamples=200)
+    ma = list_measures(a, relevance, aspect=aspect, examination=theta, k=k)
+    mb = list_measures(b, relevance, aspect=aspect, examination=theta, k=k)
+    for row in table.itertuples():
+        diffs = [np.nanmean(mb[row.measure][users == u]) - np.nanmean(ma[row.measure][users == u])
+                 for u in sorted(set(users))]
+        assert_allclose(row.difference, np.mean(diffs), rtol=1e-10, atol=1e-12)
+        assert row.low <= row.difference <= row.high and row.users == 5
+    same = policy_effect(a, a, relevance, users, aspect=aspect, k=k, n_resamples=50)
+    assert_allclose(same["difference"], 0.0, atol=1e-15)
+    assert (same["p_value"] == 1.0).all()

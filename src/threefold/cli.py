@@ -584,7 +584,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     report = train(config, store, echo=lambda line: print(f"   {line}"), truth=site_truth)
     print(summary_text(report))
     print(f"   list the runs: threefold runs --store {out / 'runs'}")
-    run = _demo_score(out, log_dir, report, store)
+    run = _demo_score(out, log_dir, report, store, site)
     if run is not None:
         _demo_refresh(out, log_dir, run, store)
         _demo_explain(out, log_dir, run, store, out / "tensor")
@@ -659,11 +659,15 @@ def _demo_explain(out: Path, log_dir: Path, run, store, tensor_folder: Path) -> 
     print(f"   open {report_dir / 'report.html'} (also logged as artifacts explain/ of run {run.run_id})")
 
 
-def _demo_score(out: Path, log_dir: Path, report, store):
-    """Step 5: the nightly job on the last day's requests, with the reasons behind every item; returns the run."""
+def _demo_score(out: Path, log_dir: Path, report, store, site):
+    """Step 5: the nightly job on the last day's requests, under editorial rules, with reasons; returns the run."""
+    import json
+
     import pandas as pd
 
+    from threefold.demo.policies import demo_rules, true_effect
     from threefold.pipeline.score import score_requests
+    from threefold.ranking.policies import PolicyCounts
 
     scored = [r for r in report.runs if r.model_uri and r.name != "mf"] or [r for r in report.runs if r.model_uri]
     if not scored:
@@ -675,11 +679,28 @@ def _demo_score(out: Path, log_dir: Path, report, store):
     requests = last_day.drop_duplicates("request_id").head(2_000)
     requests_path = out / "requests.parquet"
     requests.to_parquet(requests_path, index=False)
-    print(f"== 5. score {len(requests):,} requests of the last day with {run.name!r}: top 10 with reasons")
-    print(f"   threefold score {run.run_id} --requests {requests_path} --k 10 --explain top3 "
-          f"--out {out / 'lists'} --store {out / 'runs'}")
+    rules = out / "policies.toml"
+    rules.write_text(demo_rules(site))
+    history = out / "history.parquet"  # what readers saw and clicked before the scored day (repetition rules)
+    log = pd.read_parquet(log_dir / "events.parquet")
+    log[log["timestamp"] < requests["timestamp"].min()].to_parquet(history, index=False)
+    print(f"== 5. score {len(requests):,} requests of the last day with {run.name!r}: top 10 with reasons, under "
+          f"the editorial rules of {rules}")
+    print(f"   threefold score {run.run_id} --requests {requests_path} --k 10 --explain top3 --policies {rules} "
+          f"--items {log_dir / 'items.parquet'} --history {history} --out {out / 'lists'} "
+          f"--store {out / 'runs'}")
     lists = score_requests(run.run_id, requests_path, out=out / "lists", k=10, explain="top3", store=store,
+                           show_progress=False, policies=rules, items=log_dir / "items.parquet",
+                           history=history)
+    manifest = json.loads((out / "lists" / "_manifest.json").read_text())
+    print("   what each rule did:\n     " + PolicyCounts(manifest["policies"]).to_text().replace("\n", "\n     "))
+    plain = score_requests(run.run_id, requests_path, out=out / "lists-without-rules", k=10, store=store,
                            show_progress=False)
+    effect = true_effect(site, requests, plain, lists)
+    print("   what the rules cost and buy, against the simulator's true relevance (paired per user, 95% interval):")
+    for row in effect.itertuples():
+        print(f"     {row.measure:<17} without {row.without:.4f}  with {row.with_rules:.4f}  "
+              f"difference {row.difference:+.4f} [{row.low:+.4f}, {row.high:+.4f}]")
     first = lists[lists["request_id"] == lists["request_id"].iloc[0]].head(3)
     columns = ["rank", "item_id", "score", "daypart", "device", "page_tone", "status", "reason_1", "reason_1_share"]
     print("   " + first[[c for c in columns if c in first.columns]].to_string(index=False).replace("\n", "\n   "))
