@@ -66,6 +66,16 @@ def test_mmr_factor_similarity_is_the_cosine_of_item_factors():
     assert lists == [["s1", "s3", "s2"]]
 
 
+def test_mmr_takes_a_negative_cosine_as_it_is():
+    # Worked by hand (definition, Carbonell & Goldstein 1998): s2 points away from s1 (cosine -1), s3 is
+    # orthogonal (0). Scores 3, 1, 2.5 scale to s1 1, s2 0, s3 0.75; λ = 0.5: after s1, s2 gains
+    # 0.5·0 − 0.5·(−1) = 0.5 and s3 gains 0.5·0.75 − 0 = 0.375, so s2 is second (a max clamped at 0 would give s3).
+    factors = np.zeros((6, 2))
+    factors[0], factors[1], factors[2] = [1.0, 0.0], [-1.0, 0.0], [0.0, 1.0]
+    lists, _ = _apply({"diversity": {"mmr": 0.5}}, [["s1", "s3", "s2"]], [[3.0, 2.5, 1.0]], factors=factors)
+    assert lists == [["s1", "s2", "s3"]]
+
+
 def test_max_per_keeps_at_most_m_items_of_one_level():
     lists, counts = _apply({"diversity": {"max_per": {"column": "topic", "items": 1}}},
                            [["s1", "s2", "s3", "s4", "s6", "s5"]], [[6, 5, 4, 3, 2, 1]], k=4)
@@ -122,6 +132,10 @@ def test_repetition_from_a_history_log(tmp_path):
     log["timestamp"] = pd.to_datetime(log["timestamp"], unit="s", utc=True).astype(str)
     log.to_csv(tmp_path / "history.csv", index=False)
     history = read_history(tmp_path / "history.csv", cap_shown=3, cap_days=7, chunk_rows=4)
+    whole = read_history(tmp_path / "history.csv", cap_shown=3, cap_days=7)  # chunking changes nothing
+    assert_array_equal(history.clicked, whole.clicked)
+    assert_array_equal(history.ignored, whole.ignored)
+    assert history.clicked.size == 3 and history.ignored.size == 1 and history.rows == len(log)
     rules = {"repetition": {"consumed": True, "reconsumable": {"kind": ["audio"]}, "cap": {"shown": 3, "days": 7}}}
     pools = [["s1", "s2", "s3", "s6", "s5"]] * 2
     lists, counts = _apply(rules, pools, [[5, 4, 3, 2, 1]] * 2, users=["u1", "u2"], history=history, k=5)

@@ -14,7 +14,7 @@ Contenders, each in its own child process (peak RSS = ``VmHWM``):
 * (p) the same job with the policies of ``RULES`` below: an exclude guardrail,
   a demote guardrail, repetition (consumed with re-consumable audio, a cap of 3
   impressions in 7 days), MMR λ = 0.8 on factor cosine and at most 3 items per
-  topic, pool 60;
+  topic, the default pool (30 for K = 10);
 * (h) ``read_history`` on the history log alone, the cap's 7-day window: its
   time and peak memory against the log's size on disk.
 
@@ -39,9 +39,7 @@ from _harness import gib, run_child  # noqa: E402
 HERE = Path(__file__).resolve().parent
 RESULTS = HERE / "results" / "policies.md"
 T_START = 1_767_225_600
-RULES = """pool = 60
-
-[[guardrail]]
+RULES = """[[guardrail]]
 name = "nothing upbeat beside a grave page"
 when = {page_tone = ["grave"]}
 items = {tone = ["upbeat"]}

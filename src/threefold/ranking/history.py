@@ -9,10 +9,11 @@
   ``cap_days`` days before ``as_of`` with no click in that window (the
   frequency cap).
 
-Memory: one pass per chunk of ``chunk_rows`` rows; the state is 12 bytes per
-distinct pair seen in the window (key and count) plus 8 per clicked pair, merged
-after every chunk, so a 30-day log of 10⁸ rows needs its distinct pairs, not
-its rows. Without ``as_of`` the window ends at the log's last event, found by a
+Memory: one pass per chunk of ``chunk_rows`` rows; the state is 16 bytes per
+distinct pair shown in the window (key and count) plus 8 per clicked pair, each
+chunk reduced to its distinct keys and merged into the table once the pending
+chunks outgrow it (so the merging costs O(n log n) overall): a 30-day log of
+10⁸ rows needs its distinct pairs, not its rows. Without ``as_of`` the window ends at the log's last event, found by a
 first pass over the timestamps. Rows the event reader drops (missing ids,
 unparseable times, unknown events, repeats) are skipped and counted.
 """
@@ -67,9 +68,43 @@ def id_hashes(ids) -> np.ndarray:
     return hash_strings(pa.array([str(v) for v in ids], pa.string()))
 
 
-def _merge(keys: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    unique, inverse = np.unique(keys, return_inverse=True)
-    return unique, np.bincount(inverse, weights=counts, minlength=unique.size).astype(np.int64)
+class _KeyCounts:
+    """Counts of uint64 keys, merged when the pending chunks outgrow the merged table (amortized n log n)."""
+
+    def __init__(self):
+        self.keys, self.counts = np.zeros(0, np.uint64), np.zeros(0, np.int64)
+        self.pending: list[tuple[np.ndarray, np.ndarray]] = []
+        self.size = 0
+
+    def add(self, keys: np.ndarray, counts: np.ndarray | None = None) -> None:
+        if keys.size == 0:
+            return
+        unique, inverse = np.unique(keys, return_inverse=True)
+        weights = None if counts is None else counts
+        self.pending.append((unique, np.bincount(inverse, weights=weights, minlength=unique.size).astype(np.int64)))
+        self.size += unique.size
+        if self.size > max(self.keys.size, 1 << 22):
+            self._merge()
+
+    def _merge(self) -> None:
+        if not self.pending:
+            return
+        keys = np.concatenate([self.keys] + [k for k, _ in self.pending])
+        counts = np.concatenate([self.counts] + [c for _, c in self.pending])
+        self.keys, inverse = np.unique(keys, return_inverse=True)
+        self.counts = np.bincount(inverse, weights=counts, minlength=self.keys.size).astype(np.int64)
+        self.pending, self.size = [], 0
+
+    def result(self) -> tuple[np.ndarray, np.ndarray]:
+        self._merge()
+        return self.keys, self.counts
+
+
+class _KeySet(_KeyCounts):
+    """Distinct uint64 keys (counts ignored)."""
+
+    def result(self) -> np.ndarray:
+        return super().result()[0]
 
 
 def read_history(path: str | os.PathLike, *, cap_shown: int | None = None, cap_days: float = 7.0,
@@ -116,9 +151,8 @@ def read_history(path: str | os.PathLike, *, cap_shown: int | None = None, cap_d
                 latest = int(kept.max()) if latest is None else max(latest, int(kept.max()))
         as_of = latest
     start = None if as_of is None else as_of - int(cap_days * _DAY)
-    clicked = np.zeros(0, np.uint64)
-    shown_keys, shown_counts = np.zeros(0, np.uint64), np.zeros(0, np.int64)
-    window_clicked = np.zeros(0, np.uint64)
+    clicked, window_clicked = _KeySet(), _KeySet()
+    shown = _KeyCounts()
     rows = skipped = 0
     for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows):
         keep = chunk.drop == 0
@@ -126,15 +160,15 @@ def read_history(path: str | os.PathLike, *, cap_shown: int | None = None, cap_d
         skipped += int((~keep).sum())
         keys = pair_keys(chunk.user_hash[keep], chunk.item_hash[keep])
         click = chunk.event[keep] == _CLICK
-        clicked = np.union1d(clicked, keys[click])
+        clicked.add(keys[click])
         if cap_shown is not None and start is not None:
             t = chunk.timestamp[keep]
             inside = (t >= start) & (t <= as_of)
-            window_clicked = np.union1d(window_clicked, keys[inside & click])
-            shown = inside & ~click
-            shown_keys, shown_counts = _merge(np.concatenate([shown_keys, keys[shown]]),
-                                              np.concatenate([shown_counts, np.ones(int(shown.sum()), np.int64)]))
+            window_clicked.add(keys[inside & click])
+            shown.add(keys[inside & ~click])
         report(chunk.n)
+    clicked, window_clicked = clicked.result(), window_clicked.result()
+    shown_keys, shown_counts = shown.result()
     ignored = np.zeros(0, np.uint64)
     if cap_shown is not None:
         candidates = shown_keys[shown_counts >= cap_shown]

@@ -37,6 +37,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from threefold.ranking._mmr_kernel import greedy_lists
 from threefold.ranking.history import History, id_hashes, pair_keys
 from threefold.ranking.policy_spec import ListPolicies, PolicyError, check_policies_against_catalog
 
@@ -44,7 +45,6 @@ __all__ = ["PolicyTables", "PolicyCounts", "compile_policies", "apply_policies",
 
 #: Output entries ``PIN_BASE - j`` stand for pin ``j`` (pool columns are ``>= 0``, ``-1`` is empty).
 PIN_BASE = -2
-_BLOCK = 1024  # requests per block of the greedy diversity step ((block, pool, pool) similarities)
 
 
 @dataclass
@@ -126,8 +126,8 @@ class PolicyTables:
 
 
 def pool_size(policies: ListPolicies, k: int) -> int:
-    """Candidates per request the rules choose from: ``pool``, or ``max(5·K, 50)``, and room for demotions and pins."""
-    base = policies.pool if policies.pool is not None else max(5 * k, 50)
+    """Candidates per request the rules choose from: ``pool``, or ``max(3·K, K + 20)``, and room for demotions and pins."""
+    base = policies.pool if policies.pool is not None else max(3 * k, k + 20)
     return max(base, k + policies.max_places() + len(policies.pins))
 
 
@@ -204,60 +204,35 @@ def _compact(order: np.ndarray) -> np.ndarray:
 
 
 def _diversify(tables, keep, scores, codes, item_factors, universe, length):
-    """Greedy MMR with the coverage cap over the kept pool columns; returns (order (q, length), passed over)."""
+    """Greedy MMR with the coverage cap over the kept pool columns; returns (order (q, length), passed over).
+
+    Relevance is the score min-max scaled within each pool; the greedy loop is
+    :func:`threefold.ranking._mmr_kernel.greedy_lists`.
+    """
     policies = tables.policies
-    lam = policies.mmr
+    lam = float(policies.mmr)
     q, p = keep.shape
-    rows = np.arange(q)
     low = np.where(keep, scores, np.inf).min(1)
     span = np.where(keep, scores, -np.inf).max(1) - low
     span = np.where(np.isfinite(span) & (span > 1e-12), span, 1.0)  # below: ties
     rel = np.where(keep, (scores - np.where(np.isfinite(low), low, 0.0)[:, None]) / span[:, None], 0.0)
-    cap_column, cap = policies.max_per_column, policies.max_per
-    level = tables.levels[cap_column][np.maximum(universe, 0)] if cap_column else None
-    if level is not None:
-        level = np.where(universe >= 0, level, -1)
-    out = np.full((q, length), -1, np.int64)
-    passed = np.zeros(q, np.int64)
-    for lo in range(0, q, _BLOCK):
-        b = slice(lo, min(lo + _BLOCK, q))
-        sim = _similarity(tables, codes[b], universe[b], item_factors) if lam < 1.0 else None
-        available = keep[b].copy()
-        closest = np.zeros(available.shape)
-        used = None if level is None else np.zeros((available.shape[0], len(tables.level_labels[cap_column]) + 1),
-                                                   np.int64)
-        r = rows[: available.shape[0]]
-        for step in range(length):
-            gain = np.where(available, lam * rel[b] - (1.0 - lam) * closest, -np.inf)
-            if used is not None:
-                lv = level[b]
-                full = (lv >= 0) & (used[r[:, None], np.maximum(lv, 0)] >= cap)
-                free_gain = np.where(full, -np.inf, gain)
-                passed[b] += (gain.argmax(1) != free_gain.argmax(1)) & np.isfinite(free_gain.max(1))
-                gain = free_gain
-            pick = gain.argmax(1)
-            ok = np.isfinite(gain[r, pick])
-            out[b][ok, step] = pick[ok]
-            available[r[ok], pick[ok]] = False
-            if used is not None:
-                lv_pick = level[b][r, pick]
-                counted = ok & (lv_pick >= 0)
-                used[r[counted], lv_pick[counted]] += 1
-            if sim is not None:
-                closest = np.where(ok[:, None], np.maximum(closest, sim[r, pick]), closest)
-    return out, passed
 
+    def levels_of(column):
+        return np.where(universe >= 0, tables.levels[column][np.maximum(universe, 0)], -1).astype(np.int64)
 
-def _similarity(tables, codes, universe, item_factors) -> np.ndarray:
-    """(b, P, P) similarities of a block of pools: cosine of item factors, or the same catalog level."""
-    column = tables.policies.similarity
-    if column == "factors":
-        vectors = np.where((codes >= 0)[..., None], np.asarray(item_factors, np.float64)[np.maximum(codes, 0)], 0.0)
-        norms = np.linalg.norm(vectors, axis=2, keepdims=True)
-        unit = vectors / np.where(norms > 0, norms, 1.0)
-        return np.einsum("bpr,bqr->bpq", unit, unit)
-    level = np.where(universe >= 0, tables.levels[column][np.maximum(universe, 0)], -1)
-    return ((level[:, :, None] == level[:, None, :]) & (level[:, :, None] >= 0)).astype(np.float64)
+    use_factors = lam < 1.0 and policies.similarity == "factors"
+    unit = np.zeros((1, 1), np.float32)
+    if use_factors:  # unit rows (a few ms for 20,000 × 64)
+        factors = np.asarray(item_factors, np.float32)
+        norms = np.linalg.norm(factors, axis=1, keepdims=True)
+        unit = np.ascontiguousarray(factors / np.where(norms > 0, norms, 1.0))
+    sim_level = levels_of(policies.similarity) if lam < 1.0 and not use_factors else np.full((q, p), -1, np.int64)
+    cap_column = policies.max_per_column
+    level = levels_of(cap_column) if cap_column else np.full((q, p), -1, np.int64)
+    n_levels = len(tables.level_labels[cap_column]) if cap_column else 0
+    return greedy_lists(np.ascontiguousarray(keep), np.ascontiguousarray(rel, np.float64), lam, unit,
+                        np.ascontiguousarray(codes, np.int64), sim_level, use_factors, level, n_levels,
+                        int(policies.max_per or 0), int(length))
 
 
 def apply_policies(tables: PolicyTables, *, universe: np.ndarray, codes: np.ndarray, valid: np.ndarray,

@@ -72,7 +72,7 @@ class ListPolicies:
     Attributes
     ----------
     pool : int or None
-        Candidates per request the rules choose from (None: ``max(5 · K, 50)``).
+        Candidates per request the rules choose from (None: ``max(3 · K, K + 20)``).
     block : tuple of str
         Item ids never shown.
     pins : tuple of (item id, slot)

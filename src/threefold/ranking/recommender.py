@@ -620,12 +620,14 @@ class Recommender:
         j = np.where(is_pin, PIN_BASE - e, 0)
         source = entry[r, np.maximum(e, 0)]
         new_code = np.where(is_pin, pin_codes[j] if pin_ids.size else -1, item_code[np.maximum(source, 0)])
-        pin_score = np.einsum("ij,ij->i", np.asarray(queries[r], np.float64),
-                              np.asarray(self.item_factors[np.maximum(new_code, 0)], np.float64))
-        if self.item_bias is not None:
-            pin_score = pin_score + self.item_bias[np.maximum(new_code, 0)]
-        pin_score = np.where(new_code >= 0, pin_score, 0.0)
-        new_score = np.where(is_pin, pin_score, score[np.maximum(source, 0)])
+        new_score = score[np.maximum(source, 0)].astype(np.float64)
+        scored_pin = np.flatnonzero(is_pin & (new_code >= 0))  # a pin the model knows: its own score
+        if scored_pin.size:
+            new_score[scored_pin] = np.einsum("ij,ij->i", np.asarray(queries[r[scored_pin]], np.float64),
+                                              np.asarray(self.item_factors[new_code[scored_pin]], np.float64))
+            if self.item_bias is not None:
+                new_score[scored_pin] += self.item_bias[new_code[scored_pin]]
+        new_score[is_pin & (new_code < 0)] = 0.0
         new_label = np.where(is_pin, pin_ids[j] if pin_ids.size else None, item_label[np.maximum(source, 0)])
         empty = np.setdiff1d(np.arange(n), r)  # every candidate removed (or none to begin with): one empty row
         gone = self._empty(empty)
