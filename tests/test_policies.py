@@ -121,13 +121,17 @@ def test_a_pin_never_overrides_an_exclude_guardrail():
 def test_repetition_from_a_history_log(tmp_path):
     # Hand-counted log: u1 clicked s1 (an article) and s3 (audio, re-consumable); s2 was shown to u1 three
     # times within the last 7 days without a click (capped at 3); s6 (audio) was shown three times but clicked
-    # once (not capped, and re-consumable); s5 was shown three times, but two of them are older than 7 days before the last event.
+    # once (not capped, and re-consumable); s5 was shown three times, but two of them are older than 7 days
+    # before the last event.
     day = 86_400
     t = 1_800_000_000
     rows = [("u1", "s1", t, "click"), ("u1", "s3", t, "click")]
     rows += [("u1", "s2", t - i * 3600, "impression") for i in range(3)]
     rows += [("u1", "s6", t - i * 3600, "impression") for i in range(3)] + [("u1", "s6", t, "click")]
     rows += [("u1", "s5", t - 8 * day - i, "impression") for i in range(2)] + [("u1", "s5", t, "impression")]
+    # s4 was shown twice; the third row is an exact repeat of the first (a logging retry), counted once: not capped
+    rows += [("u1", "s4", t - 3600, "impression"), ("u1", "s4", t - 7200, "impression"),
+             ("u1", "s4", t - 3600, "impression")]
     log = pd.DataFrame(rows, columns=["user_id", "item_id", "timestamp", "event"])
     log["timestamp"] = pd.to_datetime(log["timestamp"], unit="s", utc=True).astype(str)
     log.to_csv(tmp_path / "history.csv", index=False)
@@ -136,6 +140,7 @@ def test_repetition_from_a_history_log(tmp_path):
     assert_array_equal(history.clicked, whole.clicked)
     assert_array_equal(history.ignored, whole.ignored)
     assert history.clicked.size == 3 and history.ignored.size == 1 and history.rows == len(log)
+    assert history.skipped == 1  # the repeated impression
     rules = {"repetition": {"consumed": True, "reconsumable": {"kind": ["audio"]}, "cap": {"shown": 3, "days": 7}}}
     pools = [["s1", "s2", "s3", "s6", "s5"]] * 2
     lists, counts = _apply(rules, pools, [[5, 4, 3, 2, 1]] * 2, users=["u1", "u2"], history=history, k=5)

@@ -16,6 +16,7 @@ import pytest
 
 from threefold.models.model_io import save_model
 from threefold.pipeline.score import score_requests
+from threefold.ranking.history import load_history, read_history, write_history
 from threefold.ranking.policies import PolicyCounts, compile_policies
 from threefold.ranking.policy_spec import PolicyError, read_policies
 from threefold.ranking.recommender import Recommender
@@ -122,3 +123,56 @@ def test_the_command_line_prints_what_each_rule_did(job, tmp_path):
     assert result.returncode == 0, result.stderr[-2000:]
     assert "list policies:" in result.stdout and "block" in result.stdout
     assert "guardrail 'no sport on desktops'" in result.stdout
+
+
+REPEAT_RULES = """
+[repetition]
+consumed = true
+cap = {shown = 2, days = 3}
+"""
+
+
+def _history_log(folder, requests):
+    """Invented clicks and impressions of the requests' users before T0 (a seeded log, not a reference)."""
+    rng = np.random.default_rng(9)
+    n = 400
+    log = pd.DataFrame({"user_id": rng.choice(requests["user_id"].unique(), n),
+                        "item_id": rng.choice([f"i{i:02d}" for i in range(15)], n),
+                        "timestamp": T0 - rng.integers(0, 5 * 86_400, n),
+                        "event": rng.choice(["impression", "click"], n, p=[0.7, 0.3])})
+    log.to_csv(folder / "history.csv", index=False)
+    (folder / "repeat.toml").write_text(REPEAT_RULES)
+    return folder / "history.csv", folder / "repeat.toml"
+
+
+def test_a_history_digest_scores_as_the_log_it_was_made_from(job, tmp_path):
+    folder, *_, requests, catalog = job
+    log, rules = _history_log(tmp_path, requests)
+    made = subprocess.run(threefold_command("history", str(log), "--policies", str(rules), "--out",
+                                            str(tmp_path / "history.npz")),
+                          capture_output=True, text=True, env=child_env(), cwd=tmp_path, timeout=300)
+    assert made.returncode == 0, made.stderr[-2000:]
+    assert "400 rows (0 skipped)" in made.stdout and "clicked pairs" in made.stdout
+    digest, read = load_history(tmp_path / "history.npz"), read_history(log, cap_shown=2, cap_days=3)
+    for name in ("clicked", "ignored", "as_of", "rows", "cap_shown", "cap_days"):
+        np.testing.assert_array_equal(getattr(digest, name), getattr(read, name), err_msg=name)
+    from_log = score_requests(folder / "model", folder / "requests.csv", out=tmp_path / "a", k=5, policies=rules,
+                              history=log, show_progress=False)
+    from_digest = score_requests(folder / "model", folder / "requests.csv", out=tmp_path / "b", k=5, policies=rules,
+                                 history=tmp_path / "history.npz", show_progress=False)
+    pd.testing.assert_frame_equal(from_log, from_digest)
+    counts = json.loads((tmp_path / "b" / "_manifest.json").read_text())["policies"]
+    assert counts["repetition: consumed"]["removed"] > 0  # the digest did remove consumed items
+
+
+def test_a_digest_made_for_another_cap_is_refused(job, tmp_path):
+    folder, *_, requests, catalog = job
+    log, rules = _history_log(tmp_path, requests)
+    write_history(read_history(log, cap_shown=3, cap_days=3), tmp_path / "h.npz")
+    with pytest.raises(PolicyError, match=r"h.npz: this history digest was made for a cap of 3 impressions in 3 "
+                                          r"days, the rules of .*repeat.toml ask for a cap of 2 impressions in 3 days"):
+        score_requests(folder / "model", folder / "requests.csv", out=tmp_path / "out", policies=rules,
+                       history=tmp_path / "h.npz", show_progress=False)
+    np.savez(tmp_path / "other.npz", x=np.zeros(3))
+    with pytest.raises(ValueError, match=r"other.npz: not a history digest of threefold history"):
+        load_history(tmp_path / "other.npz")

@@ -95,6 +95,7 @@ def _parser() -> argparse.ArgumentParser:
     models.add_argument("--json", action="store_true", help="print the tables as JSON")
     _add_tracking_commands(commands)
     _add_score_command(commands)
+    _add_history_command(commands)
     _add_refresh_command(commands)
     _add_explain_command(commands)
     _add_loop_command(commands)
@@ -191,13 +192,49 @@ def _add_score_command(commands) -> None:
     score.add_argument("--policies", default=None, metavar="RULES.toml",
                        help="list policies: guardrails, repetition, diversity, pins (docs/policies.md)")
     score.add_argument("--items", default=None, help="items catalog whose columns the policies name")
-    score.add_argument("--history", default=None, metavar="EVENTS",
-                       help="impression and click log for the repetition rules of --policies")
+    score.add_argument("--history", default=None, metavar="EVENTS|DIGEST",
+                       help="impression and click log for the repetition rules of --policies, or its digest "
+                            "from threefold history (read once, reused by every job)")
     where = score.add_mutually_exclusive_group()
     where.add_argument("--workers", type=int, default=None, help="run the parts on a local Dask cluster of N processes")
     where.add_argument("--scheduler", default=None, metavar="ADDRESS",
                        help="run the parts on an existing Dask cluster, e.g. tcp://10.0.0.5:8786")
     _add_store_flag(score)
+
+
+def _add_history_command(commands) -> None:
+    """``history`` (docs/policies.md, "Repetition")."""
+    history = commands.add_parser(
+        "history", help="digest an impression and click log for the repetition rules (read once, used by every job)",
+        description="Reduce an event log to what the [repetition] rules of RULES need (the pairs each user clicked, "
+                    "the pairs shown --cap times without a click) and write it to OUT, for threefold score "
+                    "--history OUT. Example: threefold history events-30d.parquet --policies rules.toml "
+                    "--out history.npz")
+    history.add_argument("events", metavar="EVENTS", help="CSV or Parquet log: user_id, item_id, timestamp, event")
+    history.add_argument("--policies", required=True, metavar="RULES.toml",
+                         help="the rules the digest serves (their frequency cap decides the window)")
+    history.add_argument("--out", required=True, help="digest file to write (.npz)")
+    history.add_argument("--timezone", default=None,
+                         help="zone of timestamps written without an offset (default: such rows are skipped)")
+
+
+def cmd_history(args: argparse.Namespace) -> int:
+    from threefold.core.progress import progress
+    from threefold.ranking._job_policies import history_for_rules
+    from threefold.ranking.history import write_history
+    from threefold.ranking.policy_spec import read_policies
+
+    spec = read_policies(args.policies)
+    if not spec.needs_history:
+        raise ValueError(f"{args.policies}: the rules have no [repetition] section; they need no history.")
+    with progress(None, "history", unit="rows") as bar:
+        history = history_for_rules(args.events, spec, timezone=args.timezone, report=bar.update)
+    write_history(history, args.out)
+    cap = "" if history.cap_shown is None else (f", {history.ignored.size:,} pairs shown {history.cap_shown}+ times "
+                                                 f"in {history.cap_days:g} days without a click")
+    print(f"{history.rows:,} rows ({history.skipped:,} skipped): {history.clicked.size:,} clicked pairs{cap}: "
+          f"{args.out}")
+    return 0
 
 
 def _add_refresh_command(commands) -> None:
@@ -755,7 +792,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     handlers = {"validate": cmd_validate, "simulate": cmd_simulate, "build": cmd_build, "demo": cmd_demo,
                 "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models, "score": cmd_score,
-                "select": cmd_select, "gain": cmd_gain, "explain": cmd_explain, "refresh": cmd_refresh,
+                "history": cmd_history, "select": cmd_select, "gain": cmd_gain, "explain": cmd_explain, "refresh": cmd_refresh,
                 "loop": cmd_loop}
     try:
         return handlers[args.command](args)

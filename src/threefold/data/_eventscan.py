@@ -22,7 +22,7 @@ integer >= 1 are cleared (set missing); the row is kept.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Iterator
+from typing import Callable, Iterator
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -264,19 +264,23 @@ def _row_hash(chunk: EventChunk, index: np.ndarray) -> np.ndarray:
 
 
 def scan_events(
-    source: LogSource, *, zone: ZoneInfo | None, chunk_rows: int
+    source: LogSource, *, zone: ZoneInfo | None, chunk_rows: int,
+    dedupe: Callable[[EventChunk], np.ndarray] | None = None,
 ) -> Iterator[EventChunk]:
     """Parse a log chunk by chunk, marking exact duplicates of earlier kept rows.
 
     The caller checks beforehand that the required columns are present.
-    Duplicates are found across chunks with a sorted set of 64-bit row hashes
-    (8 bytes per distinct kept row), so the result does not depend on
-    ``chunk_rows``.
+    Duplicates are found across chunks with a set of 64-bit row hashes (12 to
+    23 bytes per distinct row it holds), so the result does not depend on
+    ``chunk_rows``. ``dedupe`` narrows the rows looked at: a function of the
+    chunk giving a boolean mask of shape (n,); the kept rows outside it are
+    never marked and cost no memory (a reader that only counts some rows
+    dedupes only those).
     """
     seen = HashSet()
     for first_row, table in source.iter_tables(chunk_rows):
         chunk = _normalize(first_row, table, zone)
-        index = np.flatnonzero(chunk.keep)
+        index = np.flatnonzero(chunk.keep if dedupe is None else chunk.keep & dedupe(chunk))
         repeat = seen.mark_repeats(_row_hash(chunk, index))
         chunk.drop[index[repeat]] = 1 + DROP_REASONS.index("duplicate_row")
         duplicate = np.zeros(chunk.n, dtype=bool)

@@ -3,7 +3,8 @@
 Staged under ``OUT/_staging/policies/``: ``rules.json`` (the parsed policy
 table), ``catalog.parquet`` (``item_id``, the columns the rules name and the
 live times) and ``history.npz`` (the clicked and ignored pair keys of
-:func:`threefold.ranking.history.read_history`). Every part writes what each
+:func:`threefold.ranking.history.read_history`, or the digest given in its
+place, :func:`threefold.ranking.history.write_history`). Every part writes what each
 rule did to ``policy-counts-NNNNN.json`` before its own file is renamed into
 place, and :func:`summed_counts` adds them up for the manifest.
 """
@@ -17,16 +18,15 @@ import tomllib
 from pathlib import Path
 from typing import Callable
 
-import numpy as np
 import pandas as pd
 
 from threefold.core.bundle import sha256_file
 from threefold.data.events import load_items
-from threefold.ranking.history import History, read_history
+from threefold.ranking.history import History, is_history_digest, load_history, read_history, write_history
 from threefold.ranking.policies import PolicyCounts, PolicyTables, compile_policies
 from threefold.ranking.policy_spec import PolicyError, read_policies
 
-__all__ = ["policy_digest", "stage_policies", "staged_policies", "write_counts", "summed_counts"]
+__all__ = ["policy_digest", "history_for_rules", "stage_policies", "staged_policies", "write_counts", "summed_counts"]
 
 _FOLDER = "policies"
 _LIVE = ("published_at", "expires_at")
@@ -81,8 +81,7 @@ def stage_policies(staging: Path, policies, items, history, recommender, report:
     if spec.needs_history:
         if history is None:
             raise PolicyError(f"{name}: [repetition] needs the history log of impressions and clicks (--history).")
-        loaded = read_history(history, cap_shown=spec.cap_shown, cap_days=spec.cap_days, timezone=_zone(recommender),
-                              report=report)
+        loaded = history_for_rules(history, spec, timezone=_zone(recommender), report=report)
     compile_policies(spec, catalog, model_items=recommender.item_labels, history=loaded, catalog_name=catalog_name,
                      context_levels=context_levels)
     folder = staging / _FOLDER
@@ -92,8 +91,30 @@ def stage_policies(staging: Path, policies, items, history, recommender, report:
         keep = ["item_id"] + [c for c in spec.catalog_columns() + list(_LIVE) if c in catalog.columns]
         catalog[list(dict.fromkeys(keep))].to_parquet(folder / "catalog.parquet", index=False)
     if loaded is not None:
-        np.savez(folder / "history.npz", clicked=loaded.clicked, ignored=loaded.ignored,
-                 as_of=np.int64(loaded.as_of if loaded.as_of is not None else -1))
+        write_history(loaded, folder / "history.npz")
+
+
+def history_for_rules(history, spec, *, timezone=None, report=None) -> History:
+    """The history the rules need: a digest of ``threefold history`` checked against the rules' cap, or a log read.
+
+    Raises
+    ------
+    PolicyError
+        A digest made for another frequency cap than the rules'.
+    """
+    if not is_history_digest(history):
+        return read_history(history, cap_shown=spec.cap_shown, cap_days=spec.cap_days, timezone=timezone,
+                            report=report)
+    loaded = load_history(history)
+    made = (loaded.cap_shown, loaded.cap_days)
+    wanted = (spec.cap_shown, None if spec.cap_shown is None else float(spec.cap_days))
+    if made != wanted:
+        def cap(shown, days):
+            return "no frequency cap" if shown is None else f"a cap of {shown} impressions in {days:g} days"
+        raise PolicyError(f"{history}: this history digest was made for {cap(*made)}, the rules of {spec.source} "
+                          f"ask for {cap(*wanted)}; make it again with threefold history EVENTS --policies "
+                          f"{spec.source} --out {history}.")
+    return loaded
 
 
 def _zone(recommender) -> str | None:
@@ -111,11 +132,7 @@ def staged_policies(staging: Path, digest: str, recommender) -> PolicyTables:
         saved = json.loads((folder / "rules.json").read_text())
         spec = read_policies(saved["rules"])
         catalog = pd.read_parquet(folder / "catalog.parquet") if (folder / "catalog.parquet").is_file() else None
-        history = None
-        if (folder / "history.npz").is_file():
-            arrays = np.load(folder / "history.npz")
-            as_of = int(arrays["as_of"])
-            history = History(clicked=arrays["clicked"], ignored=arrays["ignored"], as_of=None if as_of < 0 else as_of)
+        history = load_history(folder / "history.npz") if (folder / "history.npz").is_file() else None
         _COMPILED.clear()
         _COMPILED[key] = compile_policies(spec, catalog, model_items=recommender.item_labels, history=history)
     return _COMPILED[key]

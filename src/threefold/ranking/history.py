@@ -12,16 +12,23 @@
 Memory: one pass per chunk of ``chunk_rows`` rows; the state is 16 bytes per
 distinct pair shown in the window (key and count) plus 8 per clicked pair, each
 chunk reduced to its distinct keys and merged into the table once the pending
-chunks outgrow it (so the merging costs O(n log n) overall): a 30-day log of
-10⁸ rows needs its distinct pairs, not its rows. Without ``as_of`` the window ends at the log's last event, found by a
-first pass over the timestamps. Rows the event reader drops (missing ids,
-unparseable times, unknown events, repeats) are skipped and counted.
+chunks outgrow it (so the merging costs O(n log n) overall), and the row hashes
+of the window's impressions (exact repeats of an impression row are counted
+once; a repeated click changes neither set, so click rows and rows outside the
+window are not hashed): a 30-day log of 10⁸ rows needs its distinct pairs and
+its last ``cap_days`` of impressions, not its rows. Without ``as_of`` the
+window ends at the latest readable timestamp of the log, found by a first pass
+that reads the timestamp column alone. Rows the event reader drops (missing
+ids, unparseable times, unknown events, repeated window impressions) are
+skipped and counted.
 """
 
 from __future__ import annotations
 
 import os
+import zipfile
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -31,9 +38,9 @@ from threefold.data._eventscan import EVENT_VALUES, scan_events
 from threefold.data._hashing import combine, hash_strings
 from threefold.data._logreader import open_source
 from threefold.data.events import require_columns
-from threefold.data.timestamps import check_timezone
+from threefold.data.timestamps import check_timezone, parse_timestamps
 
-__all__ = ["History", "read_history", "pair_keys"]
+__all__ = ["History", "read_history", "pair_keys", "write_history", "load_history", "is_history_digest"]
 
 _DAY = 86_400
 _CLICK = EVENT_VALUES.index("click")
@@ -48,6 +55,8 @@ class History:
     as_of: int | None = None
     rows: int = 0
     skipped: int = 0
+    cap_shown: int | None = None
+    cap_days: float | None = None
 
     @staticmethod
     def member(keys: np.ndarray, sorted_keys: np.ndarray) -> np.ndarray:
@@ -65,7 +74,12 @@ def pair_keys(user_hash: np.ndarray, item_hash: np.ndarray) -> np.ndarray:
 
 def id_hashes(ids) -> np.ndarray:
     """Hashes of ids given as text, as the event reader computes them (uint64)."""
-    return hash_strings(pa.array([str(v) for v in ids], pa.string()))
+    values = np.asarray(ids, dtype=object)
+    try:  # text already: no copy through Python strings
+        text = pa.array(values, pa.string())
+    except (pa.ArrowInvalid, pa.ArrowTypeError):
+        text = pa.array([str(v) for v in values], pa.string())
+    return hash_strings(text)
 
 
 class _KeyCounts:
@@ -144,17 +158,18 @@ def read_history(path: str | os.PathLike, *, cap_shown: int | None = None, cap_d
         raise ValueError(f"{source.path}: the history log needs the column(s) {missing}; it has {source.columns}.")
     report = report or (lambda n: None)
     if cap_shown is not None and as_of is None:
-        latest = None
-        for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows):
-            kept = chunk.timestamp[chunk.drop == 0]
-            if kept.size:
-                latest = int(kept.max()) if latest is None else max(latest, int(kept.max()))
-        as_of = latest
+        as_of = _latest_timestamp(source, zone, chunk_rows)
     start = None if as_of is None else as_of - int(cap_days * _DAY)
     clicked, window_clicked = _KeySet(), _KeySet()
     shown = _KeyCounts()
     rows = skipped = 0
-    for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows):
+
+    def window_impressions(chunk) -> np.ndarray:
+        if cap_shown is None or start is None:
+            return np.zeros(chunk.n, bool)
+        return (chunk.event != _CLICK) & (chunk.timestamp >= start) & (chunk.timestamp <= as_of)
+
+    for chunk in scan_events(source, zone=zone, chunk_rows=chunk_rows, dedupe=window_impressions):
         keep = chunk.drop == 0
         rows += chunk.n
         skipped += int((~keep).sum())
@@ -174,4 +189,67 @@ def read_history(path: str | os.PathLike, *, cap_shown: int | None = None, cap_d
         candidates = shown_keys[shown_counts >= cap_shown]
         ignored = candidates[~History.member(candidates, window_clicked)]
     return History(clicked=clicked.astype(np.uint64), ignored=ignored.astype(np.uint64), as_of=as_of, rows=rows,
-                   skipped=skipped)
+                   skipped=skipped, cap_shown=cap_shown, cap_days=None if cap_shown is None else float(cap_days))
+
+
+def _latest_timestamp(source, zone, chunk_rows: int) -> int | None:
+    """Latest readable timestamp of the log (epoch seconds; None if it has none), from its timestamp column alone."""
+    latest = None
+    for _, table in source.iter_tables(chunk_rows, columns=["timestamp"]):
+        parsed = parse_timestamps(table.column("timestamp"), zone)
+        seconds = parsed.seconds[parsed.valid]
+        if seconds.size:
+            latest = int(seconds.max()) if latest is None else max(latest, int(seconds.max()))
+    return latest
+
+
+_FORMAT = "threefold history digest 1"
+
+
+def write_history(history: History, path: str | os.PathLike) -> Path:
+    """Save a history to ``path`` (an ``.npz`` of plain arrays, no pickles; written to a temporary file, then renamed).
+
+    A digest made once (``threefold history``) serves every scoring job until
+    the log moves on: reading a 10⁸-row log costs a minute, loading its digest
+    well under a second.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    temporary = path.with_name(f".{path.name}.tmp")
+    with open(temporary, "wb") as handle:
+        np.savez(handle, format=np.array(_FORMAT), clicked=history.clicked, ignored=history.ignored,
+                 as_of=np.int64(-1 if history.as_of is None else history.as_of), rows=np.int64(history.rows),
+                 skipped=np.int64(history.skipped), cap_shown=np.int64(history.cap_shown or 0),
+                 cap_days=np.float64(history.cap_days or 0.0))
+    os.replace(temporary, path)
+    return path
+
+
+def is_history_digest(path: str | os.PathLike) -> bool:
+    """Whether ``path`` is a file that starts like a digest of :func:`write_history` (a zip archive)."""
+    p = Path(path)
+    if not p.is_file():
+        return False
+    with open(p, "rb") as handle:
+        return handle.read(4) == b"PK\x03\x04"
+
+
+def load_history(path: str | os.PathLike) -> History:
+    """Read a digest of :func:`write_history`.
+
+    Raises
+    ------
+    ValueError
+        If the file is not such a digest (named in the message).
+    """
+    try:
+        with np.load(Path(path), allow_pickle=False) as arrays:
+            if "format" not in arrays.files or str(arrays["format"]) != _FORMAT:
+                raise ValueError(f"{path}: not a history digest of threefold history ({_FORMAT!r} expected).")
+            as_of, shown = int(arrays["as_of"]), int(arrays["cap_shown"])
+            return History(clicked=arrays["clicked"].astype(np.uint64), ignored=arrays["ignored"].astype(np.uint64),
+                           as_of=None if as_of < 0 else as_of, rows=int(arrays["rows"]),
+                           skipped=int(arrays["skipped"]), cap_shown=shown or None,
+                           cap_days=float(arrays["cap_days"]) if shown else None)
+    except (OSError, EOFError, KeyError, zipfile.BadZipFile) as error:
+        raise ValueError(f"{path}: not a readable history digest ({error}).") from None

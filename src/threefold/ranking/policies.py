@@ -37,6 +37,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from threefold.data._hashing import HashSet
 from threefold.ranking._mmr_kernel import greedy_lists
 from threefold.ranking.history import History, id_hashes, pair_keys
 from threefold.ranking.policy_spec import ListPolicies, PolicyError, check_policies_against_catalog
@@ -94,6 +95,9 @@ class PolicyTables:
         Live interval of each pin from the catalog's ``published_at`` /
         ``expires_at`` (open where the catalog gives none).
     history : History or None
+    clicked_set, ignored_set : HashSet or None
+        The history's pair keys in hash sets (a lookup costs one probe, where a
+        search of the sorted keys costs log n cache misses).
     """
 
     policies: ListPolicies
@@ -108,6 +112,8 @@ class PolicyTables:
     pin_published: np.ndarray
     pin_expires: np.ndarray
     history: History | None = None
+    clicked_set: HashSet | None = None
+    ignored_set: HashSet | None = None
 
     def positions(self, labels) -> np.ndarray:
         """Universe position of each item id (-1 for ids the tables do not know)."""
@@ -187,7 +193,12 @@ def compile_policies(policies: ListPolicies, catalog: pd.DataFrame | None = None
     partial = PolicyTables(reconsumable=np.zeros(n, bool), **tables)
     reconsumable = (partial.item_match(policies.reconsumable, np.arange(n)) if policies.reconsumable
                     else np.zeros(n, bool))
-    return PolicyTables(reconsumable=reconsumable, **tables)
+    sets = {}
+    if history is not None:
+        for name in ("clicked", "ignored"):
+            sets[f"{name}_set"] = HashSet()
+            sets[f"{name}_set"].add(getattr(history, name))
+    return PolicyTables(reconsumable=reconsumable, **tables, **sets)
 
 
 def _request_match(when, request_levels: dict, q: int) -> np.ndarray:
@@ -296,11 +307,12 @@ def apply_policies(tables: PolicyTables, *, universe: np.ndarray, codes: np.ndar
             demote = np.maximum(demote, np.where(hit & keep, g.places, 0))
     history = tables.history
     if history is not None and (policies.consumed or policies.cap_shown is not None):
-        keys = pair_keys(np.broadcast_to(np.asarray(user_hash, np.uint64)[:, None], (q, p)), item_hash)
+        keys = pair_keys(np.broadcast_to(np.asarray(user_hash, np.uint64)[:, None], (q, p)), item_hash).ravel()
         if policies.consumed:
-            remove("repetition: consumed", History.member(keys, history.clicked) & ~(known & tables.reconsumable[at]))
+            seen = tables.clicked_set.contains(keys).reshape(q, p)
+            remove("repetition: consumed", seen & ~(known & tables.reconsumable[at]))
         if policies.cap_shown is not None:
-            remove("repetition: cap", History.member(keys, history.ignored))
+            remove("repetition: cap", tables.ignored_set.contains(keys).reshape(q, p))
     kmax = int(lengths.max()) if q else 0
     length = min(p, kmax + policies.max_places())
     plain = _compact(np.where(keep, np.arange(p)[None, :], -1))[:, :length]
