@@ -748,6 +748,9 @@ def _demo_score(out: Path, log_dir: Path, report, store, site):
 
 def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
     """The demo's experiment config: last two days for test, the two days before for validation."""
+    import tomllib
+
+    from threefold.demo.policies import demo_rules
     from threefold.pipeline.config import to_toml
 
     end = int(site.events["timestamp"].max())
@@ -772,6 +775,7 @@ def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
             "tucker": {"method": "implicit_tucker", "rank": [8, 8, 3, 2, 2], "reg": 0.1, "max_sweeps": 5,
                        "random_state": 1},
         },
+        "policies": tomllib.loads(demo_rules(site)),  # each model is also measured after the editorial rules
     }
     path = out / "demo.toml"
     path.write_text(to_toml(sections))

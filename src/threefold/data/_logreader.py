@@ -32,7 +32,7 @@ import pyarrow.csv as pcsv
 import pyarrow.dataset as pds
 import pyarrow.parquet as pq
 
-__all__ = ["LogSource", "open_source", "ID_COLUMNS"]
+__all__ = ["LogSource", "open_source", "table_source", "ID_COLUMNS"]
 
 ID_COLUMNS = ("user_id", "item_id", "request_id")
 _CSV_BLOCK_BYTES = 8 << 20
@@ -45,14 +45,18 @@ class LogSource:
     Attributes
     ----------
     path : str
-    kind : {"csv", "parquet", "parquet-folder"}
+        The file or folder, or the name of an in-memory table (in messages).
+    kind : {"csv", "parquet", "parquet-folder", "table"}
     schema : pyarrow.Schema
         Column names and stored types (CSV: every column is a string).
+    table : pyarrow.Table or None
+        The rows of a ``"table"`` source (:func:`table_source`).
     """
 
     path: str
     kind: str
     schema: pa.Schema
+    table: pa.Table | None = None
 
     @property
     def columns(self) -> list[str]:
@@ -115,6 +119,8 @@ class LogSource:
             yield from reader
         elif self.kind == "parquet":
             yield from pq.ParquetFile(self.path).iter_batches(batch_size=chunk_rows, columns=names)
+        elif self.kind == "table":
+            yield from self.table.select(names).to_batches(max_chunksize=chunk_rows)
         else:
             dataset = _dataset(self.path)
             for fragment in sorted(dataset.get_fragments(), key=lambda f: f.path):
@@ -205,6 +211,12 @@ def _ids_as_text(table: pa.Table) -> pa.Table:
             if not pa.types.is_string(column.type):
                 table = table.set_column(i, name, column.cast(pa.string()))
     return table
+
+
+def table_source(frame, name: str = "the events") -> LogSource:
+    """A log already in memory (a DataFrame or an Arrow table), read as a file would be."""
+    table = frame if isinstance(frame, pa.Table) else pa.Table.from_pandas(frame, preserve_index=False)
+    return LogSource(name, "table", table.schema, table)
 
 
 def open_source(path: str | os.PathLike) -> LogSource:

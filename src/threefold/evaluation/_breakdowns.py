@@ -20,12 +20,14 @@ from threefold.evaluation.queries import QuerySet, catalog_times
 from threefold.core.vocabulary import UNKNOWN
 
 
-def rank_block(fn, local: np.ndarray, mask: np.ndarray, k: int, name: str) -> np.ndarray:
+def rank_block(fn, local: np.ndarray, mask: np.ndarray, k: int, name: str, *, with_scores: bool = False):
     """Top-k of one block, asserting that the model ranked exactly the candidates.
 
     Only the items that are a candidate of some query of the block are scored
     (``fn(rows, items)``), in increasing index order, so the tie rule (lower
     item index first) is unchanged; with news catalogs most items are not live.
+    With ``with_scores`` also returns the score of each ranked entry (float64,
+    -inf for an empty slot), for the list policies.
     """
     cols = np.flatnonzero(mask.any(axis=0))
     if cols.size == mask.shape[1]:
@@ -35,6 +37,10 @@ def rank_block(fn, local: np.ndarray, mask: np.ndarray, k: int, name: str) -> np
         sub = mask[:, cols]
         scores = np.asarray(fn(local, cols))
     ranked = top_k(scores, k, None if sub.all() else sub)
+    picked = None
+    if with_scores:
+        picked = np.where(ranked >= 0, np.take_along_axis(np.asarray(scores, np.float64), np.maximum(ranked, 0), axis=1),
+                          -np.inf)
     if cols.size != mask.shape[1]:
         ranked = np.where(ranked >= 0, cols[np.maximum(ranked, 0)], -1)
     expected = np.minimum(mask.sum(axis=1), k)
@@ -43,7 +49,7 @@ def rank_block(fn, local: np.ndarray, mask: np.ndarray, k: int, name: str) -> np
     if not np.array_equal(valid.sum(axis=1), expected) or not mask[rows, ranked[valid]].all():
         raise AssertionError(f"Model {name!r} did not rank exactly the shared candidates "
                              "(every candidate needs a finite score).")
-    return ranked
+    return (ranked, picked) if with_scores else ranked
 
 
 def query_groups(queries: QuerySet, training_events: pd.DataFrame | None, activity_bins) -> list:

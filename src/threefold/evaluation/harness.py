@@ -39,6 +39,9 @@ from threefold.evaluation import _tables as tables
 from threefold.core.checks import check_choice, check_int, check_number
 from threefold.data.context import ContextSpec
 from threefold.evaluation.metrics import graded_ndcg, ranking_metrics
+from threefold.evaluation.policy_lists import SUFFIX, EvaluationPolicies, aspect_codes, prepare_policies
+from threefold.evaluation.set_metrics import alpha_ndcg, expected_clicks
+from threefold.ranking.policy_spec import ListPolicies
 from threefold.evaluation.queries import QuerySet, build_queries
 from threefold.core.scoring import Scorer
 from threefold.evaluation.rankers import ScorerRanker, as_ranker
@@ -185,6 +188,10 @@ class EvaluationOptions:
     n_resamples : int, default=1000
         Bootstrap resamples of every interval.
     random_state : int, default=0
+    aspect : str or None
+        Catalog column whose levels are the aspects of ``alpha_ndcg`` (α = 0.5,
+        Clarke et al. 2008); None: the column the list policies diversify on,
+        if any (``max_per``, or a catalog ``similarity``).
     """
 
     stage: str = "test"
@@ -200,6 +207,7 @@ class EvaluationOptions:
     sensitivity_users: int = 200
     n_resamples: int = 1000
     random_state: int = 0
+    aspect: str | None = None
 
     def __post_init__(self) -> None:
         owner = "EvaluationOptions"
@@ -237,16 +245,38 @@ class _Ranked:
     true_mass: np.ndarray
     ever: np.ndarray
     item_factors: np.ndarray | None
+    set_values: dict = field(default_factory=dict)  # name -> metric -> (q, len(ks)): alpha_ndcg, expected_clicks
+
+
+def _set_values(store: dict, q: int, ks, sel, result, clicked, gamma, aspect, ratios) -> None:
+    """α-NDCG and expected clicks of a block's lists (:mod:`threefold.evaluation.set_metrics`) into ``store``."""
+    def put(metric, j, values):
+        store.setdefault(metric, np.full((q, len(ks)), np.nan))[sel, j] = values
+
+    theta = None
+    if ratios is not None:  # examination relative to the first slot, the last known ratio beyond the estimate
+        theta = np.concatenate([ratios, np.full(max(0, max(ks) - ratios.size), ratios[-1] if ratios.size else 1.0)])
+    for j, k in enumerate(ks):
+        if aspect is not None:
+            put("alpha_ndcg", j, alpha_ndcg(result, clicked, aspect, k=k, alpha=0.5))
+        if theta is not None:
+            put("expected_clicks", j, expected_clicks(result[:, :k], clicked, theta))
+            if gamma is not None:
+                put("expected_clicks_true", j, expected_clicks(result[:, :k], gamma, theta))
 
 
 def _rank_everything(rankers: dict, queries: QuerySet, schedule: list, ks: tuple[int, ...], ratios,
-                     true_relevance, similarity_model: str | None) -> _Ranked:
-    """Top-K lists of every query by every model, block by block, and the truth-based gains."""
+                     true_relevance, similarity_model: str | None, policy: EvaluationPolicies | None = None,
+                     aspect: np.ndarray | None = None) -> _Ranked:
+    """Top-K lists of every query by every model (and after the policies), block by block, and the gains."""
     q, kmax, n_items = len(queries), max(ks), queries.n_items
     sim_name = similarity_model or next((n for n, r in rankers.items() if isinstance(r.fitted(), Scorer)), None)
-    ranked = {n: np.full((q, kmax), -1, dtype=np.int64) for n in rankers}
-    truth_ndcg = {n: np.full((q, len(ks)), np.nan) for n in rankers} if true_relevance else None
-    true_gain = {n: np.zeros((q, len(ks))) for n in rankers}
+    names = list(rankers) + ([n + SUFFIX for n in rankers] if policy is not None else [])
+    ranked = {n: np.full((q, kmax), -1, dtype=np.int64) for n in names}
+    truth_ndcg = {n: np.full((q, len(ks)), np.nan) for n in names} if true_relevance else None
+    true_gain = {n: np.zeros((q, len(ks))) for n in names}
+    sets = {n: {} for n in names}
+    with_sets = aspect is not None or (policy is not None and ratios is not None)
     true_mass = np.zeros(q)
     ever = np.zeros(n_items, dtype=bool)
     sim_factors = None
@@ -254,6 +284,11 @@ def _rank_everything(rankers: dict, queries: QuerySet, schedule: list, ks: tuple
     block = max(1, _BLOCK_CELLS // max(n_items, 1))
     for rows, step_rankers in schedule:
         fns = {n: bound(rows, r) for n, r in step_rankers.items()}
+        factors = getattr(fns[sim_name][0], "item_factors", None) if sim_name in fns else None
+        if policy is not None and factors is None and policy.tables.policies.mmr < 1.0 \
+                and policy.tables.policies.similarity == "factors":
+            raise ValueError(f"{policy.tables.policies.source}: MMR with similarity = \"factors\" needs a factor "
+                             "model in the evaluation (or similarity = a catalog column).")
         for start in range(0, rows.size, block):
             sel = rows[start:start + block]
             mask = queries.candidates.mask(sel)
@@ -261,17 +296,26 @@ def _rank_everything(rankers: dict, queries: QuerySet, schedule: list, ks: tuple
             gamma = _truth_block(true_relevance, queries, sel, mask) if true_relevance else None
             if gamma is not None:
                 true_mass[sel] = gamma.sum(axis=1)
+            clicked = (queries.relevant[sel].toarray() > 0).astype(np.float64) if with_sets else None
             for name, (fn, own_rows) in fns.items():
                 local = sel if own_rows is None else np.arange(start, start + sel.size)
-                ranked[name][sel] = result = parts.rank_block(fn, local, mask, kmax, name)
-                if gamma is not None:
-                    truth_ndcg[name][sel] = graded_ndcg(result, gamma, ks)
-                    if ratios is not None:
-                        true_gain[name][sel] = _true_gain(result, gamma, ratios, ks)
-        factors = getattr(fns[sim_name][0], "item_factors", None) if sim_name else None
+                if policy is None:
+                    lists = {name: parts.rank_block(fn, local, mask, kmax, name)}
+                else:  # the first K of the pool are the model's own list (same tie rule)
+                    pool, pool_scores = parts.rank_block(fn, local, mask, policy.pool, name, with_scores=True)
+                    lists = {name: pool[:, :kmax], name + SUFFIX: policy.lists(
+                        name + SUFFIX, pool, pool_scores, sel, queries.times, factors, kmax)}
+                for reported, result in lists.items():
+                    ranked[reported][sel] = result
+                    if gamma is not None:
+                        truth_ndcg[reported][sel] = graded_ndcg(result, gamma, ks)
+                        if ratios is not None:
+                            true_gain[reported][sel] = _true_gain(result, gamma, ratios, ks)
+                    if with_sets:
+                        _set_values(sets[reported], q, ks, sel, result, clicked, gamma, aspect, ratios)
         if factors is not None:
             sim_factors = factors.copy() if sim_factors is None else np.where(np.any(factors != 0, axis=1)[:, None], factors, sim_factors)
-    return _Ranked(ranked, truth_ndcg, true_gain, true_mass, ever, sim_factors)
+    return _Ranked(ranked, truth_ndcg, true_gain, true_mass, ever, sim_factors, sets)
 
 
 def _model_rows(name: str, ranked: _Ranked, queries: QuerySet, opts: EvaluationOptions, groups, pair_groups,
@@ -284,6 +328,7 @@ def _model_rows(name: str, ranked: _Ranked, queries: QuerySet, opts: EvaluationO
     arrays = {m: getattr(metrics, attr) for m, attr in ACCURACY_METRICS.items()}
     if ranked.truth_ndcg is not None:
         arrays["ndcg_true"] = ranked.truth_ndcg[name]
+    arrays.update(ranked.set_values.get(name, {}))
     for breakdown, level, mask in groups:
         for metric, values in arrays.items():
             for j, k in enumerate(ks):
@@ -310,15 +355,13 @@ def _model_rows(name: str, ranked: _Ranked, queries: QuerySet, opts: EvaluationO
     return rows_out, arrays
 
 
-def _comparisons(per_query: dict, baseline: str | None, ks, users, n_users, boot: dict) -> list[dict]:
-    """Paired comparison of every model with the baseline, per metric and K."""
+def _comparisons(per_query: dict, pairs: list[tuple[str, str]], ks, users, n_users, boot: dict) -> list[dict]:
+    """Paired comparison of each (model, baseline) pair, per metric and K (metrics both have)."""
     out = []
-    if baseline is None:
-        return out
-    for name, arrays in per_query.items():
-        if name == baseline:
-            continue
-        for metric, values in arrays.items():
+    for name, baseline in pairs:
+        for metric, values in per_query[name].items():
+            if metric not in per_query[baseline]:
+                continue
             for j, k in enumerate(ks):
                 result = tables.compare(values[:, j], per_query[baseline][metric][:, j], users, n_users, **boot)
                 if result is not None:
@@ -336,6 +379,7 @@ def evaluate(
     propensity=None,
     true_relevance: Callable[[pd.DataFrame, np.ndarray], np.ndarray] | None = None,
     schedule: Sequence[tuple[np.ndarray, Mapping[str, object]]] | None = None,
+    policies: ListPolicies | None = None,
     **settings,
 ) -> EvaluationResult:
     """Rank the queries with every model and compute the metrics, intervals and comparisons.
@@ -360,6 +404,10 @@ def evaluate(
     schedule : sequence of (rows, models) or None
         Which models rank which queries (the rolling protocol's steps); default
         every model ranks every query.
+    policies : ListPolicies or None
+        List policies: every model is also reported after them, as
+        ``"NAME + policies"``, paired with itself (:mod:`threefold.evaluation.policy_lists`);
+        what each rule did is in ``report["policies"]``.
     **settings
         Fields of :class:`EvaluationOptions` to set on ``options`` (``ks=(5, 10)``, ...).
 
@@ -377,7 +425,17 @@ def evaluate(
     q = len(queries)
     schedule = _check_schedule(schedule or [(np.arange(q), rankers)], q, set(rankers))
     ratios = None if propensity is None else np.asarray(getattr(propensity, "ratios", propensity), dtype=np.float64)
-    ranked = _rank_everything(rankers, queries, schedule, opts.ks, ratios, true_relevance, opts.similarity_model)
+    skipped = None
+    if policies is not None and policies.mmr < 1.0 and policies.similarity == "factors" and not any(
+            isinstance(r.fitted(), Scorer) for r in rankers.values()):
+        policies, skipped = None, ("MMR with similarity = \"factors\" needs a factor model among the evaluated "
+                                   "ones; none is, so no list was measured after the policies")
+    policy = None if policies is None else prepare_policies(policies, queries, catalog, training_events, max(opts.ks))
+    aspect_column = opts.aspect or (policies.aspect_column() if policies is not None else None)
+    aspect = None if aspect_column is None else aspect_codes(aspect_column, queries, catalog)
+    ranked = _rank_everything(rankers, queries, schedule, opts.ks, ratios, true_relevance, opts.similarity_model,
+                              policy, aspect)
+    names = list(ranked.lists)
 
     users, _ = pd.factorize(queries.users)
     users = users.astype(np.int64)
@@ -389,19 +447,26 @@ def evaluate(
     context_rows = parts.sensitivity_rows(schedule, queries, opts.ks, users, n_users, opts.sensitivity_users, boot)
     rows_out: list[dict] = []
     per_query: dict[str, dict[str, np.ndarray]] = {}
-    for name in rankers:
+    for name in names:
         rows, per_query[name] = _model_rows(name, ranked, queries, opts, groups, pair_groups, pairs, users, n_users,
                                             context_rows, catalog, training_events, ratios, true_relevance, boot)
         rows_out += rows
     if cold_share:
         for level in ("new_user", "new_item", "new_user_or_item"):
             stats = (cold_share[level], np.nan, np.nan, n_users)
-            rows_out += [tables.row(n, "click_share", None, stats, "training_status", level) for n in rankers]
-    comparisons = _comparisons(per_query, opts.baseline, opts.ks, users, n_users, boot)
+            rows_out += [tables.row(n, "click_share", None, stats, "training_status", level) for n in names]
+    pairs = [(n, opts.baseline) for n in names if opts.baseline is not None and n != opts.baseline]
+    pairs += [(n + SUFFIX, n) for n in rankers] if policy is not None else []  # each model with and without the rules
+    comparisons = _comparisons(per_query, pairs, opts.ks, users, n_users, boot)
     table = pd.DataFrame(rows_out, columns=tables.ROW_COLUMNS)
     table["k"] = table["k"].astype("Int64")
     report = {**queries.report, "queries": q, "users": n_users, "steps": len(schedule),
               "candidate_items": int(ranked.ever.sum())}
+    if policy is not None:
+        report["policies"] = {n: counts.rules for n, counts in policy.counts.items()}
+        report["policy_pool"] = policy.pool
+    if skipped:
+        report["policies_skipped"] = skipped
     return EvaluationResult(stage=opts.stage, table=table,
                             comparisons=pd.DataFrame(comparisons, columns=tables.COMPARISON_COLUMNS),
                             cold_share=cold_share, ranked=ranked.lists, report=report)
@@ -417,6 +482,7 @@ def evaluate_stage(
     build_options: Mapping | None = None,
     propensity="estimate",
     true_relevance: Callable[[pd.DataFrame, np.ndarray], np.ndarray] | None = None,
+    policies: ListPolicies | None = None,
     **settings,
 ) -> EvaluationResult:
     """Evaluate fitted models on one stage of a split.
@@ -445,6 +511,8 @@ def evaluate_stage(
         request ids (else no click estimates).
     true_relevance : callable or None
         See :func:`evaluate`.
+    policies : ListPolicies or None
+        See :func:`evaluate` (repetition reads the stage's training events).
     **settings
         Fields of :class:`EvaluationOptions` to set on ``options``.
 
@@ -473,7 +541,7 @@ def evaluate_stage(
                                                     build_options=build_options)
         extra.update(rolling_report)
     result = evaluate(models, queries, opts, training_events=stage.train, catalog=catalog, propensity=propensity,
-                      true_relevance=true_relevance, schedule=schedule)
+                      true_relevance=true_relevance, schedule=schedule, policies=policies)
     result.report.update(extra, dropped_straddling_requests=stage.dropped_requests)
     return result
 

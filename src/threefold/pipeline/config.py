@@ -115,7 +115,7 @@ _SECTIONS: dict[str, dict[str, tuple[Rule, object]]] = {
                    "protocol": (_choice("rolling", "static"), _EVAL.protocol), "step": (_duration, _EVAL.step),
                    "n_resamples": (_int(low=1), _EVAL.n_resamples), "random_state": (_SEED, _EVAL.random_state),
                    "propensity_clip": (_float(low=1.0), _EVAL.propensity_clip),
-                   "sensitivity_users": (_int(low=1), _EVAL.sensitivity_users)},
+                   "sensitivity_users": (_int(low=1), _EVAL.sensitivity_users), "aspect": (_STR, _EVAL.aspect)},
     "select": {"context_ranks": (_list(_int(low=1), "ints", 1), [4, 8]), "metric": (_metric, "ndcg"),
                "k": (_int(low=1), 10), "candidates": (_choice("eligible", "shown"), "shown")},
     "sweep": {"model": (_STR, None), "search": (_choice("grid", "random"), "grid"), "n_trials": (_int(low=1), None),
@@ -155,6 +155,13 @@ class ExperimentConfig:
     def weighting(self) -> FeedbackWeighting:
         """The :class:`FeedbackWeighting` of the ``[weighting]`` section."""
         return FeedbackWeighting(**self.sections["weighting"])
+
+    def policies(self):
+        """The :class:`~threefold.ranking.policy_spec.ListPolicies` of the ``[policies]`` table, or None."""
+        from threefold.ranking.policy_spec import read_policies
+
+        raw = self.sections.get("policies")
+        return None if raw is None else read_policies(raw, name=f"{self.source}: [policies]")
 
     def contexts(self) -> list:
         """The context specifications of ``[build] contexts``."""
@@ -257,7 +264,7 @@ def parse_overrides(items: Sequence[str]) -> dict[str, object]:
 def parse_config(raw: Mapping, *, source: str = "<config>", base: Path | None = None) -> ExperimentConfig:
     """Validate a config given as a nested dict (as read from TOML); see :func:`load_config`."""
     raw = copy.deepcopy(dict(raw))
-    _reject_unknown(raw.keys(), list(_SECTIONS) + ["models"], "the config", source)
+    _reject_unknown(raw.keys(), list(_SECTIONS) + ["models", "policies"], "the config", source)
     for section in _REQUIRED_SECTIONS:
         if section not in raw:
             raise ConfigError(f"{source}: the config needs a [{section}] section.")
@@ -275,6 +282,16 @@ def parse_config(raw: Mapping, *, source: str = "<config>", base: Path | None = 
     out["experiment"]["tags"] = {str(k): str(v) for k, v in out["experiment"]["tags"].items()}
     _check_cross_section(out, source)
     out["models"] = _check_models(raw["models"], source)
+    if "policies" in raw:  # the rules' own syntax is checked now; their columns once the catalog is read
+        from threefold.ranking.policy_spec import PolicyError, read_policies
+
+        if not isinstance(raw["policies"], dict):
+            raise ConfigError(f"{source}: [policies] must be a table (docs/policies.md), got {raw['policies']!r}.")
+        try:
+            read_policies(raw["policies"], name=f"{source}: [policies]")
+        except PolicyError as error:
+            raise ConfigError(str(error)) from None
+        out["policies"] = raw["policies"]
     evaluation, sweep = out["evaluation"], out["sweep"]
     if evaluation["baseline"] is not None and evaluation["baseline"] not in out["models"]:
         raise ConfigError(f"{source}: [evaluation] baseline {evaluation['baseline']!r} is not a model; "

@@ -25,11 +25,15 @@ import numpy as np
 import pandas as pd
 
 from threefold.core.progress import progress
+from threefold.evaluation.policy_lists import SUFFIX as POLICY_SUFFIX
 from threefold.models.registry import FACTOR_METHODS, param_table
 from threefold.pipeline.config import ExperimentConfig
 from threefold.pipeline.select import auto_models, select_and_log
 from threefold.pipeline.stages import Dataset, StageData, TruthSource, load_dataset, make_estimator, prepare_stage
 from threefold.core.scoring import Scorer
+
+#: Prefix of a run's metrics measured on its lists after the config's ``[policies]``.
+POLICY_PREFIX = "with_policies_"
 
 __all__ = ["Dataset", "StageData", "FitOutcome", "ModelRun", "TrainReport", "load_dataset", "prepare_stage",
            "make_estimator", "fit_and_evaluate", "train", "key_metric_names", "TruthSource"]
@@ -51,8 +55,11 @@ class FitOutcome:
 
 def fit_and_evaluate(config: ExperimentConfig, data: StageData, dataset: Dataset, name: str, *,
                      callback: Callable | None = None, with_baseline: bool = True,
-                     fitted_baseline=None) -> FitOutcome:
+                     fitted_baseline=None, with_policies: bool = True) -> FitOutcome:
     """Fit the model ``name`` on the stage's tensor and evaluate it (with the baseline beside it).
+
+    With ``with_policies`` and a ``[policies]`` table, the evaluation also
+    measures every model's lists after the rules (``"NAME + policies"``).
 
     Factor models are fitted here; event baselines (popularity, random) are
     fitted by the evaluation on the stage's events, as of each request. A
@@ -86,11 +93,30 @@ def fit_and_evaluate(config: ExperimentConfig, data: StageData, dataset: Dataset
             models[baseline] = make_estimator(base_spec)
     options = evaluation_options(config, baseline=baseline if baseline in models and len(models) > 1 else None)
     evaluation = evaluate_stage(data.stage, models, data.contexts, options, catalog=dataset.items,
-                                build_options=data.build_options, true_relevance=dataset.true_relevance)
+                                build_options=data.build_options, true_relevance=dataset.true_relevance,
+                                policies=config.policies() if with_policies else None)
     from threefold.tracking.runlog import peak_memory_mb
 
     return FitOutcome(name=name, estimator=estimator, evaluation=evaluation, seconds=seconds,
                       peak_memory_mb=peak_memory_mb())
+
+
+def check_config_policies(config: ExperimentConfig, dataset: Dataset) -> None:
+    """The ``[policies]`` rules against the catalog, before any model is fitted (a config error otherwise found late).
+
+    Raises
+    ------
+    PolicyError
+        A rule naming a catalog column or level the items file does not have.
+    """
+    from threefold.ranking.policy_spec import check_policies_against_catalog
+
+    policies = config.policies()
+    if policies is not None:
+        build = config["build"]
+        levels = {"daypart": tuple(build["daypart_labels"])} if "daypart" in build["contexts"] else None
+        check_policies_against_catalog(policies, dataset.items, config["data"]["items"] or "the catalog (no items file)",
+                                       levels)
 
 
 def key_metric_names(config: ExperimentConfig) -> list[str]:
@@ -158,13 +184,16 @@ def log_outcome(store, run_id: str, outcome: FitOutcome, config: ExperimentConfi
 
     table = outcome.evaluation.table
     metrics = overall_metrics(table, outcome.name)
+    ruled = overall_metrics(table, outcome.name + POLICY_SUFFIX)  # the same lists after [policies]
+    metrics.update({f"{POLICY_PREFIX}{key}": value for key, value in ruled.items()})
     extra = {"wall_seconds": outcome.seconds, "peak_memory_mb": outcome.peak_memory_mb}
     if outcome.history:
         extra.update(n_sweeps=len(outcome.history) - 1, final_loss=outcome.history[-1].loss,
                      final_fit=outcome.history[-1].fit)
     log_metrics(store, run_id, {**metrics, **extra})
     client = store.client
-    store.call(client.log_text, run_id, table[table["model"] == outcome.name].to_csv(index=False), "evaluation/metrics.csv")
+    own = table["model"].isin([outcome.name, outcome.name + POLICY_SUFFIX])
+    store.call(client.log_text, run_id, table[own].to_csv(index=False), "evaluation/metrics.csv")
     if not outcome.evaluation.comparisons.empty:
         store.call(client.log_text, run_id, outcome.evaluation.comparisons.to_csv(index=False),
                    "evaluation/comparisons.csv")
@@ -249,6 +278,7 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
     dataset = load_dataset(config, truth)
     for message in dataset.warnings:
         echo(f"warning: {message}")
+    check_config_policies(config, dataset)
     stage_name = config["evaluation"]["stage"]
     experiment_id = store.experiment_id(config["experiment"]["name"])
     keys = key_metric_names(config)
@@ -364,10 +394,35 @@ def summary_text(report: TrainReport) -> str:
     lines += ["  ".join(str(c).ljust(w) for c, w in zip(r, widths)) for r in rows]
     lines.append(f"parent run {report.parent_run_id}; intervals are 95% percentile bootstrap over users")
     lines += _paired_lines(report)
+    lines += _policy_lines(report)
     if report.finals:
         lines.append("deployable models, refitted on every event (the figures above are their evaluated runs'):")
         lines += [f"  {run.name}: run {run.run_id}  {run.model_uri}" for run in report.finals]
     return "\n".join(lines)
+
+
+def _policy_lines(report: TrainReport) -> list[str]:
+    """Per model: each key metric and the set measures with and without [policies], paired per user."""
+    out = []
+    k = max((int(key.rpartition("_at_")[2]) for key in report.key_metrics if key.rpartition("_at_")[2].isdigit()),
+            default=10)
+    keys = list(dict.fromkeys(report.key_metrics + [f"{m}_at_{k}" for m in ("alpha_ndcg", "expected_clicks")]))
+    for run in report.runs:
+        c = run.comparisons
+        if c is None or c.empty:
+            continue
+        mine = c[(c["model"] == run.name + POLICY_SUFFIX) & (c["baseline"] == run.name)]
+        for key in keys:
+            metric, _, at = key.rpartition("_at_")
+            row = mine[(mine["metric"] == metric) & (mine["k"] == int(at))]
+            if row.empty or key not in run.metrics:
+                continue
+            r = row.iloc[0]
+            out.append(f"  {run.name}: {key} {run.metrics[key]:.4f} -> {run.metrics.get(POLICY_PREFIX + key, float('nan')):.4f}"
+                       f"  {r['mean_difference']:+.4f} [{r['low']:+.4f}, {r['high']:+.4f}], p = {r['p_value']:.2g}")
+    if out:
+        out.insert(0, "with the list policies of [policies] (paired per user with the same model without them):")
+    return out
 
 
 def _paired_lines(report: TrainReport) -> list[str]:

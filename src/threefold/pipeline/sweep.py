@@ -134,7 +134,7 @@ def run_trial(sections: dict, source: str, model: str, truth=None) -> dict:
         if config.models[model].get("n_threads", 0) is None:
             config = config.with_overrides({f"models.{model}.n_threads": 1})  # one numba thread per worker
         dataset, data = _stage_data(config, truth)
-        outcome = fit_and_evaluate(config, data, dataset, model, with_baseline=False)
+        outcome = fit_and_evaluate(config, data, dataset, model, with_baseline=False, with_policies=False)
         table = outcome.evaluation.table
         return {"status": "finished", "stage": outcome.evaluation.stage,
                 "metrics": overall_metrics(table, model), "seconds": outcome.seconds,

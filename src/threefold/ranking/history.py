@@ -31,12 +31,13 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 
 from threefold.core.checks import check_int, check_number
 from threefold.data._eventscan import EVENT_VALUES, scan_events
 from threefold.data._hashing import combine, hash_strings
-from threefold.data._logreader import open_source
+from threefold.data._logreader import open_source, table_source
 from threefold.data.events import require_columns
 from threefold.data.timestamps import check_timezone, parse_timestamps
 
@@ -121,15 +122,15 @@ class _KeySet(_KeyCounts):
         return super().result()[0]
 
 
-def read_history(path: str | os.PathLike, *, cap_shown: int | None = None, cap_days: float = 7.0,
+def read_history(path, *, cap_shown: int | None = None, cap_days: float = 7.0,
                  as_of: int | None = None, timezone: str | None = None, chunk_rows: int = 1_000_000,
                  report=None) -> History:
     """Reduce an event log to the clicked and the ignored (user, item) pairs.
 
     Parameters
     ----------
-    path : path
-        Event log (CSV or Parquet) with ``user_id``, ``item_id``, ``timestamp``
+    path : path, DataFrame or pyarrow.Table
+        Event log (CSV or Parquet, or rows in memory) with ``user_id``, ``item_id``, ``timestamp``
         and ``event`` (``impression`` / ``click``; without the column every row
         is a click, as in training).
     cap_shown : int or None
@@ -152,7 +153,7 @@ def read_history(path: str | os.PathLike, *, cap_shown: int | None = None, cap_d
         cap_shown = check_int("cap_shown", cap_shown, low=1, owner="read_history")
         check_number("cap_days", cap_days, low=0.0, low_open=True, owner="read_history")
     zone = check_timezone(timezone)
-    source = open_source(path)
+    source = table_source(path, "the history events") if isinstance(path, (pd.DataFrame, pa.Table)) else open_source(path)
     missing = require_columns(source, ("user_id", "item_id", "timestamp"))
     if missing:
         raise ValueError(f"{source.path}: the history log needs the column(s) {missing}; it has {source.columns}.")

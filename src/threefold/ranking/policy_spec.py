@@ -122,6 +122,12 @@ class ListPolicies:
             names.append(self.max_per_column)
         return list(dict.fromkeys(names))
 
+    def aspect_column(self) -> str | None:
+        """The catalog column the diversity rules work on (``max_per``, else a catalog similarity), or None."""
+        if self.max_per_column is not None:
+            return self.max_per_column
+        return None if self.similarity == "factors" else self.similarity
+
     def request_columns(self) -> list[str]:
         """Request columns (or context modes) the guardrails condition on."""
         return list(dict.fromkeys(c for g in self.guardrails for c, _ in g.when))
@@ -159,13 +165,15 @@ def _unknown_keys(source: str, where: str, table: Mapping, allowed: set) -> None
         _fail(source, where, f"unknown key(s) {unknown}; allowed: {sorted(allowed)}")
 
 
-def read_policies(source: str | os.PathLike | Mapping) -> ListPolicies:
+def read_policies(source: str | os.PathLike | Mapping, *, name: str | None = None) -> ListPolicies:
     """Parse and check a policy file (TOML) or an already parsed table.
 
     Parameters
     ----------
     source : path or mapping
         A TOML file, or the mapping of a config's ``[policies]`` table.
+    name : str or None
+        How messages name a mapping (default ``"[policies]"``).
 
     Returns
     -------
@@ -177,7 +185,7 @@ def read_policies(source: str | os.PathLike | Mapping) -> ListPolicies:
         A malformed key or value, named with its table and key.
     """
     if isinstance(source, Mapping):
-        raw, name = dict(source), "[policies]"
+        raw, name = dict(source), name or "[policies]"
     else:
         path = Path(source)
         name = str(path)
