@@ -17,7 +17,7 @@ import pandas as pd
 import pytest
 
 from threefold.data.context import ColumnContext, Daypart
-from threefold.demo.simulate import ScenarioParameters, simulate_site
+from threefold.demo.simulate import ScenarioParameters, simulate_site, simulator_relevance
 from threefold.evaluation.harness import evaluate, evaluate_stage
 from threefold.evaluation.policy_lists import SUFFIX
 from threefold.evaluation.queries import build_queries
@@ -149,3 +149,27 @@ def test_the_summary_shows_each_model_with_and_without_the_policies():
     text = summary_text(TrainReport("p", runs, pd.DataFrame(), ["ndcg_at_10"], []))
     assert "with the list policies of [policies] (paired per user with the same model without them):" in text
     assert "cp: ndcg_at_10 0.2000 -> 0.1900  -0.0123 [-0.0200, -0.0040], p = 0.003" in text
+
+
+def test_alpha_ndcg_true_is_the_set_measure_against_the_simulators_relevance(world):
+    site, queries = world["site"], world["queries"]
+    rules = read_policies({"diversity": {"max_per": {"column": "topic", "items": 1}}})
+    truth = simulator_relevance(site.truth)
+    result = evaluate({"cp": world["cp"]}, queries, catalog=site.items, policies=rules, true_relevance=truth,
+                      **OPTIONS)
+    labels = np.asarray(queries.items.labels, dtype=object)
+    mask = queries.candidates.mask(np.arange(len(queries)))
+    gamma = np.zeros(mask.shape)  # γ of every candidate, 0 elsewhere, computed row by row here
+    for r in range(len(queries)):
+        items = np.flatnonzero(mask[r])
+        request = queries.requests.iloc[[r] * items.size].reset_index(drop=True)
+        gamma[r, items] = truth(request, labels[items])
+    topic = site.items.set_index("item_id")["topic"].reindex(list(labels)).to_numpy()
+    aspect = pd.factorize(pd.Series(topic), sort=True)[0]
+    users = pd.Series(queries.users)
+    per_user = {n: pd.Series(alpha_ndcg(result.ranked[n], gamma, aspect, k=5)).groupby(users).mean()
+                for n in ("cp", "cp" + SUFFIX)}
+    c = result.comparisons
+    row = c[(c["model"] == "cp" + SUFFIX) & (c["metric"] == "alpha_ndcg_true")]
+    np.testing.assert_allclose(row["mean_difference"].iloc[0], float((per_user["cp" + SUFFIX] - per_user["cp"]).mean()),
+                               rtol=1e-9, atol=1e-12)

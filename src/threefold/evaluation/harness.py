@@ -259,6 +259,8 @@ def _set_values(store: dict, q: int, ks, sel, result, clicked, gamma, aspect, ra
     for j, k in enumerate(ks):
         if aspect is not None:
             put("alpha_ndcg", j, alpha_ndcg(result, clicked, aspect, k=k, alpha=0.5))
+            if gamma is not None:  # a request holds one or two clicks: the set shows best against the truth
+                put("alpha_ndcg_true", j, alpha_ndcg(result, gamma, aspect, k=k, alpha=0.5))
         if theta is not None:
             put("expected_clicks", j, expected_clicks(result[:, :k], clicked, theta))
             if gamma is not None:

@@ -406,7 +406,8 @@ def _policy_lines(report: TrainReport) -> list[str]:
     out = []
     k = max((int(key.rpartition("_at_")[2]) for key in report.key_metrics if key.rpartition("_at_")[2].isdigit()),
             default=10)
-    keys = list(dict.fromkeys(report.key_metrics + [f"{m}_at_{k}" for m in ("alpha_ndcg", "expected_clicks")]))
+    sets = ("alpha_ndcg", "alpha_ndcg_true", "expected_clicks", "expected_clicks_true")
+    keys = list(dict.fromkeys(report.key_metrics + [f"{m}_at_{k}" for m in sets]))
     for run in report.runs:
         c = run.comparisons
         if c is None or c.empty:

@@ -98,6 +98,8 @@ class PolicyTables:
     clicked_set, ignored_set : HashSet or None
         The history's pair keys in hash sets (a lookup costs one probe, where a
         search of the sorted keys costs log n cache misses).
+    guardrail_items : tuple of ndarray of shape (n_universe,), bool
+        The items each guardrail matches, in rule order (one gather per pool).
     """
 
     policies: ListPolicies
@@ -114,6 +116,7 @@ class PolicyTables:
     history: History | None = None
     clicked_set: HashSet | None = None
     ignored_set: HashSet | None = None
+    guardrail_items: tuple = ()
 
     def positions(self, labels) -> np.ndarray:
         """Universe position of each item id (-1 for ids the tables do not know)."""
@@ -198,7 +201,8 @@ def compile_policies(policies: ListPolicies, catalog: pd.DataFrame | None = None
         for name in ("clicked", "ignored"):
             sets[f"{name}_set"] = HashSet()
             sets[f"{name}_set"].add(getattr(history, name))
-    return PolicyTables(reconsumable=reconsumable, **tables, **sets)
+    guardrail_items = tuple(partial.item_match(g.items, np.arange(n)) for g in policies.guardrails)
+    return PolicyTables(reconsumable=reconsumable, guardrail_items=guardrail_items, **tables, **sets)
 
 
 def _request_match(when, request_levels: dict, q: int) -> np.ndarray:
@@ -298,9 +302,9 @@ def apply_policies(tables: PolicyTables, *, universe: np.ndarray, codes: np.ndar
         remove("block", known & tables.blocked[at])
     demote = np.zeros((q, p), np.int64)
     fires_of = {}
-    for g in policies.guardrails:
+    for g, matched in zip(policies.guardrails, tables.guardrail_items):
         fires_of[g.name] = fires = _request_match(g.when, request_levels, q)
-        hit = fires[:, None] & tables.item_match(g.items, universe)
+        hit = fires[:, None] & known & matched[at]
         if g.action == "exclude":
             remove(f"guardrail {g.name!r}", hit)
         else:

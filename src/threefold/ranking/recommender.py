@@ -634,6 +634,8 @@ class Recommender:
         out = (np.concatenate([r, gone[0]]), np.concatenate([c + 1, gone[1]]), np.concatenate([new_code, gone[2]]),
                np.concatenate([new_label, gone[3]]), np.concatenate([new_score, gone[4]]),
                np.concatenate([is_pin, np.zeros(empty.size, bool)]))
+        if not empty.size:  # np.nonzero already gave (request, rank) order
+            return out
         order = np.lexsort((out[1], out[0]))
         return tuple(v[order] for v in out)
 
