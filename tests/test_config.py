@@ -172,3 +172,14 @@ def test_model_settings_are_checked_against_the_modes_before_any_data_is_read(tm
     config_path = write_config(tmp_path, text)
     with pytest.raises(ConfigError, match=message):
         load_config(config_path, overrides)
+
+
+def test_every_evaluation_key_reaches_the_evaluation_options(small):
+    from threefold.pipeline.config import evaluation_options
+
+    config = small.with_overrides({"evaluation.policy_ablation": True, "evaluation.aspect": "topic",
+                                   "evaluation.sensitivity_users": 7})
+    options = evaluation_options(config)
+    for key, value in config["evaluation"].items():
+        if key not in ("ks", "metrics"):  # ks gains the sweep's k; metrics are what summaries show
+            assert getattr(options, key) == value, key

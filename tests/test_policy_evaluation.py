@@ -173,3 +173,28 @@ def test_alpha_ndcg_true_is_the_set_measure_against_the_simulators_relevance(wor
     row = c[(c["model"] == "cp" + SUFFIX) & (c["metric"] == "alpha_ndcg_true")]
     np.testing.assert_allclose(row["mean_difference"].iloc[0], float((per_user["cp" + SUFFIX] - per_user["cp"]).mean()),
                                rtol=1e-9, atol=1e-12)
+
+
+def test_each_rule_alone_is_the_evaluation_with_that_rule_only(world):
+    site, queries = world["site"], world["queries"]
+    table = {"guardrail": [{"name": "grave", "when": {"page_tone": ["grave"]}, "items": {"tone": ["upbeat"]}}],
+             "diversity": {"mmr": 0.7, "similarity": "factors", "max_per": {"column": "topic", "items": 2}}}
+    both = evaluate({"cp": world["cp"]}, queries, catalog=site.items, policies=read_policies(table),
+                    policy_ablation=True, **OPTIONS)
+    alone = evaluate({"cp": world["cp"]}, queries, catalog=site.items,
+                     policies=read_policies({"diversity": table["diversity"]}), **OPTIONS)
+    np.testing.assert_array_equal(both.ranked["cp + only diversity"], alone.ranked["cp" + SUFFIX])
+    assert set(both.ranked) == {"cp", "cp" + SUFFIX, "cp + only guardrail 'grave'", "cp + only diversity"}
+    c = both.comparisons
+    assert set(c.loc[c["model"] == "cp + only guardrail 'grave'", "baseline"]) == {"cp"}
+    assert set(both.report["policies"]["cp + only guardrail 'grave'"]) == {"guardrail 'grave'"}
+
+
+def test_the_summary_shows_what_each_rule_alone_changes():
+    comparisons = pd.DataFrame({"model": ["cp + only diversity", "cp + only diversity"], "baseline": ["cp", "cp"],
+                                "metric": ["ndcg", "alpha_ndcg"], "k": [10, 10], "mean_difference": [-0.01, 0.02],
+                                "low": [-0.02, 0.01], "high": [-0.001, 0.03], "p_value": [0.01, 0.001]})
+    runs = [ModelRun("cp", "r1", {"ndcg_at_10": 0.2}, None, 1.0, comparisons=comparisons)]
+    text = summary_text(TrainReport("p", runs, pd.DataFrame(), ["ndcg_at_10"], []))
+    assert "each rule alone (paired per user with the model without rules):" in text
+    assert "cp, diversity alone: ndcg_at_10 -0.0100 [-0.0200, -0.0010]; alpha_ndcg_at_10 +0.0200 [+0.0100, +0.0300]" in text

@@ -765,7 +765,7 @@ def _write_demo_config(out: Path, log_dir: Path, site) -> Path:
         "weighting": {"alpha": 10.0, "w_skip": 2.0, "w0": 0.1},
         "split": {"cutoff": int(cutoff), "validation_window": "48h"},
         "evaluation": {"ks": [3, 5, 10], "baseline": "mf", "metrics": ["recall", "ndcg", "ndcg_true"],
-                       "n_resamples": 200, "random_state": 0},
+                       "n_resamples": 200, "random_state": 0, "policy_ablation": True},
         "models": {
             "popularity": {"method": "popularity", "window": "24h"},
             "mf": {"method": "cp", "structure": "user*item", "rank": 16, "reg": 0.1, "max_sweeps": 10,

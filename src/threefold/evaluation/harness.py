@@ -39,8 +39,8 @@ from threefold.evaluation import _tables as tables
 from threefold.core.checks import check_choice, check_int, check_number
 from threefold.data.context import ContextSpec
 from threefold.evaluation.metrics import graded_ndcg, ranking_metrics
-from threefold.evaluation.policy_lists import SUFFIX, EvaluationPolicies, aspect_codes, prepare_policies
-from threefold.evaluation.set_metrics import alpha_ndcg, expected_clicks
+from threefold.evaluation.policy_lists import aspect_codes, policy_variants
+from threefold.evaluation.set_metrics import alpha_ideal_dcg, alpha_ndcg, expected_clicks
 from threefold.ranking.policy_spec import ListPolicies
 from threefold.evaluation.queries import QuerySet, build_queries
 from threefold.core.scoring import Scorer
@@ -192,6 +192,9 @@ class EvaluationOptions:
         Catalog column whose levels are the aspects of ``alpha_ndcg`` (α = 0.5,
         Clarke et al. 2008); None: the column the list policies diversify on,
         if any (``max_per``, or a catalog ``similarity``).
+    policy_ablation : bool, default=False
+        With list policies, also measure every rule alone (``"NAME + only
+        RULE"``), each paired with ``NAME``: what each rule costs and buys.
     """
 
     stage: str = "test"
@@ -208,6 +211,7 @@ class EvaluationOptions:
     n_resamples: int = 1000
     random_state: int = 0
     aspect: str | None = None
+    policy_ablation: bool = False
 
     def __post_init__(self) -> None:
         owner = "EvaluationOptions"
@@ -248,7 +252,17 @@ class _Ranked:
     set_values: dict = field(default_factory=dict)  # name -> metric -> (q, len(ks)): alpha_ndcg, expected_clicks
 
 
-def _set_values(store: dict, q: int, ks, sel, result, clicked, gamma, aspect, ratios) -> None:
+def _alpha_ideals(ks, clicked, gamma, aspect) -> dict:
+    """The ideal α-DCG of a block per (relevance, K): one greedy ideal for every model and policy variant."""
+    if aspect is None:
+        return {}
+    out = {("clicked", k): alpha_ideal_dcg(clicked, aspect, k=k, alpha=0.5) for k in ks}
+    if gamma is not None:
+        out.update({("true", k): alpha_ideal_dcg(gamma, aspect, k=k, alpha=0.5) for k in ks})
+    return out
+
+
+def _set_values(store: dict, q: int, ks, sel, result, clicked, gamma, aspect, ratios, ideals: dict) -> None:
     """α-NDCG and expected clicks of a block's lists (:mod:`threefold.evaluation.set_metrics`) into ``store``."""
     def put(metric, j, values):
         store.setdefault(metric, np.full((q, len(ks)), np.nan))[sel, j] = values
@@ -258,9 +272,9 @@ def _set_values(store: dict, q: int, ks, sel, result, clicked, gamma, aspect, ra
         theta = np.concatenate([ratios, np.full(max(0, max(ks) - ratios.size), ratios[-1] if ratios.size else 1.0)])
     for j, k in enumerate(ks):
         if aspect is not None:
-            put("alpha_ndcg", j, alpha_ndcg(result, clicked, aspect, k=k, alpha=0.5))
+            put("alpha_ndcg", j, alpha_ndcg(result, clicked, aspect, k=k, alpha=0.5, ideal=ideals[("clicked", k)]))
             if gamma is not None:  # a request holds one or two clicks: the set shows best against the truth
-                put("alpha_ndcg_true", j, alpha_ndcg(result, gamma, aspect, k=k, alpha=0.5))
+                put("alpha_ndcg_true", j, alpha_ndcg(result, gamma, aspect, k=k, alpha=0.5, ideal=ideals[("true", k)]))
         if theta is not None:
             put("expected_clicks", j, expected_clicks(result[:, :k], clicked, theta))
             if gamma is not None:
@@ -268,17 +282,21 @@ def _set_values(store: dict, q: int, ks, sel, result, clicked, gamma, aspect, ra
 
 
 def _rank_everything(rankers: dict, queries: QuerySet, schedule: list, ks: tuple[int, ...], ratios,
-                     true_relevance, similarity_model: str | None, policy: EvaluationPolicies | None = None,
+                     true_relevance, similarity_model: str | None, variants: Sequence = (),
                      aspect: np.ndarray | None = None) -> _Ranked:
-    """Top-K lists of every query by every model (and after the policies), block by block, and the gains."""
+    """Top-K lists of every query by every model (and after each policy variant), block by block, and the gains.
+
+    ``variants``: (name suffix, :class:`EvaluationPolicies`) of :func:`policy_variants`.
+    """
     q, kmax, n_items = len(queries), max(ks), queries.n_items
     sim_name = similarity_model or next((n for n, r in rankers.items() if isinstance(r.fitted(), Scorer)), None)
-    names = list(rankers) + ([n + SUFFIX for n in rankers] if policy is not None else [])
+    names = list(rankers) + [n + suffix for suffix, _ in variants for n in rankers]
     ranked = {n: np.full((q, kmax), -1, dtype=np.int64) for n in names}
     truth_ndcg = {n: np.full((q, len(ks)), np.nan) for n in names} if true_relevance else None
     true_gain = {n: np.zeros((q, len(ks))) for n in names}
     sets = {n: {} for n in names}
-    with_sets = aspect is not None or (policy is not None and ratios is not None)
+    with_sets = aspect is not None or (bool(variants) and ratios is not None)
+    pool_width = max([kmax] + [v.pool for _, v in variants])
     true_mass = np.zeros(q)
     ever = np.zeros(n_items, dtype=bool)
     sim_factors = None
@@ -287,10 +305,10 @@ def _rank_everything(rankers: dict, queries: QuerySet, schedule: list, ks: tuple
     for rows, step_rankers in schedule:
         fns = {n: bound(rows, r) for n, r in step_rankers.items()}
         factors = getattr(fns[sim_name][0], "item_factors", None) if sim_name in fns else None
-        if policy is not None and factors is None and policy.tables.policies.mmr < 1.0 \
-                and policy.tables.policies.similarity == "factors":
-            raise ValueError(f"{policy.tables.policies.source}: MMR with similarity = \"factors\" needs a factor "
-                             "model in the evaluation (or similarity = a catalog column).")
+        for _, v in variants:
+            if factors is None and v.tables.policies.mmr < 1.0 and v.tables.policies.similarity == "factors":
+                raise ValueError(f"{v.tables.policies.source}: MMR with similarity = \"factors\" needs a factor "
+                                 "model in the evaluation (or similarity = a catalog column).")
         for start in range(0, rows.size, block):
             sel = rows[start:start + block]
             mask = queries.candidates.mask(sel)
@@ -299,14 +317,17 @@ def _rank_everything(rankers: dict, queries: QuerySet, schedule: list, ks: tuple
             if gamma is not None:
                 true_mass[sel] = gamma.sum(axis=1)
             clicked = (queries.relevant[sel].toarray() > 0).astype(np.float64) if with_sets else None
+            ideals = _alpha_ideals(ks, clicked, gamma, aspect) if with_sets else {}
             for name, (fn, own_rows) in fns.items():
                 local = sel if own_rows is None else np.arange(start, start + sel.size)
-                if policy is None:
+                if not variants:
                     lists = {name: parts.rank_block(fn, local, mask, kmax, name)}
-                else:  # the first K of the pool are the model's own list (same tie rule)
-                    pool, pool_scores = parts.rank_block(fn, local, mask, policy.pool, name, with_scores=True)
-                    lists = {name: pool[:, :kmax], name + SUFFIX: policy.lists(
-                        name + SUFFIX, pool, pool_scores, sel, queries.times, factors, kmax)}
+                else:  # the first K of the pool are the model's own list, its first P each variant's pool
+                    pool, pool_scores = parts.rank_block(fn, local, mask, pool_width, name, with_scores=True)
+                    lists = {name: pool[:, :kmax]}
+                    for suffix, v in variants:
+                        lists[name + suffix] = v.lists(name + suffix, pool[:, :v.pool], pool_scores[:, :v.pool], sel,
+                                                       queries.times, factors, kmax)
                 for reported, result in lists.items():
                     ranked[reported][sel] = result
                     if gamma is not None:
@@ -314,7 +335,7 @@ def _rank_everything(rankers: dict, queries: QuerySet, schedule: list, ks: tuple
                         if ratios is not None:
                             true_gain[reported][sel] = _true_gain(result, gamma, ratios, ks)
                     if with_sets:
-                        _set_values(sets[reported], q, ks, sel, result, clicked, gamma, aspect, ratios)
+                        _set_values(sets[reported], q, ks, sel, result, clicked, gamma, aspect, ratios, ideals)
         if factors is not None:
             sim_factors = factors.copy() if sim_factors is None else np.where(np.any(factors != 0, axis=1)[:, None], factors, sim_factors)
     return _Ranked(ranked, truth_ndcg, true_gain, true_mass, ever, sim_factors, sets)
@@ -357,14 +378,16 @@ def _model_rows(name: str, ranked: _Ranked, queries: QuerySet, opts: EvaluationO
     return rows_out, arrays
 
 
-def _comparisons(per_query: dict, pairs: list[tuple[str, str]], ks, users, n_users, boot: dict) -> list[dict]:
-    """Paired comparison of each (model, baseline) pair, per metric and K (metrics both have)."""
+def _comparisons(per_query: dict, pairs: list[tuple[str, str, bool]], ks, users, n_users, boot: dict) -> list[dict]:
+    """Paired comparison of each (model, baseline, largest K only) triple, per metric and K (metrics both have)."""
     out = []
-    for name, baseline in pairs:
+    for name, baseline, last_only in pairs:
         for metric, values in per_query[name].items():
             if metric not in per_query[baseline]:
                 continue
             for j, k in enumerate(ks):
+                if last_only and j < len(ks) - 1:
+                    continue
                 result = tables.compare(values[:, j], per_query[baseline][metric][:, j], users, n_users, **boot)
                 if result is not None:
                     out.append({"model": name, "baseline": baseline, "metric": metric, "k": k, **result})
@@ -432,11 +455,12 @@ def evaluate(
             isinstance(r.fitted(), Scorer) for r in rankers.values()):
         policies, skipped = None, ("MMR with similarity = \"factors\" needs a factor model among the evaluated "
                                    "ones; none is, so no list was measured after the policies")
-    policy = None if policies is None else prepare_policies(policies, queries, catalog, training_events, max(opts.ks))
+    variants = [] if policies is None else policy_variants(policies, queries, catalog, training_events, max(opts.ks),
+                                                           each_rule=opts.policy_ablation)
     aspect_column = opts.aspect or (policies.aspect_column() if policies is not None else None)
     aspect = None if aspect_column is None else aspect_codes(aspect_column, queries, catalog)
     ranked = _rank_everything(rankers, queries, schedule, opts.ks, ratios, true_relevance, opts.similarity_model,
-                              policy, aspect)
+                              variants, aspect)
     names = list(ranked.lists)
 
     users, _ = pd.factorize(queries.users)
@@ -450,23 +474,25 @@ def evaluate(
     rows_out: list[dict] = []
     per_query: dict[str, dict[str, np.ndarray]] = {}
     for name in names:
-        rows, per_query[name] = _model_rows(name, ranked, queries, opts, groups, pair_groups, pairs, users, n_users,
-                                            context_rows, catalog, training_events, ratios, true_relevance, boot)
+        ablated = any(name.endswith(suffix) for suffix, _ in variants[1:])  # a rule alone: overall rows only
+        rows, per_query[name] = _model_rows(name, ranked, queries, opts, groups[:1] if ablated else groups,
+                                            [] if ablated else pair_groups, pairs, users, n_users, context_rows,
+                                            catalog, training_events, ratios, true_relevance, boot)
         rows_out += rows
     if cold_share:
         for level in ("new_user", "new_item", "new_user_or_item"):
             stats = (cold_share[level], np.nan, np.nan, n_users)
             rows_out += [tables.row(n, "click_share", None, stats, "training_status", level) for n in names]
-    pairs = [(n, opts.baseline) for n in names if opts.baseline is not None and n != opts.baseline]
-    pairs += [(n + SUFFIX, n) for n in rankers] if policy is not None else []  # each model with and without the rules
+    pairs = [(n, opts.baseline, False) for n in rankers if opts.baseline is not None and n != opts.baseline]
+    pairs += [(n + suffix, n, i > 0) for i, (suffix, _) in enumerate(variants) for n in rankers]  # with / without
     comparisons = _comparisons(per_query, pairs, opts.ks, users, n_users, boot)
     table = pd.DataFrame(rows_out, columns=tables.ROW_COLUMNS)
     table["k"] = table["k"].astype("Int64")
     report = {**queries.report, "queries": q, "users": n_users, "steps": len(schedule),
               "candidate_items": int(ranked.ever.sum())}
-    if policy is not None:
-        report["policies"] = {n: counts.rules for n, counts in policy.counts.items()}
-        report["policy_pool"] = policy.pool
+    if variants:
+        report["policies"] = {n: counts.rules for _, v in variants for n, counts in v.counts.items()}
+        report["policy_pool"] = variants[0][1].pool
     if skipped:
         report["policies_skipped"] = skipped
     return EvaluationResult(stage=opts.stage, table=table,

@@ -35,7 +35,7 @@ from threefold.ranking.history import id_hashes, read_history
 from threefold.ranking.policies import PIN_BASE, PolicyCounts, PolicyTables, apply_policies, compile_policies, pool_size
 from threefold.ranking.policy_spec import ListPolicies
 
-__all__ = ["SUFFIX", "EvaluationPolicies", "prepare_policies", "aspect_codes"]
+__all__ = ["SUFFIX", "EvaluationPolicies", "prepare_policies", "policy_variants", "training_history", "aspect_codes"]
 
 #: Suffix of the name under which a model's lists after the policies are reported.
 SUFFIX = " + policies"
@@ -127,9 +127,17 @@ def _request_levels(policies: ListPolicies, queries) -> dict:
     return levels
 
 
+def training_history(policies: ListPolicies, training_events: pd.DataFrame | None):
+    """The history the repetition rules read in the evaluation: the training events (None when not needed)."""
+    if not policies.needs_history or training_events is None:
+        return None
+    columns = [c for c in ("user_id", "item_id", "timestamp", "event") if c in training_events.columns]
+    return read_history(training_events[columns], cap_shown=policies.cap_shown, cap_days=policies.cap_days)
+
+
 def prepare_policies(policies: ListPolicies, queries, catalog: pd.DataFrame | None,
-                     training_events: pd.DataFrame | None, k: int) -> EvaluationPolicies:
-    """Compile the rules for one query set (see the module docstring).
+                     training_events: pd.DataFrame | None, k: int, *, history=None) -> EvaluationPolicies:
+    """Compile the rules for one query set (see the module docstring); ``history``: one already read.
 
     Raises
     ------
@@ -139,10 +147,8 @@ def prepare_policies(policies: ListPolicies, queries, catalog: pd.DataFrame | No
     ValueError
         A guardrail on a column neither the events nor the context modes have.
     """
-    history = None
-    if policies.needs_history and training_events is not None:
-        columns = [c for c in ("user_id", "item_id", "timestamp", "event") if c in training_events.columns]
-        history = read_history(training_events[columns], cap_shown=policies.cap_shown, cap_days=policies.cap_days)
+    if history is None:
+        history = training_history(policies, training_events)
     labels = [str(v) for v in queries.items.labels]
     # context levels are checked with the config (a level absent from this window is no error)
     tables = compile_policies(policies, catalog, model_items=labels, history=history, catalog_name="the catalog")
@@ -153,6 +159,22 @@ def prepare_policies(policies: ListPolicies, queries, catalog: pd.DataFrame | No
     return EvaluationPolicies(tables=tables, pool=pool_size(policies, k), item_universe=universe,
                               item_hash=tables.item_hash[universe], pin_items=np.asarray(pin_items, np.int64),
                               request_levels=_request_levels(policies, queries), user_hash=id_hashes(users))
+
+
+def policy_variants(policies: ListPolicies, queries, catalog, training_events, k: int,
+                    each_rule: bool = False) -> list[tuple[str, EvaluationPolicies]]:
+    """(name suffix, compiled rules): all the rules (:data:`SUFFIX`), then with ``each_rule`` every rule alone.
+
+    A rule alone is reported as ``"NAME + only RULE"`` (:meth:`ListPolicies.each_rule`).
+    """
+    history = training_history(policies, training_events)
+    sets = [(SUFFIX, policies)]
+    rules = policies.each_rule() if each_rule else []
+    if len(rules) > 1:
+        sets += [(f" + only {label}", rules_alone) for label, rules_alone in rules]
+    return [(suffix, prepare_policies(rules_set, queries, catalog, training_events, k,
+                                      history=history if rules_set.needs_history else None))
+            for suffix, rules_set in sets]
 
 
 def aspect_codes(column: str, queries, catalog: pd.DataFrame | None) -> np.ndarray:

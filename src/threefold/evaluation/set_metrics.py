@@ -29,7 +29,7 @@ import numpy as np
 
 from threefold.core.checks import check_int, check_number
 
-__all__ = ["expected_clicks", "alpha_ndcg"]
+__all__ = ["expected_clicks", "alpha_ndcg", "alpha_ideal_dcg"]
 
 
 def _lists(ranked) -> np.ndarray:
@@ -69,7 +69,7 @@ def expected_clicks(ranked, click_probability, examination) -> np.ndarray:
     return (values * theta[None, :k]).sum(axis=1)
 
 
-def alpha_ndcg(ranked, relevance, aspect, *, k: int = 10, alpha: float = 0.5) -> np.ndarray:
+def alpha_ndcg(ranked, relevance, aspect, *, k: int = 10, alpha: float = 0.5, ideal=None) -> np.ndarray:
     """α-NDCG@k of every list (Clarke et al. 2008), one aspect per item.
 
     Parameters
@@ -82,53 +82,76 @@ def alpha_ndcg(ranked, relevance, aspect, *, k: int = 10, alpha: float = 0.5) ->
     k : int, default=10
     alpha : float, default=0.5
         In [0, 1]; 0 gives NDCG@k.
+    ideal : ndarray of shape (q,) or None
+        :func:`alpha_ideal_dcg` of the same relevance, aspect, k and α, when
+        many sets of lists are judged against one relevance (computed if None).
 
     Returns
     -------
     ndarray of shape (q,), float64
         NaN for a list whose user has no relevant item.
     """
-    k = check_int("k", k, low=1, owner="alpha_ndcg")
-    alpha = check_number("alpha", alpha, low=0.0, high=1.0, owner="alpha_ndcg")
+    k, alpha, rel, codes, n_aspects = _alpha_inputs(relevance, aspect, k, alpha)
     ranked = _lists(ranked)[:, :k]
-    rel = np.asarray(relevance, np.float64)
+    if ranked.shape[0] != rel.shape[0]:
+        raise ValueError(f"ranked has {ranked.shape[0]} lists and relevance {rel.shape[0]} rows.")
+    if ideal is None:
+        ideal = alpha_ideal_dcg(rel, aspect, k=k, alpha=alpha)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(ideal > 0, _alpha_dcg(ranked, rel, codes, n_aspects, alpha, k) / ideal, np.nan)
+
+
+def alpha_ideal_dcg(relevance, aspect, *, k: int = 10, alpha: float = 0.5) -> np.ndarray:
+    """The α-DCG@k of the ideal list of every row, built greedily as in Clarke et al. 2008 (section 4).
+
+    The exact ideal is NP-hard; the greedy one takes at each rank the item of
+    largest gain given the aspects already covered. Returns shape (q,), float64.
+    """
+    k, alpha, rel, codes, n_aspects = _alpha_inputs(relevance, aspect, k, alpha)
     q, n = rel.shape
-    if ranked.shape[0] != q:
-        raise ValueError(f"ranked has {ranked.shape[0]} lists and relevance {q} rows.")
-    aspect = np.asarray(aspect, np.int64)
-    if aspect.shape != (n,):
-        raise ValueError(f"aspect must have shape ({n},); got {aspect.shape}.")
-    if (rel < 0).any():
-        raise ValueError("relevance must be non-negative.")
-    # Items without an aspect get private aspect codes after the shared ones.
-    shared = int(aspect.max()) + 1 if (aspect >= 0).any() else 0
-    codes = np.where(aspect >= 0, aspect, shared + np.arange(n))
-    n_aspects = int(codes.max()) + 1 if n else 0
-    discount = 1.0 / np.log2(np.arange(2, k + 2))
     rows = np.arange(q)
-
-    def gains_of(lists: np.ndarray) -> np.ndarray:
-        collected = np.zeros((q, n_aspects))
-        dcg = np.zeros(q)
-        for j in range(lists.shape[1]):
-            item = lists[:, j]
-            ok = item >= 0
-            a = codes[np.maximum(item, 0)]
-            g = np.where(ok, rel[rows, np.maximum(item, 0)] * (1.0 - alpha) ** collected[rows, a], 0.0)
-            dcg += g * discount[j]
-            collected[rows[ok], a[ok]] += rel[rows[ok], item[ok]]
-        return dcg
-
     ideal_lists = np.full((q, min(k, n)), -1, np.int64)
     collected = np.zeros((q, n_aspects))
     available = rel > 0
-    for j in range(ideal_lists.shape[1]):  # greedy ideal (Clarke et al. 2008, section 4)
+    for j in range(ideal_lists.shape[1]):
         gain = np.where(available, rel * (1.0 - alpha) ** collected[:, codes], -np.inf)
         pick = gain.argmax(axis=1)
         ok = np.isfinite(gain[rows, pick])
         ideal_lists[ok, j] = pick[ok]
         available[rows[ok], pick[ok]] = False
         collected[rows[ok], codes[pick[ok]]] += rel[rows[ok], pick[ok]]
-    ideal = gains_of(ideal_lists)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(ideal > 0, gains_of(ranked) / ideal, np.nan)
+    return _alpha_dcg(ideal_lists, rel, codes, n_aspects, alpha, k)
+
+
+def _alpha_inputs(relevance, aspect, k, alpha):
+    """Checked k, α, relevance (q, n) and per-item aspect codes (items without one get private codes)."""
+    k = check_int("k", k, low=1, owner="alpha_ndcg")
+    alpha = check_number("alpha", alpha, low=0.0, high=1.0, owner="alpha_ndcg")
+    rel = np.asarray(relevance, np.float64)
+    n = rel.shape[1]
+    aspect = np.asarray(aspect, np.int64)
+    if aspect.shape != (n,):
+        raise ValueError(f"aspect must have shape ({n},); got {aspect.shape}.")
+    if (rel < 0).any():
+        raise ValueError("relevance must be non-negative.")
+    shared = int(aspect.max()) + 1 if (aspect >= 0).any() else 0
+    codes = np.where(aspect >= 0, aspect, shared + np.arange(n))
+    return k, alpha, rel, codes, (int(codes.max()) + 1 if n else 0)
+
+
+def _alpha_dcg(lists: np.ndarray, rel: np.ndarray, codes: np.ndarray, n_aspects: int, alpha: float,
+               k: int) -> np.ndarray:
+    """α-DCG of every list: gain rel · (1 − α)^(relevance already collected on the item's aspect), 1/log2(1+rank)."""
+    q = rel.shape[0]
+    rows = np.arange(q)
+    discount = 1.0 / np.log2(np.arange(2, k + 2))
+    collected = np.zeros((q, n_aspects))
+    dcg = np.zeros(q)
+    for j in range(lists.shape[1]):
+        item = lists[:, j]
+        ok = item >= 0
+        a = codes[np.maximum(item, 0)]
+        g = np.where(ok, rel[rows, np.maximum(item, 0)] * (1.0 - alpha) ** collected[rows, a], 0.0)
+        dcg += g * discount[j]
+        collected[rows[ok], a[ok]] += rel[rows[ok], item[ok]]
+    return dcg

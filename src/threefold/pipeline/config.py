@@ -115,7 +115,8 @@ _SECTIONS: dict[str, dict[str, tuple[Rule, object]]] = {
                    "protocol": (_choice("rolling", "static"), _EVAL.protocol), "step": (_duration, _EVAL.step),
                    "n_resamples": (_int(low=1), _EVAL.n_resamples), "random_state": (_SEED, _EVAL.random_state),
                    "propensity_clip": (_float(low=1.0), _EVAL.propensity_clip),
-                   "sensitivity_users": (_int(low=1), _EVAL.sensitivity_users), "aspect": (_STR, _EVAL.aspect)},
+                   "sensitivity_users": (_int(low=1), _EVAL.sensitivity_users), "aspect": (_STR, _EVAL.aspect),
+                   "policy_ablation": (_BOOL, _EVAL.policy_ablation)},
     "select": {"context_ranks": (_list(_int(low=1), "ints", 1), [4, 8]), "metric": (_metric, "ndcg"),
                "k": (_int(low=1), 10), "candidates": (_choice("eligible", "shown"), "shown")},
     "sweep": {"model": (_STR, None), "search": (_choice("grid", "random"), "grid"), "n_trials": (_int(low=1), None),
@@ -209,8 +210,7 @@ def evaluation_options(config: ExperimentConfig, **overrides) -> EvaluationOptio
     The list lengths include the sweep's ``k`` so that selection can read it.
     """
     ev = config["evaluation"]
-    settings = {key: ev[key] for key in ("stage", "baseline", "candidates", "protocol", "step", "n_resamples",
-                                          "random_state", "propensity_clip", "sensitivity_users")}
+    settings = {key: value for key, value in ev.items() if key not in ("ks", "metrics")}
     settings["ks"] = tuple(sorted(set(ev["ks"]) | {config["sweep"]["k"]}))
     return EvaluationOptions(**{**settings, **overrides})
 

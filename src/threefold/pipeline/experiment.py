@@ -423,6 +423,28 @@ def _policy_lines(report: TrainReport) -> list[str]:
                        f"  {r['mean_difference']:+.4f} [{r['low']:+.4f}, {r['high']:+.4f}], p = {r['p_value']:.2g}")
     if out:
         out.insert(0, "with the list policies of [policies] (paired per user with the same model without them):")
+    return out + _rule_lines(report, k)
+
+
+def _rule_lines(report: TrainReport, k: int) -> list[str]:
+    """With ``[evaluation] policy_ablation``: per model and rule, what the rule alone changes (paired per user)."""
+    out = []
+    wanted = [key.rpartition("_at_")[0] for key in report.key_metrics[-1:]] + ["alpha_ndcg_true", "alpha_ndcg"]
+    for run in report.runs:
+        c = run.comparisons
+        if c is None or c.empty:
+            continue
+        prefix = f"{run.name} + only "
+        alone = c[c["model"].str.startswith(prefix) & (c["baseline"] == run.name) & (c["k"] == k)]
+        metrics = [m for m in dict.fromkeys(wanted) if m in set(alone["metric"])][:2]
+        for model in dict.fromkeys(alone["model"]):
+            parts = []
+            for metric in metrics:
+                r = alone[(alone["model"] == model) & (alone["metric"] == metric)].iloc[0]
+                parts.append(f"{metric}_at_{k} {r['mean_difference']:+.4f} [{r['low']:+.4f}, {r['high']:+.4f}]")
+            out.append(f"  {run.name}, {model[len(prefix):]} alone: " + "; ".join(parts))
+    if out:
+        out.insert(0, "each rule alone (paired per user with the model without rules):")
     return out
 
 

@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import os
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Mapping
 
@@ -121,6 +121,25 @@ class ListPolicies:
         if self.max_per_column is not None:
             names.append(self.max_per_column)
         return list(dict.fromkeys(names))
+
+    def each_rule(self) -> list[tuple[str, "ListPolicies"]]:
+        """One policy set per rule, the others switched off (for measuring what each rule costs and buys).
+
+        The rules: every guardrail on its own, the block list with the pins,
+        repetition (consumed and the cap), diversity (MMR and ``max_per``).
+        """
+        none = replace(self, block=(), pins=(), guardrails=(), consumed=False, reconsumable=(), cap_shown=None,
+                       mmr=1.0, max_per_column=None, max_per=None)
+        out = [(f"guardrail {g.name!r}", replace(none, guardrails=(g,))) for g in self.guardrails]
+        if self.block or self.pins:
+            out.append(("block and pins", replace(none, block=self.block, pins=self.pins)))
+        if self.needs_history:
+            out.append(("repetition", replace(none, consumed=self.consumed, reconsumable=self.reconsumable,
+                                              cap_shown=self.cap_shown, cap_days=self.cap_days)))
+        if self.mmr < 1.0 or self.max_per is not None:
+            out.append(("diversity", replace(none, mmr=self.mmr, max_per_column=self.max_per_column,
+                                             max_per=self.max_per)))
+        return out
 
     def aspect_column(self) -> str | None:
         """The catalog column the diversity rules work on (``max_per``, else a catalog similarity), or None."""
