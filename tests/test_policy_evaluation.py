@@ -68,7 +68,10 @@ def test_the_model_itself_is_measured_exactly_as_without_policies(world):
     mine = ruled.table[ruled.table["model"] == "cp"].reset_index(drop=True)
     pd.testing.assert_frame_equal(mine[plain.table.columns], plain.table.reset_index(drop=True))
     assert (ruled.table["model"] == "cp" + SUFFIX).any()
-    assert ruled.report["policies"]["cp" + SUFFIX]["diversity: mmr"]["moved"] > 0
+    moved = ruled.report["policies"]["cp" + SUFFIX]["diversity: mmr"]["moved"]
+    assert moved > 0
+    assert f"what each list policy did for 'cp + policies':\n  diversity: mmr: fired in " in ruled.to_text()
+    assert f"moved {moved:,}" in ruled.to_text()
 
 
 def test_a_block_list_gives_the_full_sort_without_the_blocked_items(world):

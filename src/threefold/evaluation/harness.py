@@ -97,9 +97,14 @@ class EvaluationResult:
                  tables.text_table(self.table)]
         if not self.comparisons.empty:
             c = self.comparisons
-            c = c[c["metric"].isin(("recall", "ndcg", "ndcg_true")) & (c["k"] == c["k"].max())]
-            lines.append(f"paired comparison with {c['baseline'].iloc[0]} (per-user means, all K in .comparisons):")
+            c = c[c["metric"].isin(("recall", "ndcg", "ndcg_true", "alpha_ndcg", "alpha_ndcg_true"))
+                  & (c["k"] == c["k"].max())]
+            lines.append("paired comparisons, model against baseline (per-user means, all K in .comparisons):")
             lines.append(c.to_string(index=False, float_format=lambda x: f"{x:.4g}"))
+        for name, rules in self.report.get("policies", {}).items():
+            lines.append(f"what each list policy did for {name!r}:")
+            lines += [f"  {rule}: fired in {row['requests']:,} queries, removed {row['removed']:,}, moved {row['moved']:,}"
+                      for rule, row in rules.items()]
         if self.cold_share:
             lines.append("clicks unseen at training: " + ", ".join(f"{k} {v:.1%}" if isinstance(v, float) else f"{k} {v}"
                                                                    for k, v in self.cold_share.items()))
