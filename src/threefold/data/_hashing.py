@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from numba import njit
+from numba import njit, prange
 import pyarrow as pa
 import pyarrow.compute as pc
 
@@ -126,6 +126,14 @@ def _count(table: np.ndarray, counts: np.ndarray, minima: np.ndarray, keys: np.n
     return added
 
 
+@njit(cache=True, nogil=True, parallel=True)
+def _contains(table: np.ndarray, keys: np.ndarray, found: np.ndarray) -> None:
+    """``found[i]``: whether key i is in the table (read only, so the probes run in parallel)."""
+    for i in prange(keys.size):
+        key = keys[i] if keys[i] != 0 else np.uint64(1)
+        found[i] = table[_slot(table, key)] != 0
+
+
 @njit(cache=True, nogil=True)
 def _find(table: np.ndarray, keys: np.ndarray, found: np.ndarray, slots: np.ndarray) -> None:
     for i in range(keys.size):
@@ -179,7 +187,10 @@ class HashSet:
 
     def contains(self, keys: np.ndarray) -> np.ndarray:
         """Boolean mask of shape (n,): which keys are in the set."""
-        return self._lookup_slots(keys)[0]
+        keys = np.ascontiguousarray(keys, dtype=np.uint64)
+        found = np.empty(keys.size, dtype=np.bool_)
+        _contains(self.table, keys, found)
+        return found
 
     def mark_repeats(self, keys: np.ndarray) -> np.ndarray:
         """Insert keys in order; mask of those seen before (in the set or earlier in ``keys``)."""

@@ -629,7 +629,7 @@ class Recommender:
                 new_score[scored_pin] += self.item_bias[new_code[scored_pin]]
         new_score[is_pin & (new_code < 0)] = 0.0
         new_label = np.where(is_pin, pin_ids[j] if pin_ids.size else None, item_label[np.maximum(source, 0)])
-        empty = np.setdiff1d(np.arange(n), r)  # every candidate removed (or none to begin with): one empty row
+        empty = np.flatnonzero(np.bincount(r, minlength=n) == 0)  # every candidate removed (or none): one empty row
         gone = self._empty(empty)
         out = (np.concatenate([r, gone[0]]), np.concatenate([c + 1, gone[1]]), np.concatenate([new_code, gone[2]]),
                np.concatenate([new_label, gone[3]]), np.concatenate([new_score, gone[4]]),
