@@ -488,9 +488,9 @@ def evaluate(
         for level in ("new_user", "new_item", "new_user_or_item"):
             stats = (cold_share[level], np.nan, np.nan, n_users)
             rows_out += [tables.row(n, "click_share", None, stats, "training_status", level) for n in names]
-    pairs = [(n, opts.baseline, False) for n in rankers if opts.baseline is not None and n != opts.baseline]
-    pairs += [(n + suffix, n, i > 0) for i, (suffix, _) in enumerate(variants) for n in rankers]  # with / without
-    comparisons = _comparisons(per_query, pairs, opts.ks, users, n_users, boot)
+    compared = [(n, opts.baseline, False) for n in rankers if opts.baseline is not None and n != opts.baseline]
+    compared += [(n + suffix, n, i > 0) for i, (suffix, _) in enumerate(variants) for n in rankers]  # with / without
+    comparisons = _comparisons(per_query, compared, opts.ks, users, n_users, boot)
     table = pd.DataFrame(rows_out, columns=tables.ROW_COLUMNS)
     table["k"] = table["k"].astype("Int64")
     report = {**queries.report, "queries": q, "users": n_users, "steps": len(schedule),
