@@ -95,11 +95,12 @@ class EvaluationResult:
         """A readable summary: overall accuracy with intervals, the comparisons, the cold share."""
         lines = [f"stage: {self.stage}   queries: {self.report.get('queries')}   users: {self.report.get('users')}",
                  tables.text_table(self.table)]
-        if not self.comparisons.empty:
-            c = self.comparisons
-            c = c[c["metric"].isin(("recall", "ndcg", "ndcg_true", "alpha_ndcg", "alpha_ndcg_true"))
-                  & (c["k"] == c["k"].max())]
-            lines.append("paired comparisons, model against baseline (per-user means, all K in .comparisons):")
+        c = self.comparisons
+        c = c[c["metric"].isin(("recall", "ndcg", "ndcg_true", "alpha_ndcg", "alpha_ndcg_true"))
+              & (c["k"] == c["k"].max())]
+        if not c.empty:
+            against = ", ".join(dict.fromkeys(c["baseline"]))  # the baseline, and each model with the list policies
+            lines.append(f"paired comparison with {against} (per-user means, all K in .comparisons):")
             lines.append(c.to_string(index=False, float_format=lambda x: f"{x:.4g}"))
         for name, rules in self.report.get("policies", {}).items():
             lines.append(f"what each list policy did for {name!r}:")
