@@ -6,6 +6,8 @@ import sys
 import pandas as pd
 import pytest
 
+from _tracking import child_env
+
 
 def run(*args, cwd=None):
     return subprocess.run([sys.executable, "-m", "threefold.cli", *args], capture_output=True, text=True, cwd=cwd)
@@ -112,3 +114,26 @@ def test_select_and_gain_on_the_sample_site(tmp_path):
     assert (tmp_path / "gain.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     refused = run("select", config, *store, cwd=tmp_path)
     assert refused.returncode == 1 and "no CP model has structure = \"auto\"" in refused.stderr
+
+
+FLOOD = """
+import sys
+from threefold import cli
+
+def flood(args):  # more output than a pipe holds, so the reader's exit breaks the pipe mid-write
+    for i in range(200_000):
+        print("row", i, "x" * 40)
+    return 0
+
+cli.cmd_models = flood
+sys.exit(cli.main(["models"]))
+"""
+
+
+def test_a_closed_pipe_ends_the_command_quietly(tmp_path):
+    (tmp_path / "flood.py").write_text(FLOOD)
+    piped = subprocess.run(["bash", "-c", f"set -o pipefail; {sys.executable} flood.py | head -1"], cwd=tmp_path,
+                           env=child_env(), capture_output=True, text=True, timeout=300)
+    assert piped.stdout == "row 0 " + "x" * 40 + "\n"
+    assert "Traceback" not in piped.stderr and "BrokenPipeError" not in piped.stderr, piped.stderr[-2000:]
+    assert piped.returncode == 141  # 128 + SIGPIPE, what a command killed by the closed pipe reports (common practice)

@@ -114,6 +114,13 @@ def test_two_train_processes_start_together_on_a_fresh_store(tmp_path, capsys):
     assert comparison["params"] == []
     deltas = {m["metric"]: m["delta"] for m in comparison["metrics"]}
     assert deltas["recall_at_5"] == 0.0 and deltas["ndcg_at_5"] == 0.0
+    # a prefix works as the listing prints it; a metric no run has is an error, not a silent default order
+    assert cli.main(["runs", "--store", str(tmp_path / "threefold-runs"), "compare", a[:12], b[:12], "--json"]) == 0
+    capsys.readouterr()
+    assert cli.main(["runs", "--store", str(tmp_path / "threefold-runs"), "compare", a[:4], b]) == 1
+    assert "matches 0 runs; give at least 6 characters of a run id" in capsys.readouterr().err
+    assert cli.main(["runs", "--store", str(tmp_path / "threefold-runs"), "--sort", "ndcg_at_55"]) == 1
+    assert "--sort 'ndcg_at_55': no listed run has that metric. Did you mean 'ndcg_at_5'?" in capsys.readouterr().err
 
 
 HOLD_A_RUN = """

@@ -787,6 +787,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     from threefold.pipeline.cluster import SchedulerUnreachable
 
     args = _parser().parse_args(argv)
+    import io
     import os
 
     # MLflow's schema-creation chatter is not for our users; its warnings and errors still show
@@ -800,6 +801,12 @@ def main(argv: Sequence[str] | None = None) -> int:
                 "loop": cmd_loop}
     try:
         return handlers[args.command](args)
+    except BrokenPipeError:  # the reader went away (| head): stop quietly, as a command killed by SIGPIPE would
+        try:
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())  # nothing left to flush at exit
+        except (OSError, ValueError, AttributeError, io.UnsupportedOperation):  # stdout is no file (embedded use)
+            pass
+        return 141
     except (ValueError, KeyError, FileNotFoundError, MemoryError, SchedulerUnreachable) as error:
         message = error.args[0] if isinstance(error, KeyError) and error.args else error
         print(f"threefold {args.command}: error: {message}", file=sys.stderr)

@@ -9,6 +9,7 @@ run tagged as its key metrics (``threefold.key_metrics``).
 from __future__ import annotations
 
 import datetime
+import difflib
 import math
 from typing import Mapping, Sequence
 
@@ -71,6 +72,12 @@ def list_runs(store, *, experiment: str | None = None, tags: Mapping[str, str] |
         ids = list(names)
     order = [f"metrics.`{sort}` {'ASC' if ascending else 'DESC'}"] if sort else ["attributes.start_time DESC"]
     runs = store.call(client.search_runs, ids, _search_filter(tags or {}), max_results=limit, order_by=order)
+    if sort and runs and not any(sort in run.data.metrics for run in runs):
+        known = sorted({m for run in runs for m in run.data.metrics if not m.endswith(("_low", "_high"))})
+        close = difflib.get_close_matches(sort, known, n=1)
+        hint = f" Did you mean {close[0]!r}?" if close else ""
+        raise ValueError(f"--sort {sort!r}: no listed run has that metric.{hint} Metrics of these runs: "
+                         f"{', '.join(known[:30])}{' ...' if len(known) > 30 else ''}.")
     out = []
     for run in runs:
         info, data = run.info, run.data
@@ -112,7 +119,8 @@ def resolve_run(store, run_id: str):
             raise ValueError(f"No run {run_id!r} in {store.location.tracking_uri}: {error.message}") from None
     matches = [r for r in list_runs(store, limit=5000) if r["run_id"].startswith(run_id)] if len(run_id) >= 6 else []
     if len(matches) != 1:
-        raise ValueError(f"{run_id!r} matches {len(matches)} runs; give the full run id.")
+        need = "at least 6 characters of a run id" if len(run_id) < 6 else "a longer prefix or the full run id"
+        raise ValueError(f"{run_id!r} matches {len(matches)} runs; give {need} (as threefold runs prints them).")
     return store.call(store.client.get_run, matches[0]["run_id"])
 
 
