@@ -207,9 +207,9 @@ def _add_history_command(commands) -> None:
     history = commands.add_parser(
         "history", help="digest an impression and click log for the repetition rules (read once, used by every job)",
         description="Reduce an event log to what the [repetition] rules of RULES need (the pairs each user clicked, "
-                    "the pairs shown --cap times without a click) and write it to OUT, for threefold score "
-                    "--history OUT. Example: threefold history events-30d.parquet --policies rules.toml "
-                    "--out history.npz")
+                    "the pairs shown as often as their cap allows without a click) and write it to OUT, for "
+                    "threefold score --history OUT. Example: threefold history events-30d.parquet --policies "
+                    "rules.toml --out history.npz")
     history.add_argument("events", metavar="EVENTS", help="CSV or Parquet log: user_id, item_id, timestamp, event")
     history.add_argument("--policies", required=True, metavar="RULES.toml",
                          help="the rules the digest serves (their frequency cap decides the window)")

@@ -34,6 +34,7 @@ import pandas as pd
 from threefold.ranking.history import id_hashes, read_history
 from threefold.ranking.policies import PIN_BASE, PolicyCounts, PolicyTables, apply_policies, compile_policies, pool_size
 from threefold.ranking.policy_spec import ListPolicies
+from threefold.ranking.recommender import request_levels
 
 __all__ = ["SUFFIX", "EvaluationPolicies", "prepare_policies", "policy_variants", "training_history", "aspect_codes"]
 
@@ -112,21 +113,6 @@ class EvaluationPolicies:
         return np.take_along_axis(out, np.argsort(out < 0, axis=1, kind="stable"), axis=1)
 
 
-def _request_levels(policies: ListPolicies, queries) -> dict:
-    levels = {}
-    for guardrail in policies.guardrails:
-        for column, _ in guardrail.when:
-            if column in queries.contexts.columns:
-                levels[column] = queries.contexts[column].to_numpy(dtype=object)
-            elif column in queries.requests.columns:
-                levels[column] = queries.requests[column].astype("string").to_numpy(dtype=object)
-            else:
-                raise ValueError(f"{policies.source}: a guardrail conditions on {column!r}, which is neither a column "
-                                 f"of the evaluated events ({list(queries.requests.columns)}) nor a context mode "
-                                 f"({list(queries.contexts.columns)}).")
-    return levels
-
-
 def training_history(policies: ListPolicies, training_events: pd.DataFrame | None):
     """The history the repetition rules read in the evaluation: the training events (None when not needed)."""
     if not policies.needs_history or training_events is None:
@@ -158,7 +144,9 @@ def prepare_policies(policies: ListPolicies, queries, catalog: pd.DataFrame | No
     users = pd.Series(queries.users, dtype="string").fillna("").to_numpy(dtype=object)
     return EvaluationPolicies(tables=tables, pool=pool_size(policies, k), item_universe=universe,
                               item_hash=tables.item_hash[universe], pin_items=np.asarray(pin_items, np.int64),
-                              request_levels=_request_levels(policies, queries), user_hash=id_hashes(users))
+                              request_levels=request_levels(policies, queries.requests, {
+                                  c: queries.contexts[c].to_numpy(dtype=object) for c in queries.contexts.columns}),
+                              user_hash=id_hashes(users))
 
 
 def policy_variants(policies: ListPolicies, queries, catalog, training_events, k: int,

@@ -28,6 +28,7 @@ from __future__ import annotations
 import os
 import zipfile
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 
 import numpy as np
@@ -36,7 +37,7 @@ import pyarrow as pa
 
 from threefold.core.checks import check_int, check_number
 from threefold.data._eventscan import EVENT_VALUES, scan_events
-from threefold.data._hashing import combine, hash_strings
+from threefold.data._hashing import HashSet, combine, hash_strings
 from threefold.data._logreader import open_source, table_source
 from threefold.data.events import require_columns
 from threefold.data.timestamps import check_timezone, parse_timestamps
@@ -59,6 +60,16 @@ class History:
     cap_shown: int | None = None
     cap_days: float | None = None
 
+    @cached_property
+    def clicked_set(self) -> HashSet:
+        """``clicked`` in a hash set, built on first use (a lookup costs one probe, a sorted search log n misses)."""
+        return _hash_set(self.clicked)
+
+    @cached_property
+    def ignored_set(self) -> HashSet:
+        """``ignored`` in a hash set, built on first use."""
+        return _hash_set(self.ignored)
+
     @staticmethod
     def member(keys: np.ndarray, sorted_keys: np.ndarray) -> np.ndarray:
         """Boolean mask of the same shape as ``keys``: which are in ``sorted_keys``."""
@@ -66,6 +77,12 @@ class History:
             return np.zeros(keys.shape, bool)
         at = np.minimum(np.searchsorted(sorted_keys, keys), sorted_keys.size - 1)
         return sorted_keys[at] == keys
+
+
+def _hash_set(keys: np.ndarray) -> HashSet:
+    found = HashSet()
+    found.add(keys)
+    return found
 
 
 def pair_keys(user_hash: np.ndarray, item_hash: np.ndarray) -> np.ndarray:

@@ -37,7 +37,6 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from threefold.data._hashing import HashSet
 from threefold.ranking._mmr_kernel import greedy_lists
 from threefold.ranking.history import History, id_hashes, pair_keys
 from threefold.ranking.policy_spec import ListPolicies, PolicyError, check_policies_against_catalog
@@ -95,9 +94,7 @@ class PolicyTables:
         Live interval of each pin from the catalog's ``published_at`` /
         ``expires_at`` (open where the catalog gives none).
     history : History or None
-    clicked_set, ignored_set : HashSet or None
-        The history's pair keys in hash sets (a lookup costs one probe, where a
-        search of the sorted keys costs log n cache misses).
+        Looked up through its hash sets (``History.clicked_set``, ``ignored_set``).
     guardrail_items : tuple of ndarray of shape (n_universe,), bool
         The items each guardrail matches, in rule order (one gather per pool).
     """
@@ -114,8 +111,6 @@ class PolicyTables:
     pin_published: np.ndarray
     pin_expires: np.ndarray
     history: History | None = None
-    clicked_set: HashSet | None = None
-    ignored_set: HashSet | None = None
     guardrail_items: tuple = ()
 
     def positions(self, labels) -> np.ndarray:
@@ -196,13 +191,8 @@ def compile_policies(policies: ListPolicies, catalog: pd.DataFrame | None = None
     partial = PolicyTables(reconsumable=np.zeros(n, bool), **tables)
     reconsumable = (partial.item_match(policies.reconsumable, np.arange(n)) if policies.reconsumable
                     else np.zeros(n, bool))
-    sets = {}
-    if history is not None:
-        for name in ("clicked", "ignored"):
-            sets[f"{name}_set"] = HashSet()
-            sets[f"{name}_set"].add(getattr(history, name))
     guardrail_items = tuple(partial.item_match(g.items, np.arange(n)) for g in policies.guardrails)
-    return PolicyTables(reconsumable=reconsumable, guardrail_items=guardrail_items, **tables, **sets)
+    return PolicyTables(reconsumable=reconsumable, guardrail_items=guardrail_items, **tables)
 
 
 def _request_match(when, request_levels: dict, q: int) -> np.ndarray:
@@ -313,10 +303,10 @@ def apply_policies(tables: PolicyTables, *, universe: np.ndarray, codes: np.ndar
     if history is not None and (policies.consumed or policies.cap_shown is not None):
         keys = pair_keys(np.broadcast_to(np.asarray(user_hash, np.uint64)[:, None], (q, p)), item_hash).ravel()
         if policies.consumed:
-            seen = tables.clicked_set.contains(keys).reshape(q, p)
+            seen = history.clicked_set.contains(keys).reshape(q, p)
             remove("repetition: consumed", seen & ~(known & tables.reconsumable[at]))
         if policies.cap_shown is not None:
-            remove("repetition: cap", tables.ignored_set.contains(keys).reshape(q, p))
+            remove("repetition: cap", history.ignored_set.contains(keys).reshape(q, p))
     kmax = int(lengths.max()) if q else 0
     length = min(p, kmax + policies.max_places())
     plain = _compact(np.where(keep, np.arange(p)[None, :], -1))[:, :length]

@@ -62,7 +62,8 @@ from threefold.ranking.history import id_hashes
 from threefold.ranking.policies import PIN_BASE, PolicyCounts, PolicyTables, apply_policies, pool_size
 from threefold.ranking.topk import ALWAYS_LIVE, top_k, top_k_product
 
-__all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "EXPLAIN_CHOICES", "context_specs", "raw_columns", "blank_mask"]
+__all__ = ["Recommender", "OUTPUT_COLUMNS", "DEFAULT_K", "EXPLAIN_CHOICES", "context_specs", "raw_columns", "blank_mask",
+           "request_levels"]
 
 #: Columns of every output, in order; the context modes' level columns follow ``score``
 #: and reason columns follow ``status`` (see :meth:`Recommender.output_columns`).
@@ -137,6 +138,39 @@ def _arrow(column: pd.Series) -> pa.Array:
     if column.dtype == object:
         column = column.astype("string")
     return pa.array(column, from_pandas=True)
+
+
+def request_levels(policies, requests: pd.DataFrame, contexts: dict) -> dict:
+    """The value of every request column (or context mode) the guardrails of ``policies`` condition on.
+
+    Parameters
+    ----------
+    policies : ListPolicies
+    requests : DataFrame of shape (q, ...)
+    contexts : dict of str to array of shape (q,)
+        Each context mode's level per request.
+
+    Returns
+    -------
+    dict of str to ndarray of shape (q,), object
+        A request column wins over a context mode of the same name; blank values are None.
+
+    Raises
+    ------
+    ValueError
+        A column that is neither (named with both lists).
+    """
+    levels = {}
+    for column in policies.request_columns():
+        if column in requests.columns:
+            values = requests[column].astype("string")
+            levels[column] = values.where(~blank_mask(requests[column]), None).to_numpy(dtype=object)
+        elif column in contexts:
+            levels[column] = np.asarray(contexts[column], dtype=object)
+        else:
+            raise ValueError(f"{policies.source}: a guardrail conditions on {column!r}, which is neither a column of "
+                             f"the requests ({list(requests.columns)}) nor a context mode ({list(contexts)}).")
+    return levels
 
 
 def blank_mask(column: pd.Series) -> np.ndarray:
@@ -571,18 +605,7 @@ class Recommender:
 
     def _request_levels(self, tables: PolicyTables, first: pd.DataFrame, labels) -> dict:
         """The value of every request column (or context mode) the guardrails condition on."""
-        levels = {}
-        for column in tables.policies.request_columns():
-            if column in first.columns:
-                values = first[column].astype("string")
-                levels[column] = values.where(~blank_mask(first[column]), None).to_numpy(dtype=object)
-            elif column in self.context_names:
-                levels[column] = np.asarray(labels[self.context_names.index(column)], dtype=object)
-            else:
-                raise ValueError(f"{tables.policies.source}: a guardrail conditions on {column!r}, which is neither a "
-                                 f"column of the requests ({list(first.columns)}) nor a context mode of the model "
-                                 f"({list(self.context_names)}).")
-        return levels
+        return request_levels(tables.policies, first, dict(zip(self.context_names, labels)))
 
     def _apply_policies(self, tables, ranked, first, levels, queries, times, lengths, counts):
         """The ranked rows after the list policies, plus the ``pinned`` flags; as :meth:`_rank_candidates`."""
