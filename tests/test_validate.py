@@ -126,17 +126,24 @@ def test_daylight_saving_fold_and_gap_are_counted(tmp_path):
     _check(report, "dst_ambiguous", "timestamp", 2, [2, 3], "warning")
 
 
-def test_future_and_pre_1970_timestamps(tmp_path):
+def test_future_and_implausible_timestamps(tmp_path):
+    # Accepted event times are [1970-01-01, 2100-01-01) UTC (docs/data-format.md): an epoch value in
+    # milliseconds (13 digits) or a pre-1970 time is an error, so no single row can widen the time span
+    # that later steps allocate over.
     report = _validate(tmp_path, f"""
         user_id,item_id,timestamp
         a,x,1700000000
         a,y,{NOW + 1}
         a,z,1969-07-20T20:17:40Z
         a,w,1700000000000
+        a,v,9223372036854775807
+        a,u,4102444799
     """)
-    _check(report, "future_timestamp", "timestamp", 2, [2, 4], "warning")
-    _check(report, "pre_1970_timestamp", "timestamp", 1, [3], "warning")
-    assert report.ok and report.summary["rows_kept"] == 4
+    _check(report, "future_timestamp", "timestamp", 2, [2, 6], "warning")
+    problem = _check(report, "implausible_timestamp", "timestamp", 3, [3, 4, 5], "error")
+    assert "milliseconds" in problem.message
+    assert not report.ok and report.summary["rows_kept"] == 3
+    assert report.summary["rows_dropped"] == {"implausible_timestamp": 3}
 
 
 def test_unknown_event_values(tmp_path):
@@ -358,3 +365,43 @@ def test_one_pass_load_equals_validate_plus_load(tmp_path):
     missing = write_text(tmp_path / "m.csv", "user_id,timestamp\na,1\n")
     with pytest.raises(ValueError, match="cannot be loaded: item_id: required column is missing"):
         load_validated_events(missing)
+
+
+def test_ids_that_differ_only_in_case_are_an_error_unless_allowed(tmp_path):
+    # Invented log: item 'A12' and 'a12' would become two items (and split their clicks).
+    text = """
+        user_id,item_id,timestamp
+        u1,A12,1700000000
+        u2,a12,1700000060
+        U1,b7,1700000120
+        u3,A12,1700000180
+        u3,c9,1700000240
+    """
+    report = _validate(tmp_path, text)
+    _check(report, "case_variant_id", "item_id", 2, [1, 2], "error")
+    _check(report, "case_variant_id", "user_id", 2, [1, 3], "error")
+    assert not report.ok
+    allowed = _validate(tmp_path, text, allow_case_variant_ids=True)
+    _check(allowed, "case_variant_id", "item_id", 2, [1, 2], "warning")
+    assert allowed.ok
+
+
+def test_case_variants_across_chunks_count_each_id_once(tmp_path):
+    lines = "\n".join(f"u{i % 3},{'X' if i == 7 else 'x'}{i % 2},{1700000000 + i}" for i in range(10))
+    report = _validate(tmp_path, "user_id,item_id,timestamp\n" + lines, chunk_rows=3)
+    _check(report, "case_variant_id", "item_id", 2, [2, 8], "error")  # x1 first at row 2, X1 at row 8
+
+
+def test_every_command_that_reads_a_log_refuses_case_variants_even_when_dropping(tmp_path):
+    from threefold.pipeline.prepare import read_log
+
+    path = write_text(tmp_path / "e.csv", """
+        user_id,item_id,timestamp
+        u1,A12,1700000000
+        u2,a12,1700000060
+    """)
+    with pytest.raises(ValueError, match=r"e\.csv: column 'item_id': 2 row\(s\) with case_variant_id \(first rows 1, 2\)"):
+        read_log(path, errors="drop")
+    with pytest.warns(UserWarning, match="case_variant_id"):
+        events, report = read_log(path, allow_case_variant_ids=True)
+    assert sorted(events["item_id"]) == ["A12", "a12"] and report.ok

@@ -10,13 +10,19 @@ What happens to a row (first matching rule wins; the reasons are counted):
    marker (``nan``, ``none``, ``null`` in any case) -> dropped;
 2. ``unparseable_timestamp``: blank or in no accepted form -> dropped;
 3. ``naive_timestamp``: no UTC offset and no time zone given -> dropped;
-4. ``unknown_event``: ``event`` not exactly ``impression`` or ``click``
+4. ``implausible_timestamp``: before 1970-01-01 or from 2100-01-01 on (UTC),
+   typically epoch milliseconds or microseconds -> dropped;
+5. ``unknown_event``: ``event`` not exactly ``impression`` or ``click``
    (after trimming spaces) -> dropped;
-5. ``duplicate_row``: equal in every column, after parsing, to an earlier row
+6. ``duplicate_row``: equal in every column, after parsing, to an earlier row
    that was kept -> dropped.
 
 A non-numeric or negative ``dwell_seconds`` and a ``position`` that is not an
-integer >= 1 are cleared (set missing); the row is kept.
+integer in [1, ``MAX_POSITION``] are cleared (set missing); the row is kept.
+
+The time range and the position bound keep every allocation that depends on a
+value of the data (offset tables, per-position counts) bounded: no single row
+can make a later step ask for gigabytes.
 """
 
 from __future__ import annotations
@@ -35,7 +41,7 @@ from threefold.data._logreader import LogSource
 from threefold.data.timestamps import parse_timestamps
 
 __all__ = [
-    "REQUIRED_COLUMNS", "RESERVED_COLUMNS", "EVENT_VALUES", "DROP_REASONS",
+    "REQUIRED_COLUMNS", "RESERVED_COLUMNS", "EVENT_VALUES", "DROP_REASONS", "EARLIEST_TIME", "LATEST_TIME", "MAX_POSITION",
     "ITEM_TIME_COLUMNS", "EventChunk", "ItemsChunk", "scan_events", "scan_items",
     "text_missing", "parse_numbers", "as_text", "ProblemTally", "drop_counts", "cleared_counts",
 ]
@@ -43,7 +49,13 @@ __all__ = [
 REQUIRED_COLUMNS = ("user_id", "item_id", "timestamp")
 RESERVED_COLUMNS = REQUIRED_COLUMNS + ("event", "dwell_seconds", "position", "request_id")
 EVENT_VALUES = ("impression", "click")
-DROP_REASONS = ("missing_id", "unparseable_timestamp", "naive_timestamp", "unknown_event", "duplicate_row")
+DROP_REASONS = (
+    "missing_id", "unparseable_timestamp", "naive_timestamp", "implausible_timestamp", "unknown_event", "duplicate_row",
+)
+#: Accepted event times: [1970-01-01T00:00:00Z, 2100-01-01T00:00:00Z) in epoch seconds.
+EARLIEST_TIME, LATEST_TIME = 0, 4_102_444_800
+#: Largest accepted list position (a larger one is cleared and counted as ``bad_position``).
+MAX_POSITION = 10_000
 ITEM_TIME_COLUMNS = ("published_at", "expires_at")
 _MISSING_MARKERS = ["", "nan", "none", "null"]
 
@@ -194,6 +206,9 @@ def _normalize(first_row: int, table: pa.Table, zone: ZoneInfo | None) -> EventC
     flags[("dst_nonexistent", "timestamp")] = ts.nonexistent
     reject(ts.unparseable, "unparseable_timestamp")
     reject(ts.naive & ~ts.valid, "naive_timestamp")
+    implausible = ts.valid & ((ts.seconds < EARLIEST_TIME) | (ts.seconds >= LATEST_TIME))
+    flags[("implausible_timestamp", "timestamp")] = implausible
+    reject(implausible, "implausible_timestamp")
 
     unknown_events: dict[str, int] = {}
     if "event" in names:
@@ -220,7 +235,7 @@ def _normalize(first_row: int, table: pa.Table, zone: ZoneInfo | None) -> EventC
     if "position" in names:
         position, _, bad = parse_numbers(table.column("position"))
         with np.errstate(invalid="ignore"):
-            bad |= (position < 1) | ((np.floor(position) != position) & ~np.isnan(position))
+            bad |= (position < 1) | (position > MAX_POSITION) | ((np.floor(position) != position) & ~np.isnan(position))
         flags[("bad_position", "position")] = bad
         position[bad] = np.nan
 

@@ -21,11 +21,15 @@ _CATALOG: dict[str, tuple[Severity, str]] = {
     "dst_ambiguous": ("warning", "local time occurs twice in {tz} (clocks turned back); read with the offset before the change"),
     "dst_nonexistent": ("warning", "local time does not exist in {tz} (clocks turned forward); read with the offset before the change"),
     "future_timestamp": ("warning", "time later than the check time {detail} (clock drift, or epoch milliseconds?); rows kept"),
-    "pre_1970_timestamp": ("warning", "time before 1970-01-01T00:00:00Z; rows kept"),
+    "implausible_timestamp": ("error", "time before 1970-01-01 or from 2100-01-01 on (UTC): epoch milliseconds or microseconds? "
+                                       "Timestamps are epoch seconds; rows dropped"),
     "unknown_event": ("error", "event is not 'impression' or 'click' (found {detail}); rows dropped"),
     "bad_dwell": ("error", "dwell_seconds is not a finite number; value cleared, rows kept"),
     "negative_dwell": ("error", "negative dwell_seconds; value cleared, rows kept"),
-    "bad_position": ("error", "position is not an integer >= 1; value cleared, rows kept"),
+    "bad_position": ("error", "position is not an integer from 1 to 10,000; value cleared, rows kept"),
+    "case_variant_id": ("error", "ids that differ only in letter case ('A12' and 'a12'), which would count as "
+                                 "different users or items; count is ids, rows are each spelling's first row. Fix "
+                                 "the export, or allow them (allow_case_variant_ids, --allow-case-variant-ids); rows kept"),
     "duplicate_row": ("warning", "exact duplicate of an earlier row (every column equal after parsing); rows dropped"),
     "unmatched_click": ("warning", "click with no matching impression ({detail}); rows kept"),
     "activity_outlier": ("warning", "users with more than {detail} events (likely automated); count is users, rows are each one's first row; rows kept"),

@@ -56,9 +56,11 @@ _OFFSET_GRID = 900  # UTC-offset changes fall on quarter hours in every IANA zon
 def _local_seconds(timestamps: pd.Series | np.ndarray, timezone: str) -> np.ndarray:
     """Local wall-clock time of int64 epoch seconds (UTC), as seconds since 1970-01-01 local.
 
-    The zone's UTC offset is looked up once per quarter hour of the log's span
-    (a small table, via ``zoneinfo``) instead of once per event, so a
-    ten-million-row log costs a few arrays of int64, not a column of datetimes.
+    The zone's UTC offset is looked up once per distinct quarter hour that
+    occurs in the log (via ``zoneinfo``) instead of once per event, so a
+    ten-million-row log costs a few arrays of int64, not a column of datetimes,
+    and the memory follows the rows, never the time span between the earliest
+    and the latest timestamp.
 
     Returns
     -------
@@ -67,12 +69,17 @@ def _local_seconds(timestamps: pd.Series | np.ndarray, timezone: str) -> np.ndar
     seconds = np.asarray(timestamps, dtype=np.int64)
     if seconds.size == 0:
         return seconds.copy()
-    start = int(seconds.min()) // _OFFSET_GRID
-    slot = seconds // _OFFSET_GRID - start
-    grid = (start + np.arange(int(slot.max()) + 1, dtype=np.int64)) * _OFFSET_GRID
+    slot = seconds // _OFFSET_GRID
+    start = int(slot.min())
+    span = int(slot.max()) - start + 1
+    if span <= 2 * seconds.size + 100_000:  # a dense table no larger than the rows: one pass, no sort
+        slots, where = start + np.arange(span, dtype=np.int64), slot - start
+    else:  # a few rows far apart in time: only the quarter hours that occur
+        slots, where = np.unique(slot, return_inverse=True)
+    grid = slots * _OFFSET_GRID
     local = pd.to_datetime(grid, unit="s", utc=True).tz_convert(_zone(timezone))
     offsets = (local.tz_localize(None).as_unit("s").asi8 - grid).astype(np.int64)
-    return seconds + offsets[slot]
+    return seconds + offsets[where.reshape(-1)]
 
 
 @dataclass(frozen=True)

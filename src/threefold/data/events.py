@@ -29,6 +29,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from threefold.core.checks import check_choice, check_int
+from threefold.core.defaults import EVENT_CHUNK_ROWS
 from threefold.data._eventscan import (
     DROP_REASONS, EVENT_VALUES, ITEM_TIME_COLUMNS, REQUIRED_COLUMNS, RESERVED_COLUMNS, EventChunk, ProblemTally,
     cleared_counts, drop_counts, scan_events, scan_items,
@@ -42,12 +43,12 @@ __all__ = [
 ]
 
 #: Rows per chunk when reading a log (about 100-200 MB of transient memory for a typical log).
-DEFAULT_CHUNK_ROWS = 250_000
+DEFAULT_CHUNK_ROWS = EVENT_CHUNK_ROWS
 
 #: Problems that make :func:`load_events` refuse a log unless ``errors="drop"``.
 _LOAD_ERRORS = (
     ("missing_id", "user_id"), ("missing_id", "item_id"), ("unparseable_timestamp", "timestamp"),
-    ("naive_timestamp", "timestamp"), ("unknown_event", "event"), ("bad_dwell", "dwell_seconds"),
+    ("naive_timestamp", "timestamp"), ("implausible_timestamp", "timestamp"), ("unknown_event", "event"), ("bad_dwell", "dwell_seconds"),
     ("negative_dwell", "dwell_seconds"), ("bad_position", "position"),
 )
 

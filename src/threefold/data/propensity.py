@@ -26,6 +26,7 @@ import numpy as np
 import pandas as pd
 
 from threefold.core.checks import check_int, check_number
+from threefold.data._eventscan import MAX_POSITION
 
 __all__ = [
     "PROPENSITY_COLUMNS",
@@ -150,6 +151,10 @@ def estimate_position_propensity(
     limit = int(position[is_impression].max(initial=0)) if max_position is None else check_int(
         "max_position", max_position, low=1, owner="estimate_position_propensity"
     )
+    if limit > MAX_POSITION:
+        rows = np.flatnonzero(is_impression & (position > MAX_POSITION))[:5].tolist()
+        raise ValueError(f"Column 'position': positions above {MAX_POSITION:,} (rows {rows} of the events, 0-based); "
+                         "a list that long is a logging error. Clear or fix those rows, or pass max_position.")
     use = is_impression & (position <= limit)
     if not use.any():
         raise ValueError("The log has no impressions with a position; position propensities cannot be estimated.")

@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import os
 import time
+from dataclasses import replace
 from typing import Sequence
 
 import numpy as np
@@ -35,7 +36,7 @@ from threefold.data._eventscan import (
     DROP_REASONS, EVENT_VALUES, REQUIRED_COLUMNS, EventChunk, ProblemTally, cleared_counts, drop_counts, scan_events,
     scan_items,
 )
-from threefold.data._hashing import HashCounter, HashSet, combine
+from threefold.data._hashing import HashCounter, HashSet, combine, hash_strings
 from threefold.data._logreader import open_source
 from threefold.data._report import Problem, ValidationReport, describe, iso_utc
 from threefold.data.timestamps import check_timezone
@@ -45,10 +46,43 @@ __all__ = ["validate_events", "load_validated_events", "ValidationReport", "Prob
 
 #: Data-quality warnings that ``strict=True`` turns into errors.
 STRICT_CODES = frozenset(
-    {"duplicate_row", "future_timestamp", "pre_1970_timestamp", "naive_timestamp", "dst_ambiguous", "dst_nonexistent"}
+    {"duplicate_row", "future_timestamp", "naive_timestamp", "dst_ambiguous", "dst_nonexistent"}
 )
 _LEVEL_CAP = 10_000
 _CLICK, _IMPRESSION = EVENT_VALUES.index("click"), EVENT_VALUES.index("impression")
+
+
+class _CaseTwins:
+    """Distinct ids of one column, to find ids that differ only in letter case (``A12`` / ``a12``).
+
+    Holds, per distinct id, its 64-bit hash, the hash of its lower-case form and
+    its first row (about 40 bytes per id): memory follows the distinct ids.
+    """
+
+    def __init__(self) -> None:
+        self.seen = HashSet()
+        self.lower: list[np.ndarray] = []
+        self.rows: list[np.ndarray] = []
+
+    def add(self, ids: pa.Array, hashes: np.ndarray, rows: np.ndarray) -> None:
+        """Ids, their hashes and their 1-based rows (kept rows of one chunk, shape (n,))."""
+        unique, first = np.unique(hashes, return_index=True)
+        new = ~self.seen.contains(unique)
+        if not new.any():
+            return
+        self.seen.add(unique[new])
+        take = first[new]
+        self.lower.append(hash_strings(pc.utf8_lower(ids.take(pa.array(take)))))
+        self.rows.append(rows[take])
+
+    def twins(self) -> tuple[int, list[int]]:
+        """Number of ids with a case-only twin, and the first row of each (sorted, at most ten)."""
+        if not self.lower:
+            return 0, []
+        lower, rows = np.concatenate(self.lower), np.concatenate(self.rows)
+        _, inverse, counts = np.unique(lower, return_inverse=True, return_counts=True)
+        twin = counts[inverse.reshape(-1)] > 1
+        return int(twin.sum()), np.sort(rows[twin])[:10].tolist()
 
 
 class _EventStats:
@@ -71,6 +105,7 @@ class _EventStats:
         self.clicks_by_request: list[tuple[np.ndarray, np.ndarray]] = []
         self.clicks_by_user: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
         self.has_request = False
+        self.case_twins = {"user_id": _CaseTwins(), "item_id": _CaseTwins()}
 
     def add(self, chunk: EventChunk) -> None:
         rows, keep = chunk.rows, chunk.keep
@@ -84,8 +119,10 @@ class _EventStats:
             return
         ts, event, user, item = chunk.timestamp[k], chunk.event[k], chunk.user_hash[k], chunk.item_hash[k]
         krows = rows[k]
+        take = pa.array(k)
+        self.case_twins["user_id"].add(chunk.user_id.take(take), user, krows)
+        self.case_twins["item_id"].add(chunk.item_id.take(take), item, krows)
         self.tally.add(("future_timestamp", "timestamp"), ts > self.now, krows)
-        self.tally.add(("pre_1970_timestamp", "timestamp"), ts < 0, krows)
         low, high = int(ts.min()), int(ts.max())
         self.time_range = [low if self.time_range[0] is None else min(low, self.time_range[0]),
                            high if self.time_range[1] is None else max(high, self.time_range[1])]
@@ -98,7 +135,6 @@ class _EventStats:
             self.missing_items.add(item[unknown])
         if chunk.position is not None:
             self._add_positions(chunk.position[k], event)
-        take = pa.array(k)
         for name, values in chunk.context.items():
             kept = values.take(take)
             self.coverage[name] = self.coverage.get(name, 0) + len(kept) - kept.null_count
@@ -180,6 +216,7 @@ def validate_events(
     strict: bool = False,
     now: int | None = None,
     max_user_events: int | None = None,
+    allow_case_variant_ids: bool = False,
 ) -> ValidationReport:
     """Check an event log against the contract of ``docs/data-format.md``.
 
@@ -202,6 +239,11 @@ def validate_events(
     max_user_events : int or None
         Event count above which a user is an activity outlier (default: the
         rule of :func:`threefold.data.events.activity_outlier_threshold`).
+    allow_case_variant_ids : bool, default=False
+        Ids of one column that differ only in letter case (``A12`` and ``a12``)
+        are an error (``case_variant_id``): each spelling would become its own
+        user or item. True makes it a warning, for sources where case is
+        meaningful.
 
     Returns
     -------
@@ -211,7 +253,7 @@ def validate_events(
         header).
     """
     report, _ = _run(path, items=items, timezone=timezone, chunk_rows=chunk_rows, strict=strict, now=now,
-                     max_user_events=max_user_events, collect=None)
+                     max_user_events=max_user_events, allow_case_variant_ids=allow_case_variant_ids, collect=None)
     return report
 
 
@@ -227,6 +269,7 @@ def load_validated_events(
     hash_user_ids_salt: str | bytes | None = None,
     context_columns: Sequence[str] | None = None,
     drop_activity_outliers: bool = False,
+    allow_case_variant_ids: bool = False,
 ) -> tuple[pd.DataFrame, ValidationReport]:
     """Validate and load a log in one pass (half the reading of the two calls apart).
 
@@ -249,7 +292,7 @@ def load_validated_events(
         id column is stored as floats); the message lists the problems.
     """
     report, collector = _run(path, items=items, timezone=timezone, chunk_rows=chunk_rows, strict=strict, now=now,
-                             max_user_events=max_user_events,
+                             max_user_events=max_user_events, allow_case_variant_ids=allow_case_variant_ids,
                              collect={"hash_user_ids_salt": hash_user_ids_salt, "context_columns": context_columns})
     if collector is None:
         raise ValueError(f"{report.summary['source']}: the log cannot be loaded: "
@@ -258,7 +301,8 @@ def load_validated_events(
     return collector.frame(cleared, drop_activity_outliers=drop_activity_outliers), report
 
 
-def _run(path, *, items, timezone, chunk_rows, strict, now, max_user_events, collect: dict | None
+def _run(path, *, items, timezone, chunk_rows, strict, now, max_user_events, collect: dict | None,
+         allow_case_variant_ids: bool = False
          ) -> tuple[ValidationReport, FrameCollector | None]:
     """The one pass behind :func:`validate_events` and :func:`load_validated_events`."""
     check_int("chunk_rows", chunk_rows, low=1, owner="validate_events")
@@ -305,6 +349,11 @@ def _run(path, *, items, timezone, chunk_rows, strict, now, max_user_events, col
     if flagged.any():
         event_problems.append(describe("activity_outlier", "user_id", int(flagged.sum()),
                                        np.sort(first_rows[flagged])[:10].tolist(), detail=threshold))
+    for column, twins in stats.case_twins.items():
+        count, rows = twins.twins()
+        if count:
+            problem = describe("case_variant_id", column, count, rows)
+            event_problems.append(replace(problem, severity="warning") if allow_case_variant_ids else problem)
     problems = event_problems + problems
     return ValidationReport(summary=summary, problems=tuple(_promote(problems, strict))), collector
 

@@ -98,7 +98,8 @@ _EVAL = EvaluationOptions()  # the evaluation defaults live there
 _SECTIONS: dict[str, dict[str, tuple[Rule, object]]] = {
     "experiment": {"name": (_STR, "threefold"), "tags": (None, {})},
     "data": {"events": (_STR, ...), "items": (_STR, None), "timezone": (_timezone, "UTC"),
-             "errors": (_choice("raise", "drop"), "drop"), "drop_activity_outliers": (_BOOL, False),
+             "errors": (_choice("raise", "drop"), "raise"), "drop_activity_outliers": (_BOOL, False),
+             "allow_case_variant_ids": (_BOOL, False),
              "hash_user_ids_salt": (_STR, None)},
     "build": {"contexts": (_STR_LIST, []),
               "daypart_starts": (_list(_float(low=0.0, high=24.0), "hours", min_len=1), [5.0, 9.0, 12.0, 17.0, 21.0]),

@@ -21,7 +21,81 @@ from threefold.core.feedback import FeedbackWeighting
 from threefold.data.build import build_tensor
 from threefold.data.propensity import PROPENSITY_COLUMNS, PositionPropensity, estimate_position_propensity
 
-__all__ = ["tensor_options", "build_from_log", "options_to_json", "options_from_json"]
+__all__ = ["read_log", "tensor_options", "build_from_log", "options_to_json", "options_from_json"]
+
+
+def _problem_text(problem, path, refused: bool = False) -> str:
+    rows = ", ".join(str(r) for r in problem.rows)
+    where = f" (first rows {rows})" if rows else ""
+    message = problem.message
+    if refused:  # what would happen to the rows with errors="drop" is not what happens now
+        message = message.rsplit("; ", 1)[0] if message.rsplit("; ", 1)[-1].startswith(("rows", "value")) else message
+    return f"{path}: column {problem.column!r}: {problem.count:,} row(s) with {problem.code}{where}: {message}"
+
+
+def read_log(path: str | os.PathLike, *, errors: str = "raise", items=None, timezone: str | None = None,
+             salt=None, drop_activity_outliers: bool = False, allow_case_variant_ids: bool = False):
+    """Validate and load an event log in one pass: the reading of ``build``, ``train``, ``refresh`` and ``demo``.
+
+    The checks are exactly those of ``threefold validate`` (one pass, see
+    :func:`threefold.data.validate.load_validated_events`), so every command
+    that reads a log refuses, drops and warns about the same rows.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Event log (CSV, Parquet file or folder of Parquet files).
+    errors : {"raise", "drop"}, default="raise"
+        On an error of the validation report (bad ids, timestamps, events,
+        dwell or positions; catalog errors): raise a ``ValueError`` naming the
+        file, column and first rows of the first of them, or drop the rows
+        (clear the values) and warn with the counts.
+    items : path, optional
+        Items catalog, validated with the log (items unknown to it are warned about).
+    timezone, salt, drop_activity_outliers
+        As in :func:`threefold.data.events.load_events`.
+    allow_case_variant_ids : bool, default=False
+        Ids that differ only in letter case are an error that ``errors="drop"``
+        does not lift (no row is wrong on its own); True makes them a warning.
+
+    Returns
+    -------
+    events : DataFrame
+        The normalized events; ``attrs["threefold_load"]`` holds the counts.
+    report : ValidationReport
+        The validation of the log (and catalog).
+
+    Warns
+    -----
+    EventLogWarning
+        One per warning of the validation report, one per dropped kind of
+        error (with ``errors="drop"``), and one with the rows dropped in all.
+    """
+    from threefold.core.checks import check_choice
+    from threefold.data.events import EventLogWarning
+    from threefold.data.validate import load_validated_events
+
+    check_choice("errors", errors, ("raise", "drop"), owner="read_log")
+    events, report = load_validated_events(path, items=items, timezone=timezone, hash_user_ids_salt=salt,
+                                           drop_activity_outliers=drop_activity_outliers,
+                                           allow_case_variant_ids=allow_case_variant_ids)
+    sources = {"events": report.summary["source"], "items": (report.summary.get("catalog") or {}).get("source", items)}
+    refused = [p for p in report.errors if errors == "raise" or p.code == "case_variant_id"]
+    if refused:
+        first = refused[0]
+        kinds = len(refused)
+        raise ValueError(_problem_text(first, sources[first.source], refused=True)
+                         + (f" ({kinds} kinds of error in all)" if kinds > 1 else "")
+                         + f". Run `threefold validate {path}` for the full report; dropping these rows is an "
+                         "explicit choice (--drop-bad-rows, [data] errors = \"drop\", errors=\"drop\").")
+    for problem in (*report.errors, *report.warnings):
+        warnings.warn(_problem_text(problem, sources[problem.source]), EventLogWarning, stacklevel=2)
+    load = events.attrs["threefold_load"]
+    if load["rows_dropped"] or load["values_cleared"]:
+        dropped = sum(load["rows_dropped"].values())
+        warnings.warn(f"{path}: read {load['rows_read']:,} rows, kept {load['rows_kept']:,}, dropped {dropped:,} "
+                      f"{load['rows_dropped']}; values cleared {load['values_cleared']}", EventLogWarning, stacklevel=2)
+    return events, report
 
 
 def tensor_options(events: pd.DataFrame, *, weighting: FeedbackWeighting, negatives: str, dtype="float32",
@@ -61,11 +135,13 @@ def tensor_options(events: pd.DataFrame, *, weighting: FeedbackWeighting, negati
 
 
 def build_from_log(events_path: str | os.PathLike, contexts: Sequence, weighting: FeedbackWeighting, *,
-                   negatives: str, timezone: str | None, items=None, salt=None, position_propensity: bool = False):
-    """Validate and load a log in one pass, estimate position propensities, build its tensor.
+                   negatives: str, timezone: str | None, items=None, salt=None, position_propensity: bool = False,
+                   errors: str = "raise", allow_case_variant_ids: bool = False):
+    """Validate and load a log in one pass (:func:`read_log`), estimate position propensities, build its tensor.
 
-    Rows the validation counts as bad are dropped and counted, so the tensor
-    never sees them.
+    With ``errors="raise"`` a log with errors is refused; with ``"drop"`` the
+    rows the validation counts as bad are dropped and counted (warned), so the
+    tensor never sees them.
 
     Returns
     -------
@@ -76,12 +152,10 @@ def build_from_log(events_path: str | os.PathLike, contexts: Sequence, weighting
     caught : list of warnings.WarningMessage
         The warnings of loading and building, for the caller to show.
     """
-    from threefold.data.validate import load_validated_events
-
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        events, validation = load_validated_events(events_path, items=items, timezone=timezone,
-                                                   hash_user_ids_salt=salt)
+        events, validation = read_log(events_path, errors=errors, items=items, timezone=timezone, salt=salt,
+                                      allow_case_variant_ids=allow_case_variant_ids)
         options, propensity = tensor_options(events, weighting=weighting, negatives=negatives,
                                              position_propensity=position_propensity)
         if propensity is None and set(PROPENSITY_COLUMNS) <= set(events.columns):

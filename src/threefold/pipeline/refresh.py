@@ -60,7 +60,8 @@ class RefreshReport:
 
 def refresh_model(model: str | os.PathLike, events: str | os.PathLike | pd.DataFrame, out: str | os.PathLike, *,
                   items: str | os.PathLike | pd.DataFrame | None = None, update_known: bool = False,
-                  metadata_prior: bool = False, metadata_alpha: float = 1.0, store=None) -> RefreshReport:
+                  metadata_prior: bool = False, metadata_alpha: float = 1.0, store=None,
+                  errors: str = "raise", allow_case_variant_ids: bool = False) -> RefreshReport:
     """Refresh a model with the events since its training cutoff; see the module docstring.
 
     Parameters
@@ -82,16 +83,22 @@ def refresh_model(model: str | os.PathLike, events: str | os.PathLike | pd.DataF
         Ridge penalty of the attribute map (used when the model has none yet).
     store : RunStore or None
         Needed for run ids and URIs; with a model from the store the refresh is logged as a child run.
+    errors : {"raise", "drop"}, default="raise"
+        A log read from a file is checked as ``threefold validate`` checks it
+        (:func:`threefold.pipeline.prepare.read_log`): refused on errors, or
+        the bad rows dropped and counted.
+    allow_case_variant_ids : bool, default=False
+        Accept ids that differ only in letter case (an error otherwise).
 
     Returns
     -------
     RefreshReport
     """
-    from threefold.data.events import load_events, load_items
+    from threefold.data.events import load_items
     from threefold.evaluation.queries import catalog_times
     from threefold.models.model_io import load_model, save_model
     from threefold.models.refresh import RefreshState, refresh_result
-    from threefold.pipeline.prepare import options_from_json
+    from threefold.pipeline.prepare import options_from_json, read_log
     from threefold.ranking.recommender import context_specs
     from threefold.tracking.pyfunc import model_folder
 
@@ -103,7 +110,8 @@ def refresh_model(model: str | os.PathLike, events: str | os.PathLike | pd.DataF
         raise ValueError(f"The model at {folder} records no build options or training cutoff (it was saved "
                          "before refreshes existed); retrain it with `threefold train`.")
     zone = serving.get("timezone")
-    frame = events if isinstance(events, pd.DataFrame) else load_events(events, timezone=zone)
+    frame = events if isinstance(events, pd.DataFrame) else read_log(
+        events, errors=errors, timezone=zone, allow_case_variant_ids=allow_case_variant_ids)[0]
     cutoff = int(serving["trained_until"])
     recent = frame[frame["timestamp"].to_numpy(dtype=np.int64) >= cutoff]
     catalog = None if items is None else (items if isinstance(items, pd.DataFrame) else load_items(items, timezone=zone))

@@ -17,7 +17,8 @@ import pandas as pd
 from threefold.models.registry import FACTOR_METHODS, model_class
 from threefold.pipeline.config import ExperimentConfig
 
-__all__ = ["Dataset", "StageData", "TruthSource", "load_dataset", "prepare_stage", "build_options", "make_estimator"]
+__all__ = ["Dataset", "StageData", "TruthSource", "load_dataset", "prepare_stage", "build_options", "make_estimator",
+           "with_seeds"]
 
 
 @dataclass(eq=False)
@@ -53,15 +54,16 @@ def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> 
     passes :func:`threefold.demo.simulate.site_truth`); the pipeline itself
     never imports the demo.
     """
-    from threefold.data.events import load_events, load_items
+    from threefold.data.events import load_items
+    from threefold.pipeline.prepare import read_log
     from threefold.tracking.runlog import dataset_fingerprint
 
     data = config["data"]
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        events = load_events(data["events"], timezone=data["timezone"], errors=data["errors"],
-                             drop_activity_outliers=data["drop_activity_outliers"],
-                             hash_user_ids_salt=data["hash_user_ids_salt"])
+        events, _ = read_log(data["events"], errors=data["errors"], items=data["items"], timezone=data["timezone"],
+                             salt=data["hash_user_ids_salt"], drop_activity_outliers=data["drop_activity_outliers"],
+                             allow_case_variant_ids=data["allow_case_variant_ids"])
         items = load_items(data["items"], timezone=data["timezone"]) if data["items"] else None
     fingerprint = dataset_fingerprint({"events": data["events"], "items": data["items"]}, events, items)
     return Dataset(events=events, items=items, fingerprint=fingerprint, warnings=[str(w.message) for w in caught],
@@ -96,6 +98,20 @@ def build_options(config: ExperimentConfig, events: pd.DataFrame) -> dict:
                                 position_propensity=build["position_propensity"],
                                 propensity_clip=build["propensity_clip"])
     return options
+
+
+def with_seeds(config: ExperimentConfig, draw: Callable[[], int]) -> tuple[ExperimentConfig, dict[str, int]]:
+    """The config with a ``random_state`` for every model that takes one and has none, and the seeds given.
+
+    A run is reproducible by default: the seed is drawn once (``draw()``), logged
+    with the run's params like any other, and printed, so that setting it in the
+    config reproduces the run.
+    """
+    seeds = {name: int(draw()) for name, spec in config.models.items()
+             if "random_state" in spec and spec["random_state"] is None}
+    if not seeds:
+        return config, seeds
+    return config.with_overrides({f"models.{name}.random_state": seed for name, seed in seeds.items()}), seeds
 
 
 def make_estimator(spec: dict, callback: Callable | None = None):
