@@ -7,6 +7,7 @@ and a slow full sort written here (the ranking definition, common practice).
 
 from __future__ import annotations
 
+import json
 import signal
 import subprocess
 import time
@@ -59,7 +60,7 @@ def test_batch_output_equals_the_recommender_and_tensorly(saved, tmp_path):
     folder, result, specs, requests = saved
     out = score_requests(folder / "model", folder / "requests.csv", out=tmp_path / "out", k=4, explain="top3",
                          chunk_rows=70, show_progress=False)
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["_job.json", "_manifest.json"] + [
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["_job.json", "_manifest.json", "_rejected.parquet"] + [
         f"part-{i:05d}.parquet" for i in range(5)]
     direct = Recommender(result, specs, timezone="UTC").recommend(requests, k=4, explain="top3")
     pd.testing.assert_frame_equal(out, direct, check_dtype=False)  # one code path: the recommender
@@ -111,15 +112,16 @@ def test_bad_inputs_name_file_column_and_rows(saved, tmp_path):
     bad = pd.DataFrame({"request_id": ["a", "b", "c", "d"], "user_id": "u01",
                         "timestamp": ["1700050000", "soon", "2026-03-29T01:30:00+01:00", "later"]})
     bad.to_csv(tmp_path / "bad.csv", index=False)
-    with pytest.raises(InputRowsError, match=r"bad\.csv: column 'timestamp': not a timestamp .* in 2 row\(s\): "
-                                             r"data row\(s\) 2, 4 \(e\.g\. 'soon', 'later'\)"):
-        score_requests(model, tmp_path / "bad.csv", out=tmp_path / "o1", show_progress=False)
+    out = score_requests(model, tmp_path / "bad.csv", out=tmp_path / "o1", k=3, show_progress=False)
+    assert out.groupby("request_id", sort=False).size().to_dict() == {"a": 3, "c": 3}  # the rest is scored
+    _assert_rejected(tmp_path / "o1", ["b", "d"], [2, 4], "timestamp", "not a timestamp", ["soon", "later"])
     bad.assign(timestamp=T0, request_id=["a", "b", "a", "c"]).to_csv(tmp_path / "dup.csv", index=False)
     with pytest.raises(InputRowsError, match=r"dup\.csv: column 'request_id': a request id given before .* data row\(s\) 3"):
         score_requests(model, tmp_path / "dup.csv", out=tmp_path / "o2", show_progress=False)
     bad.assign(timestamp=T0, k=["3", "0", "", "x"]).to_csv(tmp_path / "k.csv", index=False)
-    with pytest.raises(InputRowsError, match=r"k\.csv: column 'k': not a whole number of at least 1 in 2 row\(s\): data row\(s\) 2, 4"):
-        score_requests(model, tmp_path / "k.csv", out=tmp_path / "o3", show_progress=False)
+    out = score_requests(model, tmp_path / "k.csv", out=tmp_path / "o3", k=2, show_progress=False)
+    assert out.groupby("request_id", sort=False).size().to_dict() == {"a": 3, "c": 2}
+    _assert_rejected(tmp_path / "o3", ["b", "d"], [2, 4], "k", "not a whole number of at least 1", ["0", "x"])
     pd.DataFrame({"request_id": ["a", "zz"], "item_id": ["i01", "i02"]}).to_csv(tmp_path / "c.csv", index=False)
     bad.assign(timestamp=T0).to_csv(tmp_path / "ok.csv", index=False)
     with pytest.raises(InputRowsError, match=r"c\.csv: column 'request_id': a request id that is not in the requests .* data row\(s\) 2"):
@@ -131,6 +133,46 @@ def test_bad_inputs_name_file_column_and_rows(saved, tmp_path):
     (tmp_path / "busy" / "notes.txt").write_text("mine")
     with pytest.raises(JobMismatch, match="exists and is not a score job's folder"):
         score_requests(model, tmp_path / "ok.csv", out=tmp_path / "busy", show_progress=False)
+
+
+def _assert_rejected(out, request_ids, rows, column, problem, values):
+    rejected = pq.read_table(out / "_rejected.parquet").to_pandas()
+    assert rejected["request_id"].tolist() == request_ids and rejected["row"].tolist() == rows
+    assert (rejected["column"] == column).all() and rejected["problem"].str.startswith(problem).all()
+    assert rejected["value"].tolist() == values
+    manifest = json.loads((out / "_manifest.json").read_text())
+    assert manifest["rejected"]["requests"] == len(request_ids)
+
+
+def test_no_request_is_lost_a_bad_row_is_rejected_with_its_status(saved, tmp_path):
+    # Every input row is either in the output or in _rejected.parquet with its row, column and problem.
+    folder, *_ = saved
+    requests = pd.DataFrame({"request_id": ["a", "b", "c", "d", "e", "f"], "user_id": ["u01", "u02", "u03", "u01",
+                                                                                      "u04", "u05"],
+                             "timestamp": pd.array([T0, T0 * 1000, None, 2**62, T0, -5], dtype="Int64"),
+                             "k": ["2", "2", "2", "2", "-1", "2"]})
+    requests.to_parquet(tmp_path / "r.parquet")
+    out = score_requests(folder / "model", tmp_path / "r.parquet", out=tmp_path / "o", show_progress=False)
+    scored = out.groupby("request_id", sort=False).size().to_dict()
+    assert scored == {"a": 2, "c": 2}  # a missing time (an integer NA) is scored without one
+    rejected = pq.read_table(tmp_path / "o" / "_rejected.parquet").to_pandas()
+    assert rejected["request_id"].tolist() == ["b", "d", "e", "f"] and rejected["row"].tolist() == [2, 4, 5, 6]
+    assert rejected.set_index("request_id")["column"].to_dict() == {"b": "timestamp", "d": "timestamp",
+                                                                    "e": "k", "f": "timestamp"}
+    assert rejected["problem"][rejected["column"] == "timestamp"].str.contains("epoch milliseconds").all()
+    assert set(scored) | set(rejected["request_id"]) == set(requests["request_id"])
+
+
+def test_an_empty_input_gives_an_empty_output_with_the_schema(saved, tmp_path):
+    folder, *_ = saved
+    pd.DataFrame({"request_id": pd.Series(dtype=str), "user_id": pd.Series(dtype=str)}).to_csv(
+        tmp_path / "none.csv", index=False)
+    out = score_requests(folder / "model", tmp_path / "none.csv", out=tmp_path / "o", show_progress=False)
+    full = score_requests(folder / "model", pd.DataFrame({"request_id": ["a"], "user_id": ["u01"]}),
+                          out=tmp_path / "o2", show_progress=False)
+    assert len(out) == 0 and list(out.columns) == list(full.columns)
+    manifest = json.loads((tmp_path / "o" / "_manifest.json").read_text())
+    assert manifest["requests"] == 0 and manifest["rows"] == 0 and manifest["rejected"]["requests"] == 0
 
 
 def test_per_request_k_and_iso_timestamps(saved, tmp_path):

@@ -12,6 +12,7 @@ of the served model. Its output folder::
       _model/               a model fetched from the run store (while the job runs)
       part-00000.parquet    one file per part of ``chunk_rows`` requests, in request order
       ...
+      _rejected.parquet     requests with a bad timestamp or k, not scored: row, column, problem
       _manifest.json        written last: every part with its rows and SHA-256
 
 Names starting with ``_`` are skipped by Parquet dataset readers, so
@@ -55,6 +56,7 @@ import pyarrow.parquet as pq
 
 from threefold.core.bundle import bundle_fingerprint, sha256_file
 from threefold.core.checks import check_choice, check_int
+from threefold.core.defaults import SCORE_CHUNK_ROWS
 from threefold.core.exceptions import InputRowsError
 from threefold.data.events import open_source
 from threefold.ranking._job_policies import policy_digest, stage_policies, staged_policies, summed_counts, write_counts
@@ -74,7 +76,7 @@ _STAGED = "staged.json"
 _JOB_FORMAT = "threefold-score-job/1"
 FORMATS = ("parquet", "csv")
 #: Requests per part (and per staging chunk).
-DEFAULT_CHUNK_ROWS = 50_000
+DEFAULT_CHUNK_ROWS = SCORE_CHUNK_ROWS
 _CANDIDATE_CHUNK_ROWS = 1_000_000
 _ROW = "__row"  # staged column: the request's data row in its file
 
@@ -212,20 +214,20 @@ def _stage_requests(requests, name: str, staging: Path, chunk_rows: int, recomme
         blank = blank_mask(chunk["request_id"])
         if blank.any():
             raise InputRowsError("request_id", np.flatnonzero(blank), "a blank request id").located(name, first_row)
-        ids = _id_hashes(chunk["request_id"])
-        try:  # the checks the recommender would make later, made before any scoring
-            recommender.request_times(chunk)
-            recommender.request_k(chunk, DEFAULT_K)
-        except InputRowsError as error:
-            raise error.located(name, first_row) from None
-        hashes.append(ids)
-        parts.append(np.full(ids.size, part, dtype=np.int64))
         chunk = chunk.assign(**{_ROW: np.arange(first_row, first_row + len(chunk), dtype=np.int64)})
+        chunk, rejected = _reject_bad_rows(chunk, recommender)
+        for frame, owner in ((chunk, part), (rejected, REJECTED_PART)):
+            hashes.append(_id_hashes(frame["request_id"]))
+            parts.append(np.full(len(frame), owner, dtype=np.int64))
         _write_parquet(pa.Table.from_pandas(chunk, preserve_index=False), staging / f"requests-{part:05d}.parquet")
+        _write_parquet(pa.Table.from_pandas(rejected, schema=_REJECTED_SCHEMA, preserve_index=False),
+                       staging / f"rejected-{part:05d}.parquet")
         counts.append(len(chunk))
-        report(len(chunk))
-    if not counts:
-        raise ValueError(f"{name}: no requests to score (the table is empty).")
+        report(len(chunk) + len(rejected))
+    if not counts:  # an empty input: one empty part, so the output exists with its schema
+        empty = pd.DataFrame({c: pd.Series(dtype=object) for c in columns}).assign(**{_ROW: np.zeros(0, np.int64)})
+        _write_parquet(pa.Table.from_pandas(empty, preserve_index=False), staging / "requests-00000.parquet")
+        counts, hashes, parts = [0], [np.zeros(0, np.uint64)], [np.zeros(0, np.int64)]
     hashes = np.concatenate(hashes)
     parts = np.concatenate(parts)
     order = np.argsort(hashes, kind="stable")  # file order among equal ids: the later rows are the repeats
@@ -235,6 +237,39 @@ def _stage_requests(requests, name: str, staging: Path, chunk_rows: int, recomme
         rows = np.sort(order[repeated])  # 0-based data rows of the file
         raise InputRowsError("request_id", rows, "a request id given before (one row per request)").located(name, 1)
     return counts, hashes, parts
+
+
+#: The part number of a request that is not scored (its row is in ``_rejected.parquet``).
+REJECTED_PART = -1
+REJECTED_FILE = "_rejected.parquet"
+_REJECTED_SCHEMA = pa.schema([("request_id", pa.string()), ("row", pa.int64()), ("column", pa.string()),
+                              ("problem", pa.string()), ("value", pa.string())])
+
+
+def _reject_bad_rows(chunk: pd.DataFrame, recommender: Recommender) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Split requests into those the recommender can score and the rejected ones, with a status per row.
+
+    The checks are the recommender's own (``timestamp``, ``k``), made before
+    any scoring; each rejected row keeps its request id, 1-based data row, the
+    column and the problem, so no request disappears without a trace.
+    """
+    rejected = []
+    while len(chunk):
+        try:
+            recommender.request_times(chunk)
+            recommender.request_k(chunk, DEFAULT_K)
+            break
+        except InputRowsError as error:
+            bad = chunk.iloc[error.rows]
+            rejected.append(pd.DataFrame({"request_id": bad["request_id"].astype(str).to_numpy(),
+                                          "row": bad[_ROW].to_numpy(dtype=np.int64), "column": error.column,
+                                          "problem": error.problem,
+                                          "value": bad[error.column].astype(str).to_numpy()}))
+            chunk = chunk.drop(index=bad.index)
+    rejected = (pd.concat(rejected, ignore_index=True) if rejected
+                else pd.DataFrame({f.name: pd.Series(dtype="int64" if f.name == "row" else object)
+                                   for f in _REJECTED_SCHEMA}))
+    return chunk.reset_index(drop=True), rejected
 
 
 def _stage_candidates(candidates, name: str, staging: Path, hashes: np.ndarray, parts: np.ndarray) -> None:
@@ -258,7 +293,7 @@ def _stage_candidates(candidates, name: str, staging: Path, hashes: np.ndarray, 
                                  chunk["request_id"].iloc[rows].tolist()).located(name, first_row)
         owner = parts[at]
         chunk = chunk.assign(**{_ROW: np.arange(first_row, first_row + len(chunk), dtype=np.int64)})
-        for part in np.unique(owner):
+        for part in np.unique(owner[owner != REJECTED_PART]):  # a rejected request's candidates go with it
             rows = chunk.loc[owner == part].reset_index(drop=True)
             _write_parquet(pa.Table.from_pandas(rows, preserve_index=False),
                            staging / f"candidates-{part:05d}-{chunk_index:05d}.parquet")
@@ -478,11 +513,14 @@ def score_part(out: str | os.PathLike, index: int) -> int:
     with_policies = arguments.policies_sha256 is not None
     tables = staged_policies(out / STAGING, arguments.policies_sha256, recommender) if with_policies else None
     rule_counts = PolicyCounts()
-    ranked = recommender.recommend(frame, k=arguments.k, explain=arguments.explain, catalog=not with_candidates,
-                                   explore=arguments.explore, explore_slots=arguments.explore_slots,
-                                   explore_seed=[0, index], policies=tables, policy_counts=rule_counts)
-    table = pa.Table.from_pandas(ranked, schema=_schema(recommender, arguments.explain, arguments.explore,
-                                                        with_policies), preserve_index=False)
+    schema = _schema(recommender, arguments.explain, arguments.explore, with_policies)
+    if len(frame):
+        ranked = recommender.recommend(frame, k=arguments.k, explain=arguments.explain, catalog=not with_candidates,
+                                       explore=arguments.explore, explore_slots=arguments.explore_slots,
+                                       explore_seed=[0, index], policies=tables, policy_counts=rule_counts)
+        table = pa.Table.from_pandas(ranked, schema=schema, preserve_index=False)
+    else:  # nothing to score in this part (an empty input, or every request rejected)
+        table = schema.empty_table()
     if with_policies:  # before the part lands: a finished part always has its counts
         write_counts(out / STAGING, index, rule_counts)
     temporary = path.with_name(f".{path.name}.tmp")
@@ -517,8 +555,13 @@ def finish_job(out: str | os.PathLike) -> dict:
         rows = (pq.read_metadata(path).num_rows if arguments.format == "parquet"
                 else sum(batch.num_rows for batch in _csv_reader(path)))
         parts.append({"file": path.name, "requests": n_requests, "rows": rows, "sha256": sha256_file(path)})
+    rejected = pa.concat_tables([pq.read_table(f, schema=_REJECTED_SCHEMA) for f in
+                                 sorted((out / STAGING).glob("rejected-*.parquet"))] or [_REJECTED_SCHEMA.empty_table()])
+    _write_parquet(rejected.sort_by("row"), out / REJECTED_FILE)
     manifest = {"format_name": _JOB_FORMAT, "arguments": asdict(arguments), "parts": parts,
-                "requests": sum(counts), "rows": sum(p["rows"] for p in parts)}
+                "requests": sum(counts), "rows": sum(p["rows"] for p in parts),
+                "rejected": {"file": REJECTED_FILE, "requests": rejected.num_rows,
+                             "sha256": sha256_file(out / REJECTED_FILE)}}
     if arguments.policies_sha256 is not None:
         manifest["policies"] = summed_counts(out / STAGING)
     _write_json(manifest, manifest_path)

@@ -51,9 +51,11 @@ import pandas as pd
 import pyarrow as pa
 
 from threefold.core.checks import check_choice, check_int
+from threefold.core.defaults import LIST_LENGTH
 from threefold.core.exceptions import InputRowsError
 from threefold.core.resolve import FALLBACK_LABEL, ResolvedScorer
 from threefold.data.context import ColumnContext, CrossedContext, parse_context, spec_name
+from threefold.data._eventscan import EARLIEST_TIME, LATEST_TIME
 from threefold.data.timestamps import check_timezone, parse_timestamps
 from threefold.models.model_io import load_model
 from threefold.models.refresh import FROM_METADATA as _FROM_METADATA
@@ -75,7 +77,7 @@ _STATUS_TEXT = np.array([";".join(f for j, f in enumerate(_FLAG_ORDER) if code >
 #: What ``explain`` may ask for: no reasons, the three largest, all of them.
 EXPLAIN_CHOICES = ("none", "top3", "all")
 #: List length when a request or a caller names none (the one place this default lives).
-DEFAULT_K = 10
+DEFAULT_K = LIST_LENGTH
 _TOP3 = 3
 #: Cells explained at a time by :meth:`Recommender.reasons` (bounds the memory of the term matrix).
 _REASON_BLOCK = 1 << 17
@@ -289,6 +291,10 @@ class Recommender:
             problem = ("a time without UTC offset, and the model has no time zone" if naive.all()
                        else "not a timestamp (ISO 8601 with offset, or epoch seconds)")
             raise InputRowsError("timestamp", np.flatnonzero(bad), problem, column[bad].astype(str).tolist())
+        outside = parsed.valid & ((parsed.seconds < EARLIEST_TIME) | (parsed.seconds >= LATEST_TIME))
+        if outside.any():
+            raise InputRowsError("timestamp", np.flatnonzero(outside), "a time before 1970 or from 2100 on "
+                                 "(epoch milliseconds? timestamps are epoch seconds)", column[outside].astype(str).tolist())
         times[parsed.valid] = parsed.seconds[parsed.valid]
         return times
 
