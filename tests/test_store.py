@@ -14,7 +14,7 @@ from numpy.testing import assert_allclose
 from threefold import cli
 from threefold.tracking.store import StoreError, open_store, resolve_store, upgrade_store, with_retries
 
-from _tracking import child_env, run, threefold_command, write_config
+from _tracking import SMALL_CONFIG, child_env, run, threefold_command, write_config
 
 
 def runs_by_name(store) -> dict:
@@ -225,3 +225,23 @@ def test_an_old_store_is_refused_and_upgraded_only_after_a_backup(tmp_path):
     store = open_store(folder)
     assert store.experiment_id("after upgrade")
     assert upgrade_store(folder) is None  # already current: nothing to do
+
+
+def test_a_missing_random_state_is_drawn_logged_and_printed_so_a_rerun_reproduces(tmp_path):
+    from threefold.pipeline.config import load_config
+    from threefold.pipeline.experiment import train
+
+    text = SMALL_CONFIG.replace("random_state = 3\n", "")
+    store = open_store(tmp_path / "runs")
+    lines = []
+    first = train(load_config(write_config(tmp_path, text)), store, echo=lines.append)
+    drawn = [line for line in lines if line.startswith("models.cp: no random_state given; drew ")]
+    assert len(drawn) == 1, lines
+    seed = int(drawn[0].split("drew ")[1].split()[0])
+    run = next(r for r in first.runs if r.name == "cp")
+    assert store.client.get_run(run.run_id).data.params["model.random_state"] == str(seed)
+    again = train(load_config(write_config(tmp_path, text.replace("max_sweeps = 2\n", f"max_sweeps = 2\nrandom_state = {seed}\n"),
+                                           name="seeded.toml")), store, echo=lambda line: None)
+    rerun = next(r for r in again.runs if r.name == "cp")
+    assert {k: v for k, v in rerun.metrics.items() if "seconds" not in k and "memory" not in k} == {
+        k: v for k, v in run.metrics.items() if "seconds" not in k and "memory" not in k}

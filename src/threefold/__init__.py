@@ -17,31 +17,77 @@ Experiment tracking (MLflow) lives in :mod:`threefold.pipeline.experiment`, :mod
 :mod:`threefold.pipeline.sweep` and :mod:`threefold.tracking.pyfunc`, imported on demand.
 """
 
-from threefold.models.baselines import PopularityBaseline, RandomBaseline, context_free_mf
-from threefold.data.build import BuildReport, build_tensor, select_window
-from threefold.data.context import ColumnContext, CrossedContext, Daypart, WeekPart, derive_contexts, parse_context
-from threefold.models.cp.model import CPModel, CPResult, SweepRecord, fit_cp, fold_in
-from threefold.models.diagnostics import factor_match_score
-from threefold.evaluation.harness import EvaluationResult, evaluate, evaluate_stage, select_best
-from threefold.data.events import load_events, load_items, pseudonymize_ids
-from threefold.core.exceptions import ConvergenceWarning
-from threefold.core.feedback import CellEvidence, FeedbackWeighting, cell_weights
-from threefold.models.tucker.hooi import HOOIModel, fit_hooi
-from threefold.models.tucker.implicit import ImplicitTuckerModel, fit_implicit_tucker
-from threefold.models.model_io import load_model, save_model
-from threefold.data.propensity import PositionPropensity, estimate_position_propensity
-from threefold.core.scoring import Scorer, ScoreTerms
-from threefold.demo.simulate import simulate_site, true_relevance, write_site
-from threefold.evaluation.splits import EventSplit, last_n_split, temporal_split
-from threefold.models.cp.structure import Structure, Term
-from threefold.core.tensor import SparseTensor
-from threefold.core.tensor_io import load_tensor, save_tensor
-from threefold.models.tucker.result import TuckerResult
-from threefold.data.validate import ValidationReport, load_validated_events, validate_events
-from threefold.core.vocabulary import UNKNOWN, Vocabulary
-from threefold.pipeline.score import score_requests
-from threefold.ranking.recommender import Recommender
-from threefold.ranking.topk import top_k, top_k_product
+import os as _os
+
+# Compiled numba kernels are cached in the user's cache folder, never beside the code (an editable
+# install would otherwise write them into the source tree); an explicit NUMBA_CACHE_DIR wins.
+_os.environ.setdefault("NUMBA_CACHE_DIR", _os.path.join(
+    _os.environ.get("XDG_CACHE_HOME") or _os.path.join(_os.path.expanduser("~"), ".cache"), "threefold", "numba"))
+
+#: Public name -> the module that defines it. Imported on first use (PEP 562), so that
+#: ``import threefold`` and ``threefold --help`` do not pay for numpy, scipy, numba and pandas.
+_EXPORTS = {
+    "BuildReport": "threefold.data.build",
+    "CPModel": "threefold.models.cp.model",
+    "CPResult": "threefold.models.cp.model",
+    "CellEvidence": "threefold.core.feedback",
+    "ColumnContext": "threefold.data.context",
+    "ConvergenceWarning": "threefold.core.exceptions",
+    "CrossedContext": "threefold.data.context",
+    "Daypart": "threefold.data.context",
+    "EvaluationResult": "threefold.evaluation.harness",
+    "EventSplit": "threefold.evaluation.splits",
+    "FeedbackWeighting": "threefold.core.feedback",
+    "HOOIModel": "threefold.models.tucker.hooi",
+    "ImplicitTuckerModel": "threefold.models.tucker.implicit",
+    "PopularityBaseline": "threefold.models.baselines",
+    "PositionPropensity": "threefold.data.propensity",
+    "RandomBaseline": "threefold.models.baselines",
+    "Recommender": "threefold.ranking.recommender",
+    "ScoreTerms": "threefold.core.scoring",
+    "Scorer": "threefold.core.scoring",
+    "SparseTensor": "threefold.core.tensor",
+    "Structure": "threefold.models.cp.structure",
+    "SweepRecord": "threefold.models.cp.model",
+    "Term": "threefold.models.cp.structure",
+    "TuckerResult": "threefold.models.tucker.result",
+    "UNKNOWN": "threefold.core.vocabulary",
+    "ValidationReport": "threefold.data.validate",
+    "Vocabulary": "threefold.core.vocabulary",
+    "WeekPart": "threefold.data.context",
+    "build_tensor": "threefold.data.build",
+    "cell_weights": "threefold.core.feedback",
+    "context_free_mf": "threefold.models.baselines",
+    "derive_contexts": "threefold.data.context",
+    "estimate_position_propensity": "threefold.data.propensity",
+    "evaluate": "threefold.evaluation.harness",
+    "evaluate_stage": "threefold.evaluation.harness",
+    "factor_match_score": "threefold.models.diagnostics",
+    "fit_cp": "threefold.models.cp.model",
+    "fit_hooi": "threefold.models.tucker.hooi",
+    "fit_implicit_tucker": "threefold.models.tucker.implicit",
+    "fold_in": "threefold.models.cp.model",
+    "last_n_split": "threefold.evaluation.splits",
+    "load_events": "threefold.data.events",
+    "load_items": "threefold.data.events",
+    "load_model": "threefold.models.model_io",
+    "load_tensor": "threefold.core.tensor_io",
+    "load_validated_events": "threefold.data.validate",
+    "parse_context": "threefold.data.context",
+    "pseudonymize_ids": "threefold.data.events",
+    "save_model": "threefold.models.model_io",
+    "save_tensor": "threefold.core.tensor_io",
+    "score_requests": "threefold.pipeline.score",
+    "select_best": "threefold.evaluation.harness",
+    "select_window": "threefold.data.build",
+    "simulate_site": "threefold.demo.simulate",
+    "temporal_split": "threefold.evaluation.splits",
+    "top_k": "threefold.ranking.topk",
+    "top_k_product": "threefold.ranking.topk",
+    "true_relevance": "threefold.demo.simulate",
+    "validate_events": "threefold.data.validate",
+    "write_site": "threefold.demo.simulate",
+}
 
 __version__ = "0.1.0"
 
@@ -58,3 +104,17 @@ __all__ = [
     "top_k", "top_k_product",
     "true_relevance", "validate_events", "write_site", "__version__",
 ]
+
+
+def __getattr__(name: str):
+    if name in _EXPORTS:
+        import importlib
+
+        value = getattr(importlib.import_module(_EXPORTS[name]), name)
+        globals()[name] = value  # later lookups skip this function
+        return value
+    raise AttributeError(f"module 'threefold' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(__all__)

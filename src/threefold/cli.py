@@ -11,6 +11,7 @@ import argparse
 import json
 import sys
 import time
+import warnings
 from pathlib import Path
 from typing import Sequence
 
@@ -40,13 +41,15 @@ def _weighting(args: argparse.Namespace):
 
 
 def _parser() -> argparse.ArgumentParser:
-    from threefold.data.events import DEFAULT_CHUNK_ROWS
+    from threefold.core.defaults import EVENT_CHUNK_ROWS as DEFAULT_CHUNK_ROWS
 
     parser = argparse.ArgumentParser(
         prog="threefold",
         description="Context-aware recommendation from implicit feedback: logs to tensors, models, evaluation.",
     )
     parser.add_argument("--version", action="version", version=f"threefold {_version()}")
+    parser.add_argument("--debug", action="store_true",
+                        help="on an error, show the full traceback instead of the one-line message")
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     validate = commands.add_parser("validate", help="check an event log (and items catalog) against the data contract")
@@ -57,6 +60,7 @@ def _parser() -> argparse.ArgumentParser:
                           help=f"rows read per chunk; memory grows with it, the report does not (default {DEFAULT_CHUNK_ROWS:,})")
     validate.add_argument("--strict", action="store_true", help="treat data-quality warnings as errors")
     validate.add_argument("--json", action="store_true", help="print the report as JSON")
+    _add_case_flag(validate)
 
     simulate = commands.add_parser("simulate", help="write the event log of an invented demo site")
     simulate.add_argument("out", help="output folder")
@@ -65,7 +69,7 @@ def _parser() -> argparse.ArgumentParser:
     simulate.add_argument("--format", dest="file_format", choices=("parquet", "csv"), default="parquet")
 
     build = commands.add_parser("build", help="build and save the exposure-aware sparse tensor of a log")
-    build.add_argument("events")
+    build.add_argument("events", help="event log: CSV file, Parquet file or folder of Parquet files")
     build.add_argument("out", help="tensor folder to write (a new version each time)")
     build.add_argument("--context", action="append", default=[], metavar="MODE",
                        help="context mode: 'daypart', 'week_part', a column, or columns crossed with '*' (repeatable)")
@@ -79,13 +83,14 @@ def _parser() -> argparse.ArgumentParser:
                        help="replace user ids by salted hashes as they are read")
     build.add_argument("--position-propensity", dest="position_propensity", action="store_true",
                        help="estimate position propensities and weight clicks by their clipped inverse")
+    _add_drop_flag(build)
     _add_weighting_flags(build)
 
     demo = commands.add_parser("demo", help="run the main job end to end on an invented demo site")
     demo.add_argument("--out", default="threefold-demo", help="working folder (default ./threefold-demo)")
     demo.add_argument("--events", dest="n_events", type=int, default=200_000,
                       help="log rows to simulate (default 200,000: enough for context to show its gain)")
-    demo.add_argument("--seed", type=int, default=7)
+    demo.add_argument("--seed", type=int, default=7, help="seed of the simulated site (default 7)")
     models = commands.add_parser(
         "models", help="list the model methods and their parameters (the keys of a [models.NAME] table)",
         description="Every model method with its parameters, defaults and meaning, read from the models' "
@@ -164,8 +169,7 @@ def _add_tracking_commands(commands) -> None:
 
 def _add_score_command(commands) -> None:
     """``score`` (docs/scoring.md)."""
-    from threefold.ranking.batch import DEFAULT_CHUNK_ROWS
-    from threefold.ranking.recommender import DEFAULT_K
+    from threefold.core.defaults import LIST_LENGTH as DEFAULT_K, SCORE_CHUNK_ROWS as DEFAULT_CHUNK_ROWS
 
     score = commands.add_parser(
         "score", help="ranked lists with reasons for a file of requests (resumable; on Dask with --workers)",
@@ -258,6 +262,7 @@ def _add_refresh_command(commands) -> None:
     refresh.add_argument("--metadata-prior", dest="metadata_prior", action="store_true",
                          help="solve items with an attribute row around it instead of around zero")
     refresh.add_argument("--json", action="store_true", help="print the counts as JSON")
+    _add_drop_flag(refresh)
     _add_store_flag(refresh)
 
 
@@ -272,7 +277,8 @@ def cmd_refresh(args: argparse.Namespace) -> int:
 
         store = open_store(args.store)
     report = refresh_model(args.model, args.events, args.out, items=args.items, update_known=args.update_known,
-                           metadata_prior=args.metadata_prior, store=store)
+                           metadata_prior=args.metadata_prior, store=store, errors=args.errors,
+                           allow_case_variant_ids=args.allow_case_variant_ids)
     if args.json:
         print(json.dumps({"out": str(report.out), "counts": report.counts, "ignored_events": report.ignored_events,
                           "window": list(report.window), "seconds": report.seconds, "run_id": report.run_id,
@@ -284,7 +290,7 @@ def cmd_refresh(args: argparse.Namespace) -> int:
 
 def _add_loop_command(commands) -> None:
     """``loop`` (docs/refresh.md, "Measured in a closed loop")."""
-    from threefold.demo.loop import POLICIES
+    from threefold.core.defaults import LOOP_POLICIES as POLICIES
 
     loop = commands.add_parser(
         "loop", help="replay the demo site's requests against refresh policies: each shows lists, the simulator clicks",
@@ -390,6 +396,10 @@ def cmd_score(args: argparse.Namespace) -> int:
                               items=args.items, history=args.history)
     print(f"{manifest['requests']:,} requests, {manifest['rows']:,} rows in {len(manifest['parts'])} part(s): "
           f"{Path(args.out) / '_manifest.json'}")
+    rejected = manifest.get("rejected") or {}
+    if rejected.get("requests"):
+        print(f"warning: {rejected['requests']:,} request(s) not scored (a bad timestamp or k); each row with its "
+              f"column and problem in {Path(args.out) / rejected['file']}", file=sys.stderr)
     if "policies" in manifest:
         from threefold.ranking.policies import PolicyCounts
 
@@ -511,6 +521,23 @@ def _version() -> str:
     return __version__
 
 
+def _add_drop_flag(command) -> None:
+    command.add_argument("--drop-bad-rows", dest="errors", action="store_const", const="drop", default="raise",
+                         help="drop the rows `threefold validate` reports as errors (and clear bad values), listing "
+                              "what was dropped; without it such a log is refused")
+    _add_case_flag(command)
+
+
+def _add_case_flag(command) -> None:
+    command.add_argument("--allow-case-variant-ids", dest="allow_case_variant_ids", action="store_true",
+                         help="accept ids that differ only in letter case ('A12' and 'a12' as two items); "
+                              "an error otherwise")
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    print(f"warning: {message}", file=sys.stderr)
+
+
 def _print_warnings(caught: list) -> None:
     for w in caught:
         print(f"warning: {w.message}", file=sys.stderr)
@@ -520,7 +547,8 @@ def cmd_validate(args: argparse.Namespace) -> int:
     from threefold.data.validate import validate_events
 
     report = validate_events(args.events, items=args.items, timezone=args.timezone,
-                             chunk_rows=args.chunk_rows, strict=args.strict)
+                             chunk_rows=args.chunk_rows, strict=args.strict,
+                             allow_case_variant_ids=args.allow_case_variant_ids)
     print(json.dumps(report.to_dict(), indent=2) if args.json else report.to_text())
     return 0 if report.ok else 1
 
@@ -549,7 +577,7 @@ def _contexts(names: Sequence[str], timezone: str, starts: str | None, labels: s
 def _print_tensor_summary(tensor, report, propensity) -> None:
     print(f"tensor: {tensor}  ({tensor.nbytes / max(tensor.nnz, 1):.0f} bytes per stored cell)")
     print(f"  rows in {report.rows_in:,}; clicks {report.clicks:,}; impressions {report.impressions:,}; "
-          f"skips {report.negatives:,}; dropped {report.dropped or 'none'}")
+          f"skips {report.negatives:,}" + (f"; dropped while building {report.dropped}" if report.dropped else ""))
     for name, vocab in zip(tensor.mode_names[2:], tensor.vocabularies[2:]):
         print(f"  context mode {name}: {', '.join(vocab.labels)}")
     if propensity is not None:
@@ -564,12 +592,10 @@ def cmd_build(args: argparse.Namespace) -> int:
     contexts = _contexts(args.context, args.timezone or "UTC", args.daypart_starts, args.daypart_labels)
     tensor, report, propensity, validation, caught = build_from_log(
         args.events, contexts, _weighting(args), negatives=args.negatives, timezone=args.timezone,
-        salt=args.hash_user_ids_salt, position_propensity=args.position_propensity,
+        salt=args.hash_user_ids_salt, position_propensity=args.position_propensity, errors=args.errors,
+        allow_case_variant_ids=args.allow_case_variant_ids,
     )
     _print_warnings(caught)
-    for problem in validation.problems:
-        print(f"warning: {problem.severity} in column {problem.column!r}: {problem.count:,} row(s) "
-              f"({problem.code}); see `threefold validate`", file=sys.stderr)
     folder = save_tensor(tensor, args.out, extra={"build_report": report.to_dict(),
                                                   "propensity": None if propensity is None else propensity.to_dict()})
     _print_tensor_summary(tensor, report, propensity)
@@ -800,7 +826,9 @@ def main(argv: Sequence[str] | None = None) -> int:
                 "history": cmd_history, "select": cmd_select, "gain": cmd_gain, "explain": cmd_explain, "refresh": cmd_refresh,
                 "loop": cmd_loop}
     try:
-        return handlers[args.command](args)
+        with warnings.catch_warnings():
+            warnings.showwarning = _show_warning  # one line each, as the commands print their own warnings
+            return handlers[args.command](args)
     except BrokenPipeError:  # the reader went away (| head): stop quietly, as a command killed by SIGPIPE would
         try:
             os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())  # nothing left to flush at exit
@@ -808,6 +836,8 @@ def main(argv: Sequence[str] | None = None) -> int:
             pass
         return 141
     except (ValueError, KeyError, FileNotFoundError, MemoryError, SchedulerUnreachable) as error:
+        if args.debug:
+            raise
         message = error.args[0] if isinstance(error, KeyError) and error.args else error
         print(f"threefold {args.command}: error: {message}", file=sys.stderr)
         return 1

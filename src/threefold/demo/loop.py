@@ -43,6 +43,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from threefold.core.defaults import LOOP_POLICIES
 from threefold.core.progress import progress
 from threefold.data.build import build_tensor
 from threefold.data.context import ColumnContext, Daypart
@@ -54,7 +55,7 @@ from threefold.ranking.recommender import Recommender
 
 __all__ = ["POLICIES", "LoopResult", "closed_loop"]
 
-POLICIES = ("stale", "nightly", "retrain", "hourly", "hourly+metadata", "hourly+explore", "popularity", "oracle")
+POLICIES = LOOP_POLICIES
 K = 10
 HOUR = 3600
 

@@ -15,6 +15,7 @@ The data and fitting steps (:func:`load_dataset`, :func:`prepare_stage`,
 
 from __future__ import annotations
 
+import secrets
 import time
 import warnings
 from dataclasses import dataclass
@@ -29,7 +30,9 @@ from threefold.evaluation.policy_lists import SUFFIX as POLICY_SUFFIX
 from threefold.models.registry import FACTOR_METHODS, param_table
 from threefold.pipeline.config import ExperimentConfig
 from threefold.pipeline.select import auto_models, select_and_log
-from threefold.pipeline.stages import Dataset, StageData, TruthSource, load_dataset, make_estimator, prepare_stage
+from threefold.pipeline.stages import (
+    Dataset, StageData, TruthSource, load_dataset, make_estimator, prepare_stage, with_seeds,
+)
 from threefold.core.scoring import Scorer
 
 #: Prefix of a run's metrics measured on its lists after the config's ``[policies]``.
@@ -275,6 +278,10 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
     reaped = store.reap_stale_runs()
     for run_id, reason in reaped:
         echo(f"marked run {run_id} killed ({reason})")
+    config, seeds = with_seeds(config, lambda: secrets.randbelow(2**31))
+    for name, seed in seeds.items():
+        echo(f"models.{name}: no random_state given; drew {seed} (logged with the run; set "
+             f"random_state = {seed} in [models.{name}] to reproduce it)")
     dataset = load_dataset(config, truth)
     for message in dataset.warnings:
         echo(f"warning: {message}")
