@@ -170,3 +170,19 @@ def test_compiled_kernels_are_cached_in_the_user_cache_not_the_source_tree(tmp_p
     assert result.returncode == 0, result.stderr
     assert result.stdout.strip() == str(tmp_path / "cache" / "threefold" / "numba")
     assert any((tmp_path / "cache" / "threefold" / "numba").rglob("*.nbi"))  # the kernels landed there
+
+
+def test_every_option_of_every_command_has_help_text():
+    import argparse
+
+    from threefold import cli
+
+    def silent(parser, path):
+        for action in parser._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                for name, sub in action.choices.items():
+                    yield from silent(sub, [*path, name])
+            elif not action.help:
+                yield " ".join([*path, *(action.option_strings or [action.dest])])
+
+    assert list(silent(cli._parser(), ["threefold"])) == []

@@ -49,8 +49,8 @@ def test_section_keys_are_parameter_names_of_the_api():
     from threefold.data.build import build_tensor
     from threefold.data.context import parse_context
     from threefold.evaluation.harness import EvaluationOptions
-    from threefold.data.events import load_events
     from threefold.evaluation.splits import temporal_split
+    from threefold.pipeline.prepare import read_log
 
     config = load_config(EXAMPLE)
     assert set(config["weighting"]) == {f.name for f in dataclasses.fields(FeedbackWeighting)}
@@ -58,8 +58,8 @@ def test_section_keys_are_parameter_names_of_the_api():
     build_api = set(inspect.signature(build_tensor).parameters) | set(inspect.signature(parse_context).parameters)
     # the command line's flag for the propensity option (threefold build --position-propensity)
     assert set(config["build"]) - build_api == {"position_propensity"}
-    data_api = set(inspect.signature(load_events).parameters)
-    assert set(config["data"]) - data_api == {"events", "items"}  # the files, named as on the command line
+    data_api = set(inspect.signature(read_log).parameters)  # the reader of train, build and refresh
+    assert set(config["data"]) - data_api == {"events"}  # the log, named as on the command line
     evaluation_api = {f.name for f in dataclasses.fields(EvaluationOptions)}
     assert set(config["evaluation"]) - evaluation_api == {"metrics"}  # which metrics summaries show
     defaults = EvaluationOptions()  # one place for the defaults: a config that sets nothing gets them
@@ -183,3 +183,16 @@ def test_every_evaluation_key_reaches_the_evaluation_options(small):
     for key, value in config["evaluation"].items():
         if key not in ("ks", "metrics"):  # ks gains the sweep's k; metrics are what summaries show
             assert getattr(options, key) == value, key
+
+
+def test_unset_removes_a_key_so_a_model_can_switch_method(tmp_path):
+    path = write_config(tmp_path, SMALL_CONFIG)
+    with pytest.raises(ConfigError, match=r"unknown key 'structure' in \[models\.cp\]"):
+        load_config(path, parse_overrides(["models.cp.method=hooi"]))
+    config = load_config(path, parse_overrides(["models.cp.method=hooi"], ["models.cp.structure"]))
+    assert config.models["cp"]["method"] == "hooi" and "structure" not in config.models["cp"]
+    assert config.models["cp"]["rank"] == 4  # the keys both methods take are kept
+    with pytest.raises(ConfigError, match=r"cannot remove 'models\.cp\.solver': the config does not set it"):
+        load_config(path, parse_overrides([], ["models.cp.solver"]))
+    with pytest.raises(ConfigError, match=r"--unset 'structure': write section\.key"):
+        parse_overrides([], ["structure"])

@@ -157,3 +157,18 @@ def test_the_logged_pyfunc_model_ranks_requests_from_another_process(model, tmp_
         assert path.suffix not in (".pkl", ".pickle", ".joblib"), path
         assert not re.match(rb"\A\x80[\x02-\x05]", path.read_bytes()), path
     assert store.client.get_run(run_id).info.status == "FINISHED"
+
+
+def test_an_edited_entry_file_in_the_run_store_is_refused_before_serving(model, tmp_path):
+    from threefold.core.bundle import is_bundle
+    from threefold.tracking.pyfunc import model_folder
+
+    result, _ = model
+    store = open_store(tmp_path / "store")
+    with store.run(store.experiment_id("serving"), run_name="serving"):
+        uri = log_pyfunc(store, result, SERVING)
+    assert is_bundle(model_folder(uri, store=store, download_to=tmp_path / "ok"))  # the untouched model is served
+    entry = tmp_path / "store" / "artifacts" / "models" / uri.removeprefix("models:/") / "artifacts" / "_pyfunc_entry.py"
+    entry.write_text(entry.read_text() + "\nimport os  # an edit MLflow would run on load\n")
+    with pytest.raises(ValueError, match=r"_pyfunc_entry\.py differs from the entry code of this threefold"):
+        model_folder(uri, store=store, download_to=tmp_path / "edited")

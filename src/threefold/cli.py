@@ -21,14 +21,19 @@ __all__ = ["main"]
 def _add_weighting_flags(parser: argparse.ArgumentParser) -> None:
     group = parser.add_argument_group("feedback weighting (docs/feedback.md)")
     group.add_argument("--alpha", type=float, default=10.0, help="click confidence scale (default 10)")
-    group.add_argument("--transform", choices=("log1p", "linear", "none"), default="log1p")
-    group.add_argument("--signal", choices=("clicks", "dwell"), default="clicks")
+    group.add_argument("--transform", choices=("log1p", "linear", "none"), default="log1p",
+                       help="f in a clicked cell's confidence 1 + alpha * f(x): log1p, linear (x) or none (0) (default log1p)")
+    group.add_argument("--signal", choices=("clicks", "dwell"), default="clicks",
+                       help="the evidence x of a cell: its clicks, or its total dwell seconds (default clicks)")
     group.add_argument("--w-skip", dest="w_skip", type=float, default=2.0, help="confidence of each skip (default 2)")
     group.add_argument("--w0", type=float, default=0.1, help="weight of cells never shown (default 0.1; docs/models.md, section 9)")
     group.add_argument("--w0-scope", dest="w0_scope", choices=("cell", "pair"), default="cell",
                        help="w0 per unshown cell, or per (user, item) pair spread over its context cells")
-    group.add_argument("--half-life-hours", dest="half_life_hours", type=float, default=None)
-    group.add_argument("--negatives", choices=("skip_above", "all_exposures", "none"), default="skip_above")
+    group.add_argument("--half-life-hours", dest="half_life_hours", type=float, default=None,
+                       help="weight older events down with this half-life (default: no decay)")
+    group.add_argument("--negatives", choices=("skip_above", "all_exposures", "none"), default="skip_above",
+                       help="which unclicked impressions are skips: those above the lowest click of their request, "
+                            "every one, or none (clicks only) (default skip_above; docs/feedback.md)")
 
 
 def _weighting(args: argparse.Namespace):
@@ -66,7 +71,8 @@ def _parser() -> argparse.ArgumentParser:
     simulate.add_argument("out", help="output folder")
     simulate.add_argument("--events", dest="n_events", type=int, default=100_000, help="log rows (default 100,000)")
     simulate.add_argument("--seed", type=int, default=None, help="random seed (default: the scenario's)")
-    simulate.add_argument("--format", dest="file_format", choices=("parquet", "csv"), default="parquet")
+    simulate.add_argument("--format", dest="file_format", choices=("parquet", "csv"), default="parquet",
+                          help="file format of the log and catalog (default parquet)")
 
     build = commands.add_parser("build", help="build and save the exposure-aware sparse tensor of a log")
     build.add_argument("events", help="event log: CSV file, Parquet file or folder of Parquet files")
@@ -123,6 +129,9 @@ def _add_tracking_commands(commands) -> None:
         sub.add_argument("config", help="experiment config (TOML)")
         sub.add_argument("--set", dest="overrides", action="append", default=[], metavar="SECTION.KEY=VALUE",
                          help="override a config value, e.g. --set models.cp.rank=8 (repeatable)")
+        sub.add_argument("--unset", dest="unset", action="append", default=[], metavar="SECTION.KEY",
+                         help="remove a key so its default applies, e.g. --set models.cp.method=hooi "
+                              "--unset models.cp.structure (repeatable)")
         _add_store_flag(sub)
         if name == "train":
             sub.add_argument("--final", action="store_true",
@@ -154,13 +163,14 @@ def _add_tracking_commands(commands) -> None:
     runs.add_argument("--sort", default=None, metavar="METRIC", help="sort by a metric (highest first)")
     runs.add_argument("--ascending", action="store_true", help="sort lowest first")
     runs.add_argument("--metric", action="append", default=[], help="metric column to show (repeatable)")
-    runs.add_argument("--limit", type=int, default=50)
+    runs.add_argument("--limit", type=int, default=50, help="at most this many runs, newest first (default 50)")
     runs.add_argument("--json", action="store_true", help="print JSON for machines")
     actions = runs.add_subparsers(dest="action", metavar="ACTION")
     compare = actions.add_parser("compare", help="parameter differences and metric deltas of two runs")
-    compare.add_argument("run_a")
-    compare.add_argument("run_b")
-    compare.add_argument("--json", action="store_true", default=argparse.SUPPRESS)
+    compare.add_argument("run_a", help="run id or a prefix of at least 6 characters (the reference, A)")
+    compare.add_argument("run_b", help="run id or prefix (B: deltas are B - A)")
+    compare.add_argument("--json", action="store_true", default=argparse.SUPPRESS,
+                         help="print the differences as JSON")
     _add_store_flag(compare, default=argparse.SUPPRESS)
     for name, text in (("cleanup", "mark runs whose process is gone as killed"),
                        ("upgrade", "back up the store's database, then migrate it to this MLflow's schema")):
@@ -413,7 +423,7 @@ def cmd_train(args: argparse.Namespace) -> int:
     from threefold.pipeline.experiment import summary_text, train
     from threefold.tracking.store import open_store
 
-    config = load_config(args.config, parse_overrides(args.overrides))
+    config = load_config(args.config, parse_overrides(args.overrides, args.unset))
     print(summary_text(train(config, open_store(args.store), truth=site_truth, final=args.final)))
     return 0
 
@@ -424,7 +434,7 @@ def cmd_select(args: argparse.Namespace) -> int:
     from threefold.pipeline.select import auto_models, select_and_log
     from threefold.tracking.store import open_store
 
-    config = load_config(args.config, parse_overrides(args.overrides))
+    config = load_config(args.config, parse_overrides(args.overrides, args.unset))
     if not auto_models(config):
         raise ValueError(f"{args.config}: no CP model has structure = \"auto\"; set it in a [models.NAME] table "
                          "with method = \"cp\" (see docs/models.md, choosing a structure).")
@@ -448,7 +458,7 @@ def cmd_gain(args: argparse.Namespace) -> int:
     from threefold.pipeline.config import load_config, parse_overrides
     from threefold.pipeline.context_report import fit_and_report
 
-    config = load_config(args.config, parse_overrides(args.overrides))
+    config = load_config(args.config, parse_overrides(args.overrides, args.unset))
     quiet = (lambda line: None) if args.json else print
     report = fit_and_report(config, args.model, truth=site_truth, stage=args.stage, echo=quiet)
     print(json.dumps(report.to_dict(), indent=2, default=float) if args.json else report.to_text())
@@ -465,7 +475,7 @@ def cmd_sweep(args: argparse.Namespace) -> int:
     from threefold.demo.simulate import site_truth
     from threefold.pipeline.sweep import sweep
 
-    config = load_config(args.config, parse_overrides(args.overrides))
+    config = load_config(args.config, parse_overrides(args.overrides, args.unset))
     report = sweep(config, open_store(args.store), workers=args.workers, scheduler=args.scheduler, truth=site_truth)
     print(report.trials.to_string(index=False))
     print(f"best trial: {report.best_run_id or 'none finished'} (validation {report.metric}); "

@@ -4,7 +4,7 @@ A model folder is a :mod:`threefold.core.bundle`: versioned subfolders holding
 ``meta.json`` (format version, model type, modes, vocabularies, fit parameters,
 training-data fingerprint, the caller's extra metadata) and ``arrays.npz``
 (factors, weights or core, fit history), every file listed with its SHA-256 in
-``MANIFEST.json``; a small ``CURRENT`` pointer is switched atomically after the
+``checksums.json``; a small ``selected.txt`` pointer is switched atomically after the
 new version is synced, so an interrupted save leaves the previous model
 loadable. Loading verifies every checksum, the bundle format and this module's
 model format version before any array is used, reads arrays with

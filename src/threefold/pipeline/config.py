@@ -243,13 +243,24 @@ def load_config(path: str | os.PathLike, overrides: Mapping[str, object] | None 
     return parse_config(raw, source=str(path), base=path.resolve().parent)
 
 
-def parse_overrides(items: Sequence[str]) -> dict[str, object]:
+#: The value of an override that removes its key (``--unset models.cp.structure``).
+UNSET = object()
+
+
+def parse_overrides(items: Sequence[str], unset: Sequence[str] = ()) -> dict[str, object]:
     """``["models.cp.rank=8", "data.timezone=UTC"]`` -> dotted keys to values.
 
     A value is read as a TOML value (``8``, ``0.5``, ``true``, ``["daypart"]``,
-    ``"text"``); anything that is not valid TOML is taken as a string.
+    ``"text"``); anything that is not valid TOML is taken as a string. Each key
+    of ``unset`` (``"models.cp.structure"``) is removed from the config, so its
+    default applies (switching a model's method with ``--set`` leaves keys the
+    new method may not take: remove them this way).
     """
     out: dict[str, object] = {}
+    for key in unset:
+        if "." not in key or not all(key.split(".")):
+            raise ConfigError(f"--unset {key!r}: write section.key, e.g. --unset models.cp.structure.")
+        out[key.strip()] = UNSET
     for item in items:
         key, sep, text = item.partition("=")
         if not sep or not key.strip() or "." not in key:
@@ -478,7 +489,12 @@ def _set_dotted(raw: dict, dotted: str, value, source: str) -> None:
         if not isinstance(child, dict):
             raise ConfigError(f"{source}: cannot set {dotted!r}: {part!r} is not a table.")
         node = child
-    node[parts[-1]] = value
+    if value is not UNSET:
+        node[parts[-1]] = value
+    elif parts[-1] in node:
+        del node[parts[-1]]
+    else:
+        raise ConfigError(f"{source}: cannot remove {dotted!r}: the config does not set it.")
 
 
 # ---------------------------------------------------------------------- TOML output

@@ -34,7 +34,7 @@ def _problem_text(problem, path, refused: bool = False) -> str:
 
 
 def read_log(path: str | os.PathLike, *, errors: str = "raise", items=None, timezone: str | None = None,
-             salt=None, drop_activity_outliers: bool = False, allow_case_variant_ids: bool = False):
+             hash_user_ids_salt=None, drop_activity_outliers: bool = False, allow_case_variant_ids: bool = False):
     """Validate and load an event log in one pass: the reading of ``build``, ``train``, ``refresh`` and ``demo``.
 
     The checks are exactly those of ``threefold validate`` (one pass, see
@@ -52,7 +52,7 @@ def read_log(path: str | os.PathLike, *, errors: str = "raise", items=None, time
         (clear the values) and warn with the counts.
     items : path, optional
         Items catalog, validated with the log (items unknown to it are warned about).
-    timezone, salt, drop_activity_outliers
+    timezone, hash_user_ids_salt, drop_activity_outliers
         As in :func:`threefold.data.events.load_events`.
     allow_case_variant_ids : bool, default=False
         Ids that differ only in letter case are an error that ``errors="drop"``
@@ -76,8 +76,8 @@ def read_log(path: str | os.PathLike, *, errors: str = "raise", items=None, time
     from threefold.data.validate import load_validated_events
 
     check_choice("errors", errors, ("raise", "drop"), owner="read_log")
-    events, report = load_validated_events(path, items=items, timezone=timezone, hash_user_ids_salt=salt,
-                                           drop_activity_outliers=drop_activity_outliers,
+    events, report = load_validated_events(path, items=items, timezone=timezone,
+                                           hash_user_ids_salt=hash_user_ids_salt, drop_activity_outliers=drop_activity_outliers,
                                            allow_case_variant_ids=allow_case_variant_ids)
     sources = {"events": report.summary["source"], "items": (report.summary.get("catalog") or {}).get("source", items)}
     refused = [p for p in report.errors if errors == "raise" or p.code == "case_variant_id"]
@@ -154,7 +154,7 @@ def build_from_log(events_path: str | os.PathLike, contexts: Sequence, weighting
     """
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        events, validation = read_log(events_path, errors=errors, items=items, timezone=timezone, salt=salt,
+        events, validation = read_log(events_path, errors=errors, items=items, timezone=timezone, hash_user_ids_salt=salt,
                                       allow_case_variant_ids=allow_case_variant_ids)
         options, propensity = tensor_options(events, weighting=weighting, negatives=negatives,
                                              position_propensity=position_propensity)

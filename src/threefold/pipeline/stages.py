@@ -62,7 +62,8 @@ def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         events, _ = read_log(data["events"], errors=data["errors"], items=data["items"], timezone=data["timezone"],
-                             salt=data["hash_user_ids_salt"], drop_activity_outliers=data["drop_activity_outliers"],
+                             hash_user_ids_salt=data["hash_user_ids_salt"],
+                             drop_activity_outliers=data["drop_activity_outliers"],
                              allow_case_variant_ids=data["allow_case_variant_ids"])
         items = load_items(data["items"], timezone=data["timezone"]) if data["items"] else None
     fingerprint = dataset_fingerprint({"events": data["events"], "items": data["items"]}, events, items)

@@ -29,9 +29,13 @@ __all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for"
            "model_folder"]
 
 
+#: The models-from-code file's name, in the package and at the root of a logged model.
+ENTRY_FILE = "_pyfunc_entry.py"
+
+
 def pyfunc_entry_path() -> Path:
     """The models-from-code file MLflow copies into the logged model and runs on load."""
-    return Path(__file__).with_name("_pyfunc_entry.py")
+    return Path(__file__).with_name(ENTRY_FILE)
 
 
 def signature_for(serving: dict):
@@ -152,6 +156,7 @@ def model_folder(model: str | os.PathLike, *, store=None, download_to: str | os.
     """
     import tempfile
 
+    from threefold.core.bundle import is_bundle
     from threefold.ranking.batch import local_model_folder
 
     path = Path(model)
@@ -183,7 +188,9 @@ def model_folder(model: str | os.PathLike, *, store=None, download_to: str | os.
     except (MlflowException, OSError) as error:
         raise ValueError(f"Could not fetch the model {uri!r} from {store.location.tracking_uri}: "
                          f"{getattr(error, 'message', error)}") from None
-    for candidate in (local / "artifacts" / "model", local / "model", local):
-        if (candidate / "CURRENT").is_file():
+    if (local / "MLmodel").is_file():
+        return local_model_folder(local)  # checks the entry code MLflow would run
+    for candidate in (local / "model", local):
+        if is_bundle(candidate):
             return candidate
     raise ValueError(f"The MLflow model {uri!r} holds no threefold model folder (artifacts/model).")
