@@ -99,9 +99,15 @@ class LogSource:
                 "(a floating-point id cannot hold every id exactly). Rewrite the column as text."
             )
         first_row = 1
-        for table in _rebatch(_prefetch(self._batches(names, chunk_rows)), chunk_rows):
-            yield first_row, _ids_as_text(table)
-            first_row += table.num_rows
+        try:
+            for table in _rebatch(_prefetch(self._batches(names, chunk_rows)), chunk_rows):
+                yield first_row, _ids_as_text(table)
+                first_row += table.num_rows
+        except (pa.ArrowInvalid, OSError) as error:  # a corrupt Parquet page is an OSError in pyarrow
+            if self.kind != "csv" or not isinstance(error, pa.ArrowInvalid):
+                raise ValueError(f"{self.path}: unreadable at or after data row {first_row:,} ({error}); the file is "
+                                 "damaged or was cut short: write it again.") from None
+            raise ValueError(_csv_problem(self.path, len(self.columns), first_row, error)) from None
 
     def _batches(self, names: list[str], chunk_rows: int) -> Iterator[pa.RecordBatch]:
         if self.kind == "csv":
@@ -213,6 +219,30 @@ def _ids_as_text(table: pa.Table) -> pa.Table:
     return table
 
 
+def _csv_problem(path: str, n_columns: int, from_row: int, error: Exception) -> str:
+    """The first malformed row of a CSV file at or after ``from_row``, found by a second, row-by-row read.
+
+    Arrow's reader says what is wrong but not where; Python's :mod:`csv` module
+    reads the file again one row at a time (memory: one row) to name the row.
+    """
+    import csv
+
+    with open(path, encoding="utf-8", errors="surrogateescape", newline="") as handle:
+        rows = csv.reader(handle)
+        next(rows, None)  # the header
+        for number, row in enumerate(rows, start=1):
+            if number < from_row:
+                continue
+            if any("\udc80" <= ch <= "\udcff" for field in row for ch in field):
+                column = next(i for i, f in enumerate(row) if any("\udc80" <= ch <= "\udcff" for ch in f))
+                return (f"{path}: data row {number:,}, column {column + 1}: not valid UTF-8 text (save the file "
+                        "as UTF-8).")
+            if len(row) != n_columns:
+                hint = " (an unclosed quote?)" if any('"' in field or "\n" in field for field in row) else ""
+                return f"{path}: data row {number:,} has {len(row)} field(s), the header {n_columns}{hint}."
+    return f"{path}: not a readable CSV file at or after data row {from_row:,} ({error})."
+
+
 def table_source(frame, name: str = "the events") -> LogSource:
     """A log already in memory (a DataFrame or an Arrow table), read as a file would be."""
     table = frame if isinstance(frame, pa.Table) else pa.Table.from_pandas(frame, preserve_index=False)
@@ -240,8 +270,21 @@ def open_source(path: str | os.PathLike) -> LogSource:
     with open(p, "rb") as handle:
         magic = handle.read(4)
     if magic == b"PAR1":
-        return LogSource(str(p), "parquet", pq.read_schema(str(p)))
-    reader = pcsv.open_csv(str(p), read_options=pcsv.ReadOptions(block_size=1 << 20))
+        try:
+            return LogSource(str(p), "parquet", pq.read_schema(str(p)))
+        except (pa.ArrowInvalid, OSError) as error:
+            raise ValueError(f"{p}: not a readable Parquet file ({error}); it is damaged or was cut short.") from None
+    if p.stat().st_size == 0:
+        raise ValueError(f"{p}: the file is empty; a CSV log starts with a header row (user_id,item_id,timestamp,...).")
+    try:
+        reader = pcsv.open_csv(str(p), read_options=pcsv.ReadOptions(block_size=1 << 20),
+                               convert_options=pcsv.ConvertOptions(column_types={}, strings_can_be_null=False))
+    except pa.ArrowInvalid as error:
+        header = p.open(encoding="utf-8", errors="surrogateescape").readline()
+        raise ValueError(_csv_problem(str(p), header.count(",") + 1, 1, error)) from None
     names = reader.schema.names
+    repeated = sorted({n for n in names if names.count(n) > 1})
+    if repeated:
+        raise ValueError(f"{p}: column(s) {repeated} appear more than once in the header; give each column once.")
     schema = pa.schema([pa.field(name, pa.string()) for name in names])
     return LogSource(str(p), "csv", schema)

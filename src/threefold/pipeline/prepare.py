@@ -88,6 +88,10 @@ def read_log(path: str | os.PathLike, *, errors: str = "raise", items=None, time
                          + (f" ({kinds} kinds of error in all)" if kinds > 1 else "")
                          + f". Run `threefold validate {path}` for the full report; dropping these rows is an "
                          "explicit choice (--drop-bad-rows, [data] errors = \"drop\", errors=\"drop\").")
+    if not len(events):
+        read = events.attrs["threefold_load"]["rows_read"]
+        raise ValueError(f"{path}: no usable rows (read {read:,}" + (", all dropped" if read else ": only a header")
+                         + "); nothing to build a model from.")
     for problem in (*report.errors, *report.warnings):
         warnings.warn(_problem_text(problem, sources[problem.source]), EventLogWarning, stacklevel=2)
     load = events.attrs["threefold_load"]
