@@ -245,3 +245,23 @@ def test_a_missing_random_state_is_drawn_logged_and_printed_so_a_rerun_reproduce
     rerun = next(r for r in again.runs if r.name == "cp")
     assert {k: v for k, v in rerun.metrics.items() if "seconds" not in k and "memory" not in k} == {
         k: v for k, v in run.metrics.items() if "seconds" not in k and "memory" not in k}
+
+
+def test_a_logged_model_left_pending_by_a_killed_run_is_marked_failed(tmp_path):
+    # MLflow creates a logged model PENDING and finalizes it once its files are written; a process
+    # killed in between leaves it PENDING forever. The next command marks it FAILED (runs are reaped alike).
+    store = open_store(tmp_path / "runs")
+    experiment = store.experiment_id("debris")
+    dead = store.client.create_run(experiment)
+    orphan = store.client.create_logged_model(experiment, source_run_id=dead.info.run_id, name="model")
+    store.client.set_terminated(dead.info.run_id, status="KILLED")
+    alive = store.client.create_run(experiment)  # still running (no process tag: never reaped)
+    busy = store.client.create_logged_model(experiment, source_run_id=alive.info.run_id, name="model")
+    reaped = store.reap_stale_runs()
+    assert [model_id for model_id, _ in reaped] == [orphan.model_id]
+    model = store.client.get_logged_model(orphan.model_id)
+    assert str(model.status) == "FAILED" and model.tags["threefold.ended_by"].startswith("cleanup: run ")
+    assert str(store.client.get_logged_model(busy.model_id).status) == "PENDING"
+    assert store.reap_stale_runs() == []
+    listing = run(threefold_command("runs", "--store", str(tmp_path / "runs")), cwd=tmp_path)
+    assert listing.returncode == 0, listing.stderr[-2000:]

@@ -510,8 +510,10 @@ def cmd_runs(args: argparse.Namespace) -> int:
         print("the store is already current" if backup is None else f"backed up to {backup}; store migrated")
         return 0
     store = open_store(args.store)
+    from threefold.tracking.store import cleanup_line
+
     for run_id, reason in store.reap_stale_runs():
-        print(f"marked run {run_id} killed ({reason})", file=sys.stderr if args.json else sys.stdout)
+        print(cleanup_line(run_id, reason), file=sys.stderr if args.json else sys.stdout)
     if args.action == "cleanup":
         return 0
     if args.action == "compare":

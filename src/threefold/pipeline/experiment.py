@@ -274,10 +274,11 @@ def train(config: ExperimentConfig, store, *, echo: Callable[[str], None] = prin
     TrainReport
     """
     from threefold.tracking.runlog import SweepLogger, environment_tags, log_metrics, log_params
+    from threefold.tracking.store import cleanup_line
 
     reaped = store.reap_stale_runs()
     for run_id, reason in reaped:
-        echo(f"marked run {run_id} killed ({reason})")
+        echo(cleanup_line(run_id, reason))
     config, seeds = with_seeds(config, lambda: secrets.randbelow(2**31))
     for name, seed in seeds.items():
         echo(f"models.{name}: no random_state given; drew {seed} (logged with the run; set "

@@ -218,6 +218,7 @@ def sweep(config: ExperimentConfig, store, *, workers: int = 2, scheduler: str |
     from threefold.core.checks import check_int
     from threefold.pipeline.stages import load_dataset, with_seeds
     from threefold.tracking.runlog import environment_tags, log_metrics, log_params
+    from threefold.tracking.store import cleanup_line
 
     workers = check_int("workers", workers, low=1, owner="sweep")
     sweep_cfg = config["sweep"]
@@ -228,7 +229,7 @@ def sweep(config: ExperimentConfig, store, *, workers: int = 2, scheduler: str |
     model = sweep_cfg["model"] or next(iter(config.models))
     metric = f"{sweep_cfg['metric']}_at_{sweep_cfg['k']}"
     for run_id, reason in store.reap_stale_runs():
-        echo(f"marked run {run_id} killed ({reason})")
+        echo(cleanup_line(run_id, reason))
     config, seeds = with_seeds(config, lambda: sweep_cfg["random_state"] or 0)  # fixed: a rerun resumes its trials
     for name, seed in seeds.items():
         echo(f"models.{name}: no random_state given; every trial uses [sweep] random_state = {seed}")

@@ -324,11 +324,11 @@ class RunStore:
             self.call(self.client.set_terminated, run_id, status=status)
 
     def reap_stale_runs(self) -> list[tuple[str, str]]:
-        """Mark KILLED every RUNNING run of this host whose process is gone.
+        """Mark KILLED every RUNNING run of this host whose process is gone, and FAILED their unfinished models.
 
         Returns
         -------
-        list of (run_id, reason)
+        list of (run_id or model_id, reason)
         """
         host = socket.gethostname()
         experiments = [e.experiment_id for e in self.call(self.client.search_experiments)]
@@ -346,7 +346,39 @@ class RunStore:
             self.call(self.client.set_tag, run.info.run_id, TAG_ENDED_BY, reason)
             self.call(self.client.set_terminated, run.info.run_id, status="KILLED")
             reaped.append((run.info.run_id, reason))
+        reaped += self._fail_orphaned_models(experiments)
         return reaped
+
+    def _fail_orphaned_models(self, experiments: list[str]) -> list[tuple[str, str]]:
+        """Mark FAILED every logged model still PENDING whose run has ended (killed mid-save).
+
+        MLflow creates a logged model as PENDING before its files are written and
+        finalizes it after; a process killed in between leaves a model without
+        artifacts that looks loadable (``No such artifact: ''``). Once its run is
+        no longer running it can never be finished, so it is marked FAILED and
+        tagged with the reason; its run's other models are untouched.
+        """
+        from mlflow.entities import LoggedModelStatus
+
+        failed = []
+        for model in self.call(self.client.search_logged_models, experiments, max_results=5000):
+            if str(model.status) != "PENDING" or not model.source_run_id:
+                continue
+            run = self.call(self.client.get_run, model.source_run_id)
+            if run.info.status == "RUNNING":
+                continue
+            reason = f"cleanup: run {model.source_run_id} ended ({run.info.status}) before the model was saved"
+            self.call(self.client.set_logged_model_tags, model.model_id, {TAG_ENDED_BY: reason})
+            self.call(self.client.finalize_logged_model, model.model_id, LoggedModelStatus.FAILED)
+            failed.append((model.model_id, reason))
+        return failed
+
+
+def cleanup_line(item_id: str, reason: str) -> str:
+    """The line printed for one entry of :meth:`RunStore.reap_stale_runs` (a run, or a logged model ``m-...``)."""
+    if item_id.startswith("m-"):
+        return f"marked logged model {item_id} failed ({reason})"
+    return f"marked run {item_id} killed ({reason})"
 
 
 def open_store(store: str | os.PathLike | None = None) -> RunStore:
