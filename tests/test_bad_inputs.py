@@ -141,7 +141,17 @@ CONFIG_CASES = {
     "unset a key it does not set": (SMALL_CONFIG, ("--unset", "models.cp.solver"),
                                     r"cannot remove 'models\.cp\.solver': the config does not set it"),
     "set without a value": (SMALL_CONFIG, ("--set", "rank"), r"--set 'rank': write section\.key=value"),
-    "events file missing": (SMALL_CONFIG.replace("events.parquet", "absent.parquet"), (), r"absent\.parquet"),
+    "events file missing": (SMALL_CONFIG.replace("events.parquet", "absent.parquet"), (),
+                            r"bad\.toml: \[data\] events = '.*absent\.parquet': no such file or folder"),
+    "items file missing": (SMALL_CONFIG.replace("items.parquet", "absent.parquet"), (),
+                           r"bad\.toml: \[data\] items = '.*absent\.parquet': no such file or folder"),
+    "context column absent": (SMALL_CONFIG.replace('"daypart", "device"', '"daypart", "screen"').replace(
+        "item*device:2", "item*screen:2"), (), r"bad\.toml: \[build\] contexts read the column\(s\) \['screen'\]"),
+    "cutoff after the log": (SMALL_CONFIG.replace("2026-04-04T00:00:00+00:00", "2027-04-04T00:00:00+00:00"), (),
+                             r"bad\.toml: \[split\] cutoff 2027-04-04T00:00:00Z is outside the log's time range"),
+    "cutoff before the log": (SMALL_CONFIG.replace("2026-04-04T00:00:00+00:00", "2020-04-04T00:00:00+00:00"), (),
+                              r"bad\.toml: \[split\] cutoff 2020-04-04T00:00:00Z is outside the log's time range"),
+    "a mode no context builds": (SMALL_CONFIG.replace("item*device:2", "item*weather:2"), (), r"weather"),
 }
 
 

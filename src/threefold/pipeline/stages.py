@@ -10,12 +10,13 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Callable
 
 import pandas as pd
 
 from threefold.models.registry import FACTOR_METHODS, model_class
-from threefold.pipeline.config import ExperimentConfig
+from threefold.pipeline.config import ConfigError, ExperimentConfig
 
 __all__ = ["Dataset", "StageData", "TruthSource", "load_dataset", "prepare_stage", "build_options", "make_estimator",
            "with_seeds"]
@@ -59,6 +60,7 @@ def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> 
     from threefold.tracking.runlog import dataset_fingerprint
 
     data = config["data"]
+    _check_files(config)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         events, _ = read_log(data["events"], errors=data["errors"], items=data["items"], timezone=data["timezone"],
@@ -66,9 +68,41 @@ def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> 
                              drop_activity_outliers=data["drop_activity_outliers"],
                              allow_case_variant_ids=data["allow_case_variant_ids"])
         items = load_items(data["items"], timezone=data["timezone"]) if data["items"] else None
+    _check_cutoff(config, events)
     fingerprint = dataset_fingerprint({"events": data["events"], "items": data["items"]}, events, items)
     return Dataset(events=events, items=items, fingerprint=fingerprint, warnings=[str(w.message) for w in caught],
                    true_relevance=truth(data["events"]) if truth is not None else None)
+
+
+def _check_files(config: ExperimentConfig) -> None:
+    """The files of ``[data]`` exist and the log has the columns ``[build] contexts`` read (before any row is read)."""
+    from threefold.data._logreader import open_source
+    from threefold.ranking.recommender import raw_columns
+
+    data = config["data"]
+    for key in ("events", "items"):
+        if data[key] is not None and not Path(data[key]).exists():
+            raise ConfigError(f"{config.source}: [data] {key} = {data[key]!r}: no such file or folder.")
+    columns = open_source(data["events"]).columns
+    needed = dict.fromkeys(c for spec in config.contexts() for c in raw_columns(spec))
+    missing = [c for c in needed if c not in columns]
+    if missing:
+        raise ConfigError(f"{config.source}: [build] contexts read the column(s) {missing}, which {data['events']} "
+                          f"does not have; its columns are {columns}.")
+
+
+def _check_cutoff(config: ExperimentConfig, events: pd.DataFrame) -> None:
+    """The ``[split] cutoff`` falls inside the log's time range (else no window has events)."""
+    from threefold.data._report import iso_utc
+    from threefold.data.timestamps import to_epoch_seconds
+
+    times = events["timestamp"].to_numpy()
+    cutoff = to_epoch_seconds(config["split"]["cutoff"], "cutoff")
+    first, last = int(times.min()), int(times.max())
+    if not first < cutoff <= last:
+        raise ConfigError(f"{config.source}: [split] cutoff {iso_utc(cutoff)} is outside the log's time range "
+                          f"({iso_utc(first)} to {iso_utc(last)}); the training events are those before it and the "
+                          "test window starts at it, so choose a time inside the range.")
 
 
 def prepare_stage(config: ExperimentConfig, dataset: Dataset, stage_name: str) -> StageData:
