@@ -67,3 +67,12 @@ def test_context_errors_are_clear():
         derive_contexts(pd.DataFrame({"timestamp": [0]}), [ColumnContext("tone")])
     with pytest.raises(ValueError, match="reserved mode names"):
         derive_contexts(pd.DataFrame({"timestamp": [0], "item": ["x"]}), [ColumnContext("item")])
+
+
+def test_a_repeated_daypart_label_says_how_to_write_a_bin_across_midnight():
+    with pytest.raises(ValueError, match=r"hours before the first start belong to the last bin"):
+        Daypart(starts=(0, 5, 21), labels=("night", "day", "night"))
+    # the rule itself: 02:00 and 23:00 UTC both fall in the last bin, 'night' (common practice for dayparts)
+    bins = Daypart(starts=(5, 21), labels=("day", "night")).labels_for(
+        pd.DataFrame({"timestamp": [2 * 3600, 23 * 3600, 12 * 3600]}))
+    assert list(bins) == ["night", "night", "day"]

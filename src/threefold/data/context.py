@@ -114,7 +114,11 @@ class Daypart:
         if any(b <= a for a, b in zip(starts, starts[1:])) or starts[0] < 0 or starts[-1] >= 24:
             raise ValueError(f"Daypart starts must increase strictly within [0, 24); got {starts}.")
         if UNKNOWN in self.labels or len(set(self.labels)) != len(self.labels):
-            raise ValueError(f"Daypart labels must be unique and not {UNKNOWN!r}; got {self.labels}.")
+            raise ValueError(
+                f"Daypart labels must be unique and not {UNKNOWN!r}; got {self.labels}. A bin that runs across "
+                "midnight needs no repeated label: the hours before the first start belong to the last bin "
+                "(starts 5, 9, 12, 17, 21 with labels early, morning, afternoon, evening, night make 'night' "
+                "21:00 to 05:00).")
 
     @property
     def levels(self) -> tuple[str, ...]:
