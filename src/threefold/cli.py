@@ -477,7 +477,9 @@ def cmd_sweep(args: argparse.Namespace) -> int:
 
     config = load_config(args.config, parse_overrides(args.overrides, args.unset))
     report = sweep(config, open_store(args.store), workers=args.workers, scheduler=args.scheduler, truth=site_truth)
-    print(report.trials.to_string(index=False))
+    from threefold.core.text import frame_table
+
+    print("\n".join(frame_table(report.trials)))
     print(f"best trial: {report.best_run_id or 'none finished'} (validation {report.metric}); "
           f"parent run {report.parent_run_id}")
     return 0
@@ -618,6 +620,7 @@ def cmd_build(args: argparse.Namespace) -> int:
 def cmd_demo(args: argparse.Namespace) -> int:
     from threefold.data.context import Daypart, ColumnContext
     from threefold.core.feedback import FeedbackWeighting
+    from threefold.demo.reading import plain_reading
     from threefold.demo.simulate import simulate_site, site_truth, write_site
     from threefold.pipeline.config import load_config
     from threefold.pipeline.experiment import summary_text, train
@@ -658,6 +661,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     store = open_store(str(out / "runs"))
     report = train(config, store, echo=lambda line: print(f"   {line}"), truth=site_truth)
     print(summary_text(report))
+    print("\n".join(plain_reading(report)))
     print(f"   list the runs: threefold runs --store {out / 'runs'}")
     run = _demo_score(out, log_dir, report, store, site)
     if run is not None:

@@ -30,6 +30,7 @@ from threefold.evaluation.policy_lists import SUFFIX as POLICY_SUFFIX
 from threefold.models.registry import FACTOR_METHODS, param_table
 from threefold.pipeline.config import ExperimentConfig
 from threefold.pipeline.select import auto_models, select_and_log
+from threefold.core.text import text_table
 from threefold.pipeline.stages import (
     Dataset, StageData, TruthSource, load_dataset, make_estimator, prepare_stage, with_seeds,
 )
@@ -396,10 +397,7 @@ def summary_text(report: TrainReport) -> str:
     """The table ``threefold train`` prints: key metrics with 95% intervals and each model's URI."""
     rows = [[run.name] + [_interval_text(run.metrics, m).split(" ", 1)[1] for m in report.key_metrics]
             + [f"{run.seconds:.1f}", run.model_uri or "-"] for run in report.runs]
-    header = ["model"] + report.key_metrics + ["fit s", "model URI"]
-    widths = [max(len(str(r[i])) for r in rows + [header]) for i in range(len(header))]
-    lines = ["  ".join(str(c).ljust(w) for c, w in zip(header, widths))]
-    lines += ["  ".join(str(c).ljust(w) for c, w in zip(r, widths)) for r in rows]
+    lines = text_table(["model"] + report.key_metrics + ["fit s", "model URI"], rows)
     lines.append(f"parent run {report.parent_run_id}; intervals are 95% percentile bootstrap over users")
     lines += _paired_lines(report)
     lines += _policy_lines(report)

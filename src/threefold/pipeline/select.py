@@ -122,10 +122,11 @@ class Selection:
     evaluation: object = field(repr=False, default=None)
 
     def to_text(self) -> str:
-        shown = self.table.copy()
+        from threefold.core.text import frame_table
+
         lines = [f"structure selection for [models.{self.model}] on the validation window ({self.metric}, "
                  f"paired with mf, 95% bootstrap intervals):",
-                 shown.to_string(index=False, float_format=lambda x: f"{x:.4f}"),
+                 *frame_table(self.table, last=("structure",)),
                  f"chosen: {self.chosen}  ({self.structure})"]
         if self.chosen == "mf":
             lines.append("no context structure beat mf with 95% confidence (interval above zero and Holm-adjusted "
