@@ -148,30 +148,9 @@ def local_model_folder(path: str | os.PathLike) -> Path:
     if is_bundle(path):
         return path
     if (path / "MLmodel").is_file() and is_bundle(path / "artifacts" / "model"):
-        check_entry_code(path)
-        return path / "artifacts" / "model"
+        return path / "artifacts" / "model"  # its entry code is checked by threefold.tracking.pyfunc.model_folder
     raise ValueError(f"{path} is neither a threefold model folder (no {POINTER} pointer) nor a downloaded MLflow "
                      "model of threefold (no MLmodel with artifacts/model).")
-
-
-def check_entry_code(logged: Path) -> None:
-    """Refuse a downloaded MLflow model whose models-from-code entry file is not this threefold's.
-
-    ``mlflow.pyfunc.load_model`` runs that file; threefold's own loaders
-    (``score``, ``refresh``, ``explain``) only read the model folder, but they
-    check the file first so that an edited copy is noticed before anything
-    serves the model. The file is compared, by SHA-256, with the one installed
-    with threefold, without importing it.
-    """
-    from threefold.tracking.pyfunc import ENTRY_FILE, pyfunc_entry_path
-
-    entry = logged / ENTRY_FILE
-    if entry.is_symlink() or not entry.is_file():
-        raise ValueError(f"{entry} is missing or a symbolic link: not a model logged by threefold; refused.")
-    if sha256_file(entry) != sha256_file(pyfunc_entry_path()):
-        raise ValueError(f"{entry} differs from the entry code of this threefold ({pyfunc_entry_path()}): it was "
-                         "edited, or logged by another threefold version. Refused: MLflow would run it on load. "
-                         "Log the model again with this version (docs/scoring.md, trust boundary).")
 
 
 # ---------------------------------------------------------------------------- inputs

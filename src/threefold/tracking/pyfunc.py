@@ -25,6 +25,7 @@ from threefold.data.context import spec_name
 from threefold.ranking.recommender import DEFAULT_K, OUTPUT_COLUMNS, Recommender, context_specs, raw_columns
 
 __all__ = ["Recommender", "RecommenderPyfunc", "OUTPUT_COLUMNS", "signature_for", "pyfunc_entry_path", "log_pyfunc",
+           "check_entry_code",
            "log_model_folder",
            "model_folder"]
 
@@ -133,6 +134,26 @@ class RecommenderPyfunc(mlflow.pyfunc.PythonModel):
                                           explain=explain)
 
 
+def check_entry_code(logged: Path) -> None:
+    """Refuse a downloaded MLflow model whose models-from-code entry file is not this threefold's.
+
+    ``mlflow.pyfunc.load_model`` runs that file; threefold's own loaders
+    (``score``, ``refresh``, ``explain``) only read the model folder, but they
+    check the file first so that an edited copy is noticed before anything
+    serves the model. The file is compared, by SHA-256, with the one installed
+    with threefold, without importing it.
+    """
+    from threefold.core.bundle import sha256_file
+
+    entry = logged / ENTRY_FILE
+    if entry.is_symlink() or not entry.is_file():
+        raise ValueError(f"{entry} is missing or a symbolic link: not a model logged by threefold; refused.")
+    if sha256_file(entry) != sha256_file(pyfunc_entry_path()):
+        raise ValueError(f"{entry} differs from the entry code of this threefold ({pyfunc_entry_path()}): it was "
+                         "edited, or logged by another threefold version. Refused: MLflow would run it on load. "
+                         "Log the model again with this version (docs/experiments.md, the trust boundary).")
+
+
 def model_folder(model: str | os.PathLike, *, store=None, download_to: str | os.PathLike | None = None) -> Path:
     """The local model folder behind a model folder path, a run id, or an MLflow model URI.
 
@@ -161,6 +182,8 @@ def model_folder(model: str | os.PathLike, *, store=None, download_to: str | os.
 
     path = Path(model)
     if path.is_dir():
+        if (path / "MLmodel").is_file():
+            check_entry_code(path)
         return local_model_folder(path)
     text = str(model)
     if store is None:
@@ -189,7 +212,8 @@ def model_folder(model: str | os.PathLike, *, store=None, download_to: str | os.
         raise ValueError(f"Could not fetch the model {uri!r} from {store.location.tracking_uri}: "
                          f"{getattr(error, 'message', error)}") from None
     if (local / "MLmodel").is_file():
-        return local_model_folder(local)  # checks the entry code MLflow would run
+        check_entry_code(local)
+        return local_model_folder(local)
     for candidate in (local / "model", local):
         if is_bundle(candidate):
             return candidate
