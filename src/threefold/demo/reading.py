@@ -58,6 +58,6 @@ def plain_reading(report, k: int = 10, baseline: str = "mf") -> list[str]:
             continue
         diff, low, high = gain
         verdict = ("pays" if low > 0 else "costs" if high < 0 else "shows no measurable difference")
-        lines.append(f"   - Context {verdict} for {name}: {diff:+.4f} ndcg_true@{k} over {baseline} (the same model "
-                     f"without context), 95% interval [{low:+.4f}, {high:+.4f}], paired per reader.")
+        lines.append(f"   - Context {verdict} for {name}: {diff:+.4f} ndcg_true@{k} over {baseline} (the context-free "
+                     f"baseline), 95% interval [{low:+.4f}, {high:+.4f}], paired per reader.")
     return lines
