@@ -8,6 +8,7 @@ Flags carry the Python parameter names, with ``-`` for ``_`` (``--w-skip`` is
 from __future__ import annotations
 
 import argparse
+import errno
 import json
 import sys
 import time
@@ -864,6 +865,13 @@ def main(argv: Sequence[str] | None = None) -> int:
             raise
         message = error.args[0] if isinstance(error, KeyError) and error.args else error
         print(f"threefold {args.command}: error: {message}", file=sys.stderr)
+        return 1
+    except OSError as error:
+        if args.debug or error.errno not in (errno.ENOSPC, errno.EDQUOT):
+            raise
+        print(f"threefold {args.command}: error: no space left on the device ({error.filename or error}); the "
+              "outputs of earlier runs are intact (a folder is switched to a new version only once it is complete). "
+              "Free some space and run the command again.", file=sys.stderr)
         return 1
 
 

@@ -190,9 +190,14 @@ def write_bundle(
         shutil.rmtree(staging, ignore_errors=True)
         raise
     pointer = root / f".{POINTER}-{uuid.uuid4().hex}"
-    pointer.write_text(f"{final.name} {sha256_file(final / MANIFEST)}\n")
-    _fsync_file(pointer)
-    os.replace(pointer, root / POINTER)
+    try:
+        pointer.write_text(f"{final.name} {sha256_file(final / MANIFEST)}\n")
+        _fsync_file(pointer)
+        os.replace(pointer, root / POINTER)
+    except BaseException:  # e.g. a full disk: the new version is left unselected, the previous one stays current
+        pointer.unlink(missing_ok=True)
+        shutil.rmtree(final, ignore_errors=True)
+        raise
     (root / _LEGACY_POINTER).unlink(missing_ok=True)  # an earlier version's pointer would name an older save
     _fsync_dir(root)
     for old in bundle_versions(root)[: -max(2, keep_versions + 1)]:
