@@ -405,3 +405,16 @@ def test_every_command_that_reads_a_log_refuses_case_variants_even_when_dropping
     with pytest.warns(UserWarning, match="case_variant_id"):
         events, report = read_log(path, allow_case_variant_ids=True)
     assert sorted(events["item_id"]) == ["A12", "a12"] and report.ok
+
+
+def test_a_timestamp_far_outside_the_bulk_of_the_log_is_flagged(tmp_path):
+    # Invented log: 200 events over four days of March 2024, and one row in 1999 (inside the accepted range).
+    lines = [f"u{i % 7},i{i % 5},{1_709_251_200 + i * 1700}" for i in range(200)]
+    lines.insert(120, "u1,i1,915148800")  # 1999-01-01, data row 121
+    report = _validate(tmp_path, "user_id,item_id,timestamp\n" + "\n".join(lines))
+    problem = _check(report, "outlying_timestamp", "timestamp", 1, [121], "warning")
+    assert "2024-03-01 to 2024-03-04" in problem.message and report.ok
+    strict = _validate(tmp_path, "user_id,item_id,timestamp\n" + "\n".join(lines), strict=True)
+    _check(strict, "outlying_timestamp", "timestamp", 1, [121], "error")
+    plain = _validate(tmp_path, "user_id,item_id,timestamp\n" + "\n".join(lines[:120] + lines[121:]))
+    assert plain.problem("outlying_timestamp", "timestamp") is None  # a log of four ordinary days is not flagged

@@ -23,6 +23,9 @@ _CATALOG: dict[str, tuple[Severity, str]] = {
     "future_timestamp": ("warning", "time later than the check time {detail} (clock drift, or epoch milliseconds?); rows kept"),
     "implausible_timestamp": ("error", "time before 1970-01-01 or from 2100-01-01 on (UTC): epoch milliseconds or microseconds? "
                                        "Timestamps are epoch seconds; rows dropped"),
+    "outlying_timestamp": ("warning", "time far outside the bulk of the log (1% to 99% of events: {detail}): a clock "
+                                      "reset, a test row or a wrong unit? Count is rows, rows are each day's first; "
+                                      "rows kept"),
     "unknown_event": ("error", "event is not 'impression' or 'click' (found {detail}); rows dropped"),
     "bad_dwell": ("error", "dwell_seconds is not a finite number; value cleared, rows kept"),
     "negative_dwell": ("error", "negative dwell_seconds; value cleared, rows kept"),

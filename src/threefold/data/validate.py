@@ -33,7 +33,7 @@ import pyarrow.compute as pc
 
 from threefold.core.checks import check_int
 from threefold.data._eventscan import (
-    DROP_REASONS, EVENT_VALUES, REQUIRED_COLUMNS, EventChunk, ProblemTally, cleared_counts, drop_counts, scan_events,
+    DROP_REASONS, EVENT_VALUES, LATEST_TIME, REQUIRED_COLUMNS, EventChunk, ProblemTally, cleared_counts, drop_counts, scan_events,
     scan_items,
 )
 from threefold.data._hashing import HashCounter, HashSet, combine, hash_strings
@@ -46,7 +46,7 @@ __all__ = ["validate_events", "load_validated_events", "ValidationReport", "Prob
 
 #: Data-quality warnings that ``strict=True`` turns into errors.
 STRICT_CODES = frozenset(
-    {"duplicate_row", "future_timestamp", "naive_timestamp", "dst_ambiguous", "dst_nonexistent"}
+    {"duplicate_row", "future_timestamp", "outlying_timestamp", "naive_timestamp", "dst_ambiguous", "dst_nonexistent"}
 )
 _LEVEL_CAP = 10_000
 _CLICK, _IMPRESSION = EVENT_VALUES.index("click"), EVENT_VALUES.index("impression")
@@ -85,6 +85,41 @@ class _CaseTwins:
         return int(twin.sum()), np.sort(rows[twin])[:10].tolist()
 
 
+class _DayCounts:
+    """Events per UTC day over the accepted time range (about 47,500 days: 0.8 MB), and each day's first row.
+
+    The bulk of a log is the span of days between its 1st and 99th percentile
+    event; a day more than three times that span (and at least a week) outside
+    it holds *outlying* timestamps: a clock reset, a test row, a wrong unit that
+    still lands in the accepted range.
+    """
+
+    def __init__(self) -> None:
+        n = LATEST_TIME // 86_400 + 1
+        self.counts = np.zeros(n, dtype=np.int64)
+        self.first_rows = np.full(n, np.iinfo(np.int64).max, dtype=np.int64)
+
+    def add(self, seconds: np.ndarray, rows: np.ndarray) -> None:
+        day = seconds // 86_400
+        self.counts += np.bincount(day, minlength=self.counts.size)
+        days, first = np.unique(day, return_index=True)
+        self.first_rows[days] = np.minimum(self.first_rows[days], rows[first])
+
+    def outliers(self) -> tuple[int, list[int], str]:
+        """Events on outlying days, the first row of each such day (sorted, at most ten), and the bulk's span."""
+        total = int(self.counts.sum())
+        if total == 0:
+            return 0, [], ""
+        cumulative = np.cumsum(self.counts)
+        low = int(np.searchsorted(cumulative, 0.01 * total, side="left"))
+        high = int(np.searchsorted(cumulative, 0.99 * total, side="left"))
+        margin = max(3 * (high - low + 1), 7)
+        outside = (self.counts > 0) & ((np.arange(self.counts.size) < low - margin)
+                                       | (np.arange(self.counts.size) > high + margin))
+        span = f"{iso_utc(low * 86_400)[:10]} to {iso_utc(high * 86_400)[:10]}"
+        return int(self.counts[outside].sum()), np.sort(self.first_rows[outside])[:10].tolist(), span
+
+
 class _EventStats:
     """Summary statistics and cross-row checks accumulated over the chunks of one log."""
 
@@ -106,6 +141,7 @@ class _EventStats:
         self.clicks_by_user: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
         self.has_request = False
         self.case_twins = {"user_id": _CaseTwins(), "item_id": _CaseTwins()}
+        self.days = _DayCounts()
 
     def add(self, chunk: EventChunk) -> None:
         rows, keep = chunk.rows, chunk.keep
@@ -127,6 +163,7 @@ class _EventStats:
         self.time_range = [low if self.time_range[0] is None else min(low, self.time_range[0]),
                            high if self.time_range[1] is None else max(high, self.time_range[1])]
         self.events += np.bincount(event, minlength=self.events.size)
+        self.days.add(ts, krows)
         self.users.add(user, krows)
         self.items.add(item)
         if self.catalog is not None:
@@ -349,6 +386,9 @@ def _run(path, *, items, timezone, chunk_rows, strict, now, max_user_events, col
     if flagged.any():
         event_problems.append(describe("activity_outlier", "user_id", int(flagged.sum()),
                                        np.sort(first_rows[flagged])[:10].tolist(), detail=threshold))
+    outlying, rows, span = stats.days.outliers()
+    if outlying:
+        event_problems.append(describe("outlying_timestamp", "timestamp", outlying, rows, detail=span))
     for column, twins in stats.case_twins.items():
         count, rows = twins.twins()
         if count:
