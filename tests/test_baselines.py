@@ -8,7 +8,6 @@ from threefold.models.baselines import PopularityBaseline, RandomBaseline, conte
 from threefold.data.context import ColumnContext
 from threefold.models.cp.model import CPModel
 from threefold.evaluation.queries import build_queries
-from threefold.core.vocabulary import Vocabulary
 
 T0 = 1_770_000_000
 

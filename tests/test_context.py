@@ -4,7 +4,6 @@ from datetime import datetime, timezone
 
 import pandas as pd
 import pytest
-from numpy.testing import assert_array_equal
 
 from threefold.data.context import ColumnContext, CrossedContext, Daypart, WeekPart, context_levels, derive_contexts, parse_context
 

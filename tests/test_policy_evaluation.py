@@ -70,7 +70,7 @@ def test_the_model_itself_is_measured_exactly_as_without_policies(world):
     assert (ruled.table["model"] == "cp" + SUFFIX).any()
     moved = ruled.report["policies"]["cp" + SUFFIX]["diversity: mmr"]["moved"]
     assert moved > 0
-    assert f"what each list policy did for 'cp + policies':\n  diversity: mmr: fired in " in ruled.to_text()
+    assert "what each list policy did for 'cp + policies':\n  diversity: mmr: fired in " in ruled.to_text()
     assert f"moved {moved:,}" in ruled.to_text()
 
 

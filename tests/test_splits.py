@@ -1,6 +1,5 @@
 """Splits: windows, straddling requests, the guard rails of model selection, and leakage."""
 
-import numpy as np
 import pandas as pd
 import pytest
 

@@ -36,7 +36,7 @@ from threefold.core.checks import check_choice, check_number
 from threefold.data.context import ContextSpec, context_levels, spec_name
 from threefold.core.feedback import CellEvidence, FeedbackWeighting
 from threefold.core.tensor import SparseTensor
-from threefold.core.vocabulary import UNKNOWN, UnseenPolicy, Vocabulary
+from threefold.core.vocabulary import UnseenPolicy, Vocabulary
 
 __all__ = ["BuildReport", "build_tensor", "select_window", "mark_negatives"]
 

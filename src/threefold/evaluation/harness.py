@@ -44,7 +44,7 @@ from threefold.evaluation.set_metrics import alpha_ideal_dcg, alpha_ndcg, expect
 from threefold.ranking.policy_spec import ListPolicies
 from threefold.evaluation.queries import QuerySet, build_queries
 from threefold.core.scoring import Scorer
-from threefold.evaluation.rankers import ScorerRanker, as_ranker
+from threefold.evaluation.rankers import as_ranker
 from threefold.evaluation.splits import Stage, check_selection
 from threefold.core.vocabulary import Vocabulary
 

@@ -9,8 +9,7 @@ consumer of a CP model reads: evaluation and batch scoring through the
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
-from typing import Sequence
+from dataclasses import dataclass
 
 import numpy as np
 
