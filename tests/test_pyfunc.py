@@ -172,3 +172,18 @@ def test_an_edited_entry_file_in_the_run_store_is_refused_before_serving(model, 
     entry.write_text(entry.read_text() + "\nimport os  # an edit MLflow would run on load\n")
     with pytest.raises(ValueError, match=r"_pyfunc_entry\.py differs from the entry code of this threefold"):
         model_folder(uri, store=store, download_to=tmp_path / "edited")
+
+
+def test_scoring_a_downloaded_model_folder_checks_its_entry_file_too(model, tmp_path):
+    from threefold.pipeline.score import score_requests
+
+    result, _ = model
+    store = open_store(tmp_path / "store")
+    with store.run(store.experiment_id("serving"), run_name="serving"):
+        uri = log_pyfunc(store, result, SERVING)
+    logged = tmp_path / "store" / "artifacts" / "models" / uri.removeprefix("models:/") / "artifacts"
+    requests = pd.DataFrame({"request_id": ["a"], "user_id": ["u01"]})
+    assert len(score_requests(logged, requests, out=tmp_path / "ok", show_progress=False)) > 0
+    (logged / "_pyfunc_entry.py").write_text("raise SystemExit('edited')\n")
+    with pytest.raises(ValueError, match=r"_pyfunc_entry\.py differs from the entry code of this threefold"):
+        score_requests(logged, requests, out=tmp_path / "edited", show_progress=False)

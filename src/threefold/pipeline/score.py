@@ -37,7 +37,11 @@ __all__ = ["score_requests", "SchedulerUnreachable"]
 
 def _model_folder(model, out: Path, store) -> Path:
     path = Path(model)
-    if path.is_dir():  # a local folder: no MLflow import (about a second)
+    if path.is_dir():  # a local folder: no MLflow import (about a second), unless it is a downloaded MLflow model
+        if (path / "MLmodel").is_file():
+            from threefold.tracking.pyfunc import check_entry_code
+
+            check_entry_code(path)  # the code MLflow would run on load is this threefold's
         return local_model_folder(path)
     from threefold.tracking.pyfunc import model_folder
     from threefold.tracking.store import open_store
