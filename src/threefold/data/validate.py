@@ -66,12 +66,9 @@ class _CaseTwins:
 
     def add(self, ids: pa.Array, hashes: np.ndarray, rows: np.ndarray) -> None:
         """Ids, their hashes and their 1-based rows (kept rows of one chunk, shape (n,))."""
-        unique, first = np.unique(hashes, return_index=True)
-        new = ~self.seen.contains(unique)
-        if not new.any():
+        take = np.flatnonzero(~self.seen.mark_repeats(hashes))  # first row of each id not seen before
+        if not take.size:
             return
-        self.seen.add(unique[new])
-        take = first[new]
         self.lower.append(hash_strings(pc.utf8_lower(ids.take(pa.array(take)))))
         self.rows.append(rows[take])
 
