@@ -1,12 +1,13 @@
 """The `threefold` command end to end, in real processes (invented data only)."""
 
 import subprocess
+from pathlib import Path
 import sys
 
 import pandas as pd
 import pytest
 
-from _tracking import child_env
+from _tracking import child_env, threefold_command
 
 
 def run(*args, cwd=None):
@@ -186,3 +187,35 @@ def test_every_option_of_every_command_has_help_text():
                 yield " ".join([*path, *(action.option_strings or [action.dest])])
 
     assert list(silent(cli._parser(), ["threefold"])) == []
+
+
+def test_every_command_help_ends_with_an_example_and_the_top_help_with_the_cautions():
+    # Issue 16: "every command has --help with an example"; cautions in the epilogue (common practice).
+    import argparse
+
+    from threefold import cli
+
+    parser = cli._parser()
+    top = parser.format_help()
+    for phrase in ("personal data", "editors review", "controlled online test"):
+        assert phrase in top
+    commands = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    missing = [name for name, sub in commands.choices.items()
+               if f"example:\n  threefold {name}" not in sub.format_help()]
+    assert missing == []
+
+
+@pytest.mark.parametrize("name", ["validate", "build", "models", "simulate"])
+def test_the_help_examples_that_need_only_the_sample_run(name, tmp_path):
+    # The example printed by --help is a command a newcomer can paste in a clone (paths relative to it).
+    import shlex
+
+    from threefold import cli
+
+    repo = Path(__file__).resolve().parents[1]
+    argv = shlex.split(cli.EXAMPLES[name])[1:]
+    argv = [str(repo / a) if a.startswith("data_samples/") else a for a in argv]
+    argv = [str(tmp_path / a) if a.endswith("/") else a for a in argv]
+    result = subprocess.run(threefold_command(*argv), capture_output=True, text=True, cwd=tmp_path,
+                            env=child_env(), timeout=600)
+    assert result.returncode == 0, result.stderr

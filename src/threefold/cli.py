@@ -49,12 +49,70 @@ def _weighting(args: argparse.Namespace):
     )
 
 
+_SAMPLE = "data_samples/quillfen-courier"
+
+# One example per command, shown at the end of its --help (the sample paths exist in a clone).
+EXAMPLES = {
+    "validate": f"threefold validate {_SAMPLE}/events.parquet --items {_SAMPLE}/items.parquet",
+    "simulate": "threefold simulate site/ --events 50000 --seed 3",
+    "build": f"threefold build {_SAMPLE}/events.parquet tensor/ --context daypart --context device",
+    "demo": "threefold demo --out threefold-demo --size small",
+    "models": "threefold models cp",
+    "train": "threefold train experiments/quillfen-courier.toml --set models.cp.rank=16",
+    "sweep": "threefold sweep experiments/quillfen-courier.toml --workers 2",
+    "select": "threefold select experiments/quillfen-courier.toml --model cp",
+    "gain": "threefold gain experiments/quillfen-courier.toml --model cp --figure gain.png",
+    "runs": "threefold runs --sort ndcg_at_10 --limit 10\n  threefold runs compare 3f9a1c 8b22d0",
+    "score": "threefold score runs:/<run id>/model --requests requests.csv --k 10 --explain top3 --out lists/",
+    "history": "threefold history events-30d.parquet --policies rules.toml --out history.npz",
+    "refresh": "threefold refresh <run id> --events today.parquet --items items.parquet --out models/hourly",
+    "explain": ("threefold explain --model <run id> --items items.parquet "
+                "--compare device=mobile device=tablet --out report/"),
+    "loop": "threefold loop --hours 72 --pure",
+}
+
+CAUTIONS = """\
+cautions:
+  - Event logs are personal data: pseudonymise user ids (--hash-user-ids-salt),
+    keep retention short, and follow the data-protection law that applies where
+    the site operates.
+  - Guardrails, diversity and repetition rules change what readers see,
+    sensitive stories included: have editors review them.
+  - Offline metrics do not replace a controlled online test.
+  More in README.md ("Cautions") and the docs/ folder."""
+
+
+class _HelpFormatter(argparse.HelpFormatter):
+    """Wraps each line of a description or epilog on its own and keeps indented lines (commands) as written."""
+
+    def _fill_text(self, text, width, indent):
+        lines = []
+        for line in text.splitlines():
+            if line.startswith("  "):
+                lines.append(indent + line)
+            else:
+                lines.append(super()._fill_text(line, width, indent) if line else "")
+        return "\n".join(lines)
+
+
+def _finish_help(parser: argparse.ArgumentParser, name: str | None = None) -> None:
+    """The same formatter for every (sub)command, and each command's example as its epilog."""
+    parser.formatter_class = _HelpFormatter
+    if name in EXAMPLES:
+        parser.epilog = "example:\n  " + EXAMPLES[name]
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for sub_name, sub in action.choices.items():
+                _finish_help(sub, sub_name if name is None else None)
+
+
 def _parser() -> argparse.ArgumentParser:
     from threefold.core.defaults import EVENT_CHUNK_ROWS as DEFAULT_CHUNK_ROWS
 
     parser = argparse.ArgumentParser(
         prog="threefold",
         description="Context-aware recommendation from implicit feedback: logs to tensors, models, evaluation.",
+        epilog=CAUTIONS,
     )
     parser.add_argument("--version", action="version", version=f"threefold {_version()}")
     parser.add_argument("--debug", action="store_true",
@@ -107,7 +165,7 @@ def _parser() -> argparse.ArgumentParser:
     models = commands.add_parser(
         "models", help="list the model methods and their parameters (the keys of a [models.NAME] table)",
         description="Every model method with its parameters, defaults and meaning, read from the models' "
-                    "parameter tables. Example: threefold models cp",
+                    "parameter tables.",
     )
     models.add_argument("method", nargs="?", default=None, help="one method (default: all)")
     models.add_argument("--json", action="store_true", help="print the tables as JSON")
@@ -117,6 +175,7 @@ def _parser() -> argparse.ArgumentParser:
     _add_refresh_command(commands)
     _add_explain_command(commands)
     _add_loop_command(commands)
+    _finish_help(parser)
     return parser
 
 
@@ -191,8 +250,7 @@ def _add_score_command(commands) -> None:
     score = commands.add_parser(
         "score", help="ranked lists with reasons for a file of requests (resumable; on Dask with --workers)",
         description="Rank items for every request with a saved model and write part files plus a manifest "
-                    "to OUT. Rerun the same command to resume a killed job. Example: threefold score "
-                    "runs:/<run id>/model --requests requests.csv --k 10 --explain top3 --out lists/")
+                    "to OUT. Rerun the same command to resume a killed job.")
     score.add_argument("model", metavar="MODEL",
                        help="a model folder, a run id, or an MLflow model URI (runs:/<id>/model, models:/<name>/<version>)")
     score.add_argument("--requests", required=True,
@@ -229,8 +287,7 @@ def _add_history_command(commands) -> None:
         "history", help="digest an impression and click log for the repetition rules (read once, used by every job)",
         description="Reduce an event log to what the [repetition] rules of RULES need (the pairs each user clicked, "
                     "the pairs shown as often as their cap allows without a click) and write it to OUT, for "
-                    "threefold score --history OUT. Example: threefold history events-30d.parquet --policies "
-                    "rules.toml --out history.npz")
+                    "threefold score --history OUT.")
     history.add_argument("events", metavar="EVENTS", help="CSV or Parquet log: user_id, item_id, timestamp, event")
     history.add_argument("--policies", required=True, metavar="RULES.toml",
                          help="the rules the digest serves (their frequency cap decides the window)")
@@ -264,9 +321,7 @@ def _add_refresh_command(commands) -> None:
         "refresh", help="fold the events since a model's training cutoff into it: new items and users, no retrain",
         description="Read the events since MODEL's training cutoff, fold in new items (then users) with every "
                     "trained factor fixed, give catalog items without events a row from their attributes, and "
-                    "write the result to OUT (a child run of the model's run when MODEL comes from the store). "
-                    "Example: threefold refresh <run id> --events today.parquet --items items.parquet "
-                    "--out models/hourly")
+                    "write the result to OUT (a child run of the model's run when MODEL comes from the store).")
     refresh.add_argument("model", metavar="MODEL",
                          help="a model folder, a run id, or an MLflow model URI (as for threefold score)")
     refresh.add_argument("--events", required=True,
@@ -314,8 +369,7 @@ def _add_loop_command(commands) -> None:
         description="Simulate the demo site, train one CP model on its first days, then replay the following hours "
                     "against each policy: it ranks the live items, the simulator's true click model draws the "
                     "clicks, and the policy learns from them (refresh every --step-hours, a nightly retrain, ...). "
-                    "Prints true-relevance NDCG@10 and clicks per 1,000 impressions per policy. "
-                    "Example: threefold loop --hours 72 --pure")
+                    "Prints true-relevance NDCG@10 and clicks per 1,000 impressions per policy.")
     loop.add_argument("--events", dest="n_events", type=int, default=100_000, help="log rows to simulate (default 100,000)")
     loop.add_argument("--days", type=int, default=6, help="days of the simulated log (default 6)")
     loop.add_argument("--train-days", dest="train_days", type=float, default=3.0,
@@ -364,8 +418,7 @@ def _add_explain_command(commands) -> None:
     explain = commands.add_parser(
         "explain", help="an HTML report of what each latent factor means and how context changes the lists",
         description="Write report.html (figures embedded), report.json and summary.txt to OUT and log them on the "
-                    "model's run. Example: threefold explain --model <run id> --items items.parquet "
-                    "--compare device=mobile device=tablet --out report/")
+                    "model's run.")
     explain.add_argument("--model", required=True, metavar="MODEL",
                          help="a model folder, a run id, or an MLflow model URI (as for threefold score)")
     explain.add_argument("--items", default=None, help="CSV or Parquet catalog: item_id and attribute columns (labels)")
