@@ -381,7 +381,7 @@ def test_ids_that_differ_only_in_case_are_an_error_unless_allowed(tmp_path):
     _check(report, "case_variant_id", "item_id", 2, [1, 2], "error")
     _check(report, "case_variant_id", "user_id", 2, [1, 3], "error")
     assert not report.ok
-    allowed = _validate(tmp_path, text, allow_case_variant_ids=True)
+    allowed = _validate(tmp_path, text, allow=["case_variant_id"])
     _check(allowed, "case_variant_id", "item_id", 2, [1, 2], "warning")
     assert allowed.ok
 
@@ -403,7 +403,7 @@ def test_every_command_that_reads_a_log_refuses_case_variants_even_when_dropping
     with pytest.raises(ValueError, match=r"e\.csv: column 'item_id': 2 row\(s\) with case_variant_id \(first rows 1, 2\)"):
         read_log(path, errors="drop")
     with pytest.warns(UserWarning, match="case_variant_id"):
-        events, report = read_log(path, allow_case_variant_ids=True)
+        events, report = read_log(path, allow=["case_variant_id"])
     assert sorted(events["item_id"]) == ["A12", "a12"] and report.ok
 
 
@@ -412,9 +412,35 @@ def test_a_timestamp_far_outside_the_bulk_of_the_log_is_flagged(tmp_path):
     lines = [f"u{i % 7},i{i % 5},{1_709_251_200 + i * 1700}" for i in range(200)]
     lines.insert(120, "u1,i1,915148800")  # 1999-01-01, data row 121
     report = _validate(tmp_path, "user_id,item_id,timestamp\n" + "\n".join(lines))
-    problem = _check(report, "outlying_timestamp", "timestamp", 1, [121], "warning")
-    assert "2024-03-01 to 2024-03-04" in problem.message and report.ok
-    strict = _validate(tmp_path, "user_id,item_id,timestamp\n" + "\n".join(lines), strict=True)
-    _check(strict, "outlying_timestamp", "timestamp", 1, [121], "error")
+    problem = _check(report, "outlying_timestamp", "timestamp", 1, [121], "error")
+    assert "2024-03-01 to 2024-03-04" in problem.message and not report.ok
+    allowed = _validate(tmp_path, "user_id,item_id,timestamp\n" + "\n".join(lines), allow=["outlying_timestamp"])
+    _check(allowed, "outlying_timestamp", "timestamp", 1, [121], "warning")
+    assert allowed.ok
     plain = _validate(tmp_path, "user_id,item_id,timestamp\n" + "\n".join(lines[:120] + lines[121:]))
     assert plain.problem("outlying_timestamp", "timestamp") is None  # a log of four ordinary days is not flagged
+
+
+def test_a_log_with_an_outlying_day_is_refused_by_every_reader_even_when_dropping(tmp_path):
+    # Issue 15: days far outside the bulk of the log change a model (the split, the decay, the dayparts), and no
+    # single row is wrong, so dropping does not lift the error; allow=["outlying_timestamp"] accepts them.
+    from threefold.pipeline.prepare import read_log
+
+    lines = [f"u{i % 7},i{i % 5},{1_709_251_200 + i * 1700}" for i in range(200)]
+    lines.insert(120, "u1,i1,915148800")  # 1999-01-01, data row 121
+    path = tmp_path / "e.csv"
+    path.write_text("user_id,item_id,timestamp\n" + "\n".join(lines) + "\n")
+    with pytest.raises(ValueError, match=r"e\.csv: column 'timestamp': 1 row\(s\) with outlying_timestamp "
+                                         r"\(first rows 121\).*--allow outlying_timestamp"):
+        read_log(path, errors="drop")
+    with pytest.warns(UserWarning, match="outlying_timestamp"):
+        events, report = read_log(path, allow=["outlying_timestamp"])
+    assert len(events) == 201 and report.ok
+
+
+def test_allow_names_only_the_suspicious_codes(tmp_path):
+    path = tmp_path / "e.csv"
+    path.write_text("user_id,item_id,timestamp\nu1,i1,1700000000\n")
+    with pytest.raises(ValueError, match=r"allow: unknown problem code\(s\) 'missing_id'; the codes that can be "
+                                         r"allowed are case_variant_id, outlying_timestamp"):
+        validate_events(path, allow=["missing_id"])

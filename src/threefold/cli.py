@@ -127,7 +127,7 @@ def _parser() -> argparse.ArgumentParser:
                           help=f"rows read per chunk; memory grows with it, the report does not (default {DEFAULT_CHUNK_ROWS:,})")
     validate.add_argument("--strict", action="store_true", help="treat data-quality warnings as errors")
     validate.add_argument("--json", action="store_true", help="print the report as JSON")
-    _add_case_flag(validate)
+    _add_allow_flag(validate)
 
     simulate = commands.add_parser("simulate", help="write the event log of an invented demo site")
     simulate.add_argument("out", help="output folder")
@@ -350,7 +350,7 @@ def cmd_refresh(args: argparse.Namespace) -> int:
         store = open_store(args.store)
     report = refresh_model(args.model, args.events, args.out, items=args.items, update_known=args.update_known,
                            metadata_prior=args.metadata_prior, store=store, errors=args.errors,
-                           allow_case_variant_ids=args.allow_case_variant_ids)
+                           allow=args.allow)
     if args.json:
         print(json.dumps({"out": str(report.out), "counts": report.counts, "ignored_events": report.ignored_events,
                           "window": list(report.window), "seconds": report.seconds, "run_id": report.run_id,
@@ -599,13 +599,17 @@ def _add_drop_flag(command) -> None:
     command.add_argument("--drop-bad-rows", dest="errors", action="store_const", const="drop", default="raise",
                          help="drop the rows `threefold validate` reports as errors (and clear bad values), listing "
                               "what was dropped; without it such a log is refused")
-    _add_case_flag(command)
+    _add_allow_flag(command)
 
 
-def _add_case_flag(command) -> None:
-    command.add_argument("--allow-case-variant-ids", dest="allow_case_variant_ids", action="store_true",
-                         help="accept ids that differ only in letter case ('A12' and 'a12' as two items); "
-                              "an error otherwise")
+def _add_allow_flag(command) -> None:
+    from threefold.core.defaults import SUSPICIOUS_CODES
+
+    command.add_argument("--allow", dest="allow", action="append", default=[], choices=SUSPICIOUS_CODES,
+                         metavar="CODE",
+                         help="accept a suspicious pattern that is an error otherwise (repeatable): case_variant_id "
+                              "(ids that differ only in letter case, 'A12' and 'a12', as two items) or "
+                              "outlying_timestamp (days far outside the bulk of the log)")
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
@@ -622,7 +626,7 @@ def cmd_validate(args: argparse.Namespace) -> int:
 
     report = validate_events(args.events, items=args.items, timezone=args.timezone,
                              chunk_rows=args.chunk_rows, strict=args.strict,
-                             allow_case_variant_ids=args.allow_case_variant_ids)
+                             allow=args.allow)
     print(json.dumps(report.to_dict(), indent=2) if args.json else report.to_text())
     return 0 if report.ok else 1
 
@@ -667,7 +671,7 @@ def cmd_build(args: argparse.Namespace) -> int:
     tensor, report, propensity, validation, caught = build_from_log(
         args.events, contexts, _weighting(args), negatives=args.negatives, timezone=args.timezone,
         salt=args.hash_user_ids_salt, position_propensity=args.position_propensity, errors=args.errors,
-        allow_case_variant_ids=args.allow_case_variant_ids,
+        allow=args.allow,
     )
     _print_warnings(caught)
     folder = save_tensor(tensor, args.out, extra={"build_report": report.to_dict(),

@@ -13,3 +13,6 @@ SCORE_CHUNK_ROWS = 50_000
 LIST_LENGTH = 10
 #: The refresh policies of the closed-loop simulation, in the order of its table.
 LOOP_POLICIES = ("stale", "nightly", "retrain", "hourly", "hourly+metadata", "hourly+explore", "popularity", "oracle")
+#: Validation errors no single row is wrong for, but that change a model: refused even when dropping bad rows,
+#: and accepted (as warnings) only when named in ``allow`` / ``--allow`` / ``[data] allow``.
+SUSPICIOUS_CODES = ("case_variant_id", "outlying_timestamp")

@@ -7,7 +7,9 @@ from typing import Literal
 
 import numpy as np
 
-__all__ = ["Problem", "ValidationReport", "describe", "iso_utc"]
+from threefold.core.defaults import SUSPICIOUS_CODES
+
+__all__ = ["Problem", "ValidationReport", "describe", "iso_utc", "SUSPICIOUS_CODES"]
 
 Severity = Literal["error", "warning"]
 
@@ -23,16 +25,17 @@ _CATALOG: dict[str, tuple[Severity, str]] = {
     "future_timestamp": ("warning", "time later than the check time {detail} (clock drift, or epoch milliseconds?); rows kept"),
     "implausible_timestamp": ("error", "time before 1970-01-01 or from 2100-01-01 on (UTC): epoch milliseconds or microseconds? "
                                        "Timestamps are epoch seconds; rows dropped"),
-    "outlying_timestamp": ("warning", "time far outside the bulk of the log (1% to 99% of events: {detail}): a clock "
-                                      "reset, a test row or a wrong unit? Count is rows, rows are each day's first; "
-                                      "rows kept"),
+    "outlying_timestamp": ("error", "time far outside the bulk of the log (1% to 99% of events: {detail}): a clock "
+                                    "reset, a test row or a wrong unit? Count is rows, rows are each day's first. "
+                                    "Fix the export, or allow them (allow=[\"outlying_timestamp\"], "
+                                    "--allow outlying_timestamp); rows kept"),
     "unknown_event": ("error", "event is not 'impression' or 'click' (found {detail}); rows dropped"),
     "bad_dwell": ("error", "dwell_seconds is not a finite number; value cleared, rows kept"),
     "negative_dwell": ("error", "negative dwell_seconds; value cleared, rows kept"),
     "bad_position": ("error", "position is not an integer from 1 to 10,000; value cleared, rows kept"),
     "case_variant_id": ("error", "ids that differ only in letter case ('A12' and 'a12'), which would count as "
                                  "different users or items; count is ids, rows are each spelling's first row. Fix "
-                                 "the export, or allow them (allow_case_variant_ids, --allow-case-variant-ids); rows kept"),
+                                 "the export, or allow them (allow=[\"case_variant_id\"], --allow case_variant_id); rows kept"),
     "duplicate_row": ("warning", "exact duplicate of an earlier row (every column equal after parsing); rows dropped"),
     "unmatched_click": ("warning", "click with no matching impression ({detail}); rows kept"),
     "activity_outlier": ("warning", "users with more than {detail} events (likely automated); count is users, rows are each one's first row; rows kept"),

@@ -38,16 +38,28 @@ from threefold.data._eventscan import (
 )
 from threefold.data._hashing import HashCounter, HashSet, combine, hash_strings
 from threefold.data._logreader import open_source
-from threefold.data._report import Problem, ValidationReport, describe, iso_utc
+from threefold.data._report import SUSPICIOUS_CODES, Problem, ValidationReport, describe, iso_utc
 from threefold.data.timestamps import check_timezone
 from threefold.data.events import DEFAULT_CHUNK_ROWS, FrameCollector, activity_outlier_threshold, require_columns
 
-__all__ = ["validate_events", "load_validated_events", "ValidationReport", "Problem", "STRICT_CODES"]
+__all__ = ["validate_events", "load_validated_events", "ValidationReport", "Problem", "STRICT_CODES", "SUSPICIOUS_CODES",
+           "check_allow"]
 
 #: Data-quality warnings that ``strict=True`` turns into errors.
 STRICT_CODES = frozenset(
-    {"duplicate_row", "future_timestamp", "outlying_timestamp", "naive_timestamp", "dst_ambiguous", "dst_nonexistent"}
+    {"duplicate_row", "future_timestamp", "naive_timestamp", "dst_ambiguous", "dst_nonexistent"}
 )
+
+
+def check_allow(allow, owner: str = "validate_events") -> frozenset:
+    """``allow`` as a set of :data:`SUSPICIOUS_CODES`; a ValueError naming any other code."""
+    if isinstance(allow, str):
+        allow = (allow,)
+    unknown = sorted(set(allow) - set(SUSPICIOUS_CODES))
+    if unknown:
+        raise ValueError(f"{owner}: allow: unknown problem code(s) {', '.join(map(repr, unknown))}; "
+                         f"the codes that can be allowed are {', '.join(SUSPICIOUS_CODES)}")
+    return frozenset(allow)
 _LEVEL_CAP = 10_000
 _CLICK, _IMPRESSION = EVENT_VALUES.index("click"), EVENT_VALUES.index("impression")
 
@@ -250,7 +262,7 @@ def validate_events(
     strict: bool = False,
     now: int | None = None,
     max_user_events: int | None = None,
-    allow_case_variant_ids: bool = False,
+    allow: Sequence[str] = (),
 ) -> ValidationReport:
     """Check an event log against the contract of ``docs/data-format.md``.
 
@@ -273,11 +285,13 @@ def validate_events(
     max_user_events : int or None
         Event count above which a user is an activity outlier (default: the
         rule of :func:`threefold.data.events.activity_outlier_threshold`).
-    allow_case_variant_ids : bool, default=False
-        Ids of one column that differ only in letter case (``A12`` and ``a12``)
-        are an error (``case_variant_id``): each spelling would become its own
-        user or item. True makes it a warning, for sources where case is
-        meaningful.
+    allow : sequence of str, default=()
+        Codes of :data:`SUSPICIOUS_CODES` to report as warnings instead of
+        errors: ``"case_variant_id"`` (ids of one column that differ only in
+        letter case, ``A12`` and ``a12``, each of which would become its own
+        user or item; for sources where case is meaningful) and
+        ``"outlying_timestamp"`` (days far outside the bulk of the log; for a
+        log that really has such days).
 
     Returns
     -------
@@ -287,7 +301,7 @@ def validate_events(
         header).
     """
     report, _ = _run(path, items=items, timezone=timezone, chunk_rows=chunk_rows, strict=strict, now=now,
-                     max_user_events=max_user_events, allow_case_variant_ids=allow_case_variant_ids, collect=None)
+                     max_user_events=max_user_events, allow=allow, collect=None)
     return report
 
 
@@ -303,7 +317,7 @@ def load_validated_events(
     hash_user_ids_salt: str | bytes | None = None,
     context_columns: Sequence[str] | None = None,
     drop_activity_outliers: bool = False,
-    allow_case_variant_ids: bool = False,
+    allow: Sequence[str] = (),
 ) -> tuple[pd.DataFrame, ValidationReport]:
     """Validate and load a log in one pass (half the reading of the two calls apart).
 
@@ -326,7 +340,7 @@ def load_validated_events(
         id column is stored as floats); the message lists the problems.
     """
     report, collector = _run(path, items=items, timezone=timezone, chunk_rows=chunk_rows, strict=strict, now=now,
-                             max_user_events=max_user_events, allow_case_variant_ids=allow_case_variant_ids,
+                             max_user_events=max_user_events, allow=allow,
                              collect={"hash_user_ids_salt": hash_user_ids_salt, "context_columns": context_columns})
     if collector is None:
         raise ValueError(f"{report.summary['source']}: the log cannot be loaded: "
@@ -336,9 +350,9 @@ def load_validated_events(
 
 
 def _run(path, *, items, timezone, chunk_rows, strict, now, max_user_events, collect: dict | None,
-         allow_case_variant_ids: bool = False
-         ) -> tuple[ValidationReport, FrameCollector | None]:
+         allow: Sequence[str] = ()) -> tuple[ValidationReport, FrameCollector | None]:
     """The one pass behind :func:`validate_events` and :func:`load_validated_events`."""
+    allow = check_allow(allow)
     check_int("chunk_rows", chunk_rows, low=1, owner="validate_events")
     if max_user_events is not None:
         check_int("max_user_events", max_user_events, low=1, owner="validate_events")
@@ -389,8 +403,8 @@ def _run(path, *, items, timezone, chunk_rows, strict, now, max_user_events, col
     for column, twins in stats.case_twins.items():
         count, rows = twins.twins()
         if count:
-            problem = describe("case_variant_id", column, count, rows)
-            event_problems.append(replace(problem, severity="warning") if allow_case_variant_ids else problem)
+            event_problems.append(describe("case_variant_id", column, count, rows))
+    event_problems = [replace(p, severity="warning") if p.code in allow else p for p in event_problems]
     problems = event_problems + problems
     return ValidationReport(summary=summary, problems=tuple(_promote(problems, strict))), collector
 

@@ -41,6 +41,7 @@ from threefold.core.checks import check_choice
 from threefold.core.feedback import FeedbackWeighting
 from threefold.core.params import (BOOLEAN, STRING, STRINGS, Rule, choice_rule, float_rule, int_rule, list_rule,
                                     type_rule)
+from threefold.core.defaults import SUSPICIOUS_CODES
 from threefold.data.timestamps import duration_rule, instant_rule
 from threefold.evaluation.harness import ACCURACY_METRICS, EvaluationOptions
 from threefold.models.registry import MODELS, param_table
@@ -99,7 +100,7 @@ _SECTIONS: dict[str, dict[str, tuple[Rule, object]]] = {
     "experiment": {"name": (_STR, "threefold"), "tags": (None, {})},
     "data": {"events": (_STR, ...), "items": (_STR, None), "timezone": (_timezone, "UTC"),
              "errors": (_choice("raise", "drop"), "raise"), "drop_activity_outliers": (_BOOL, False),
-             "allow_case_variant_ids": (_BOOL, False),
+             "allow": (_list(_choice(*SUSPICIOUS_CODES), "problem codes"), []),
              "hash_user_ids_salt": (_STR, None)},
     "build": {"contexts": (_STR_LIST, []),
               "daypart_starts": (_list(_float(low=0.0, high=24.0), "hours", min_len=1), [5.0, 9.0, 12.0, 17.0, 21.0]),

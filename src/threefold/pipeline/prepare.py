@@ -34,7 +34,7 @@ def _problem_text(problem, path, refused: bool = False) -> str:
 
 
 def read_log(path: str | os.PathLike, *, errors: str = "raise", items=None, timezone: str | None = None,
-             hash_user_ids_salt=None, drop_activity_outliers: bool = False, allow_case_variant_ids: bool = False):
+             hash_user_ids_salt=None, drop_activity_outliers: bool = False, allow=()):
     """Validate and load an event log in one pass: the reading of ``build``, ``train``, ``refresh`` and ``demo``.
 
     The checks are exactly those of ``threefold validate`` (one pass, see
@@ -54,9 +54,11 @@ def read_log(path: str | os.PathLike, *, errors: str = "raise", items=None, time
         Items catalog, validated with the log (items unknown to it are warned about).
     timezone, hash_user_ids_salt, drop_activity_outliers
         As in :func:`threefold.data.events.load_events`.
-    allow_case_variant_ids : bool, default=False
-        Ids that differ only in letter case are an error that ``errors="drop"``
-        does not lift (no row is wrong on its own); True makes them a warning.
+    allow : sequence of str, default=()
+        The suspicious patterns of :data:`threefold.data.validate.SUSPICIOUS_CODES`
+        (ids that differ only in letter case, days far outside the bulk of the
+        log) are errors that ``errors="drop"`` does not lift (no row is wrong on
+        its own); the codes named here are warnings instead.
 
     Returns
     -------
@@ -73,14 +75,14 @@ def read_log(path: str | os.PathLike, *, errors: str = "raise", items=None, time
     """
     from threefold.core.checks import check_choice
     from threefold.data.events import EventLogWarning
-    from threefold.data.validate import load_validated_events
+    from threefold.data.validate import SUSPICIOUS_CODES, load_validated_events
 
     check_choice("errors", errors, ("raise", "drop"), owner="read_log")
     events, report = load_validated_events(path, items=items, timezone=timezone,
                                            hash_user_ids_salt=hash_user_ids_salt, drop_activity_outliers=drop_activity_outliers,
-                                           allow_case_variant_ids=allow_case_variant_ids)
+                                           allow=allow)
     sources = {"events": report.summary["source"], "items": (report.summary.get("catalog") or {}).get("source", items)}
-    refused = [p for p in report.errors if errors == "raise" or p.code == "case_variant_id"]
+    refused = [p for p in report.errors if errors == "raise" or p.code in SUSPICIOUS_CODES]
     if refused:
         first = refused[0]
         kinds = len(refused)
@@ -140,7 +142,7 @@ def tensor_options(events: pd.DataFrame, *, weighting: FeedbackWeighting, negati
 
 def build_from_log(events_path: str | os.PathLike, contexts: Sequence, weighting: FeedbackWeighting, *,
                    negatives: str, timezone: str | None, items=None, salt=None, position_propensity: bool = False,
-                   errors: str = "raise", allow_case_variant_ids: bool = False):
+                   errors: str = "raise", allow=()):
     """Validate and load a log in one pass (:func:`read_log`), estimate position propensities, build its tensor.
 
     With ``errors="raise"`` a log with errors is refused; with ``"drop"`` the
@@ -159,7 +161,7 @@ def build_from_log(events_path: str | os.PathLike, contexts: Sequence, weighting
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         events, validation = read_log(events_path, errors=errors, items=items, timezone=timezone, hash_user_ids_salt=salt,
-                                      allow_case_variant_ids=allow_case_variant_ids)
+                                      allow=allow)
         options, propensity = tensor_options(events, weighting=weighting, negatives=negatives,
                                              position_propensity=position_propensity)
         if propensity is None and set(PROPENSITY_COLUMNS) <= set(events.columns):

@@ -61,7 +61,7 @@ class RefreshReport:
 def refresh_model(model: str | os.PathLike, events: str | os.PathLike | pd.DataFrame, out: str | os.PathLike, *,
                   items: str | os.PathLike | pd.DataFrame | None = None, update_known: bool = False,
                   metadata_prior: bool = False, metadata_alpha: float = 1.0, store=None,
-                  errors: str = "raise", allow_case_variant_ids: bool = False) -> RefreshReport:
+                  errors: str = "raise", allow=()) -> RefreshReport:
     """Refresh a model with the events since its training cutoff; see the module docstring.
 
     Parameters
@@ -87,8 +87,10 @@ def refresh_model(model: str | os.PathLike, events: str | os.PathLike | pd.DataF
         A log read from a file is checked as ``threefold validate`` checks it
         (:func:`threefold.pipeline.prepare.read_log`): refused on errors, or
         the bad rows dropped and counted.
-    allow_case_variant_ids : bool, default=False
-        Accept ids that differ only in letter case (an error otherwise).
+    allow : sequence of str, default=()
+        Suspicious patterns to accept (codes of
+        :data:`threefold.data.validate.SUSPICIOUS_CODES`), as in
+        :func:`threefold.pipeline.prepare.read_log`.
 
     Returns
     -------
@@ -111,7 +113,7 @@ def refresh_model(model: str | os.PathLike, events: str | os.PathLike | pd.DataF
                          "before refreshes existed); retrain it with `threefold train`.")
     zone = serving.get("timezone")
     frame = events if isinstance(events, pd.DataFrame) else read_log(
-        events, errors=errors, timezone=zone, allow_case_variant_ids=allow_case_variant_ids)[0]
+        events, errors=errors, timezone=zone, allow=allow)[0]
     cutoff = int(serving["trained_until"])
     recent = frame[frame["timestamp"].to_numpy(dtype=np.int64) >= cutoff]
     catalog = None if items is None else (items if isinstance(items, pd.DataFrame) else load_items(items, timezone=zone))

@@ -66,7 +66,7 @@ def load_dataset(config: ExperimentConfig, truth: TruthSource | None = None) -> 
         events, _ = read_log(data["events"], errors=data["errors"], items=data["items"], timezone=data["timezone"],
                              hash_user_ids_salt=data["hash_user_ids_salt"],
                              drop_activity_outliers=data["drop_activity_outliers"],
-                             allow_case_variant_ids=data["allow_case_variant_ids"])
+                             allow=data["allow"])
         items = load_items(data["items"], timezone=data["timezone"]) if data["items"] else None
     _check_cutoff(config, events)
     fingerprint = dataset_fingerprint({"events": data["events"], "items": data["items"]}, events, items)
