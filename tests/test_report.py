@@ -268,3 +268,19 @@ def test_a_catalog_file_with_blank_ids_names_the_rows(tmp_path):
                                                                                                index=False)
     with pytest.raises(ValueError, match=r"--items .*items.csv: column item_id is blank in data row\(s\) \[2, 4\]"):
         explain_model(tmp_path / "model", out=tmp_path / "out", items=tmp_path / "items.csv", echo=lambda line: None)
+
+
+def test_the_text_says_which_way_an_item_moved():
+    # A lower mean rank is a move up the list (rank 1 is the top): the text says "up", never a bare negative number.
+    import pandas as pd
+
+    from threefold.explain.compare import ContextComparison
+
+    movers = pd.DataFrame({"item": [0, 1, 2], "mean_rank_a": [9.0, 2.0, 5.0], "mean_rank_b": [2.0, 9.0, 5.0],
+                           "rank_change": [-7.0, 7.0, 0.0], "score_change": [0.5, -0.5, 0.0]})
+    comparison = ContextComparison("a", "b", pd.DataFrame({"user": [0], "jaccard": [0.5], "kendall_tau": [0.1]}),
+                                   movers, pd.DataFrame({"column": [0], "label": ["x"], "mean_term": [0.1],
+                                                         "share": [1.0]}), k=3)
+    text = comparison.to_text(item_labels=["n1", "n2", "n3"])
+    assert "rise most under b: n1 (up 7.0 ranks), n3 (no change), n2 (down 7.0 ranks)" in text
+    assert "fall most under b: n2 (down 7.0 ranks)" in text

@@ -90,9 +90,9 @@ class ContextComparison:
         rise = self.movers.nsmallest(3, "rank_change")
         fall = self.movers.nlargest(3, "rank_change")
         lines.append("  rise most under " + self.label_b + ": " + ", ".join(
-            f"{name(r.item)} ({r.rank_change:+.1f} ranks)" for r in rise.itertuples()))
+            f"{name(r.item)} ({_moved(r.rank_change)})" for r in rise.itertuples()))
         lines.append("  fall most under " + self.label_b + ": " + ", ".join(
-            f"{name(r.item)} ({r.rank_change:+.1f} ranks)" for r in fall.itertuples()))
+            f"{name(r.item)} ({_moved(r.rank_change)})" for r in fall.itertuples()))
         top = self.drivers.nlargest(3, "share")
         lines.append("  driven by: " + ", ".join(f"{r.label} ({100 * r.share:.0f}%)" for r in top.itertuples()))
         return "\n".join(lines)
@@ -170,3 +170,10 @@ def _ranks(scores: np.ndarray) -> np.ndarray:
     rows = np.arange(scores.shape[0])[:, None]
     ranks[rows, order] = np.arange(1, scores.shape[1] + 1)
     return ranks
+
+
+def _moved(rank_change: float) -> str:
+    """A mean rank change in words: a negative change is a move up the list."""
+    if abs(rank_change) < 0.05:
+        return "no change"
+    return f"{'up' if rank_change < 0 else 'down'} {abs(rank_change):.1f} ranks"
