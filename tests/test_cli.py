@@ -1,5 +1,6 @@
 """The `threefold` command end to end, in real processes (invented data only)."""
 
+import shlex
 import subprocess
 from pathlib import Path
 import sys
@@ -75,6 +76,13 @@ def test_demo_runs_end_to_end(tmp_path):
     logged = list((tmp_path / "demo" / "runs").rglob("explain/report.html"))  # artifacts of the model's run
     assert len(logged) == 1, logged
     assert "oracle" in result.stdout.split("== 8.")[1]  # the closed loop's table, oracle row included
+    ending = result.stdout.split("== what to open and try next")[1]
+    assert str(report / "report.html") in ending and "mlflow ui --backend-store-uri sqlite:///" in ending
+    tries = [line.split("try   ", 1)[1] for line in ending.splitlines() if "try   " in line]
+    for command in [t for t in tries if t.startswith(("threefold runs", "threefold score"))]:
+        followed = run(*shlex.split(command)[1:])  # the suggested next commands work as printed
+        assert followed.returncode == 0, (command, followed.stderr[-2000:])
+    assert len(pd.read_parquet(tmp_path / "demo" / "lists-k5").groupby("request_id")) == lists["request_id"].nunique()
 
 
 def test_models_lists_every_parameter_from_the_tables(tmp_path):

@@ -734,7 +734,30 @@ def cmd_demo(args: argparse.Namespace) -> int:
         _demo_refresh(out, log_dir, run, store)
         _demo_explain(out, log_dir, run, store, out / "tensor")
     _demo_loop(site)
+    _demo_next(out, config_path, run)
     return 0
+
+
+def _demo_next(out: Path, config_path: Path, run) -> None:
+    """The end of the demo: the files it wrote worth opening, and the commands to try next."""
+    store = out / "runs"
+    files = [(out / "report" / "report.html", "the factor report: what each factor means, how context moves the lists"),
+             (out / "lists", "the scored lists: Parquet parts, _manifest.json (rule counts), _rejected.parquet"),
+             (config_path, "the experiment config the demo trained from: edit it and train again"),
+             (out / "site", "the invented site's log and catalog, in the format of docs/data-format.md")]
+    print("== what to open and try next")
+    for path, what in files:
+        if path.exists():
+            print(f"   open  {path}\n         {what}")
+    commands = [f"threefold runs --store {store}",
+                f"mlflow ui --backend-store-uri sqlite:///{(store / 'mlflow.db').absolute()}"
+                "   (the run store in a browser, http://127.0.0.1:5000)",
+                f"threefold train {config_path} --store {store} --set evaluation.stage=validation"]
+    if run is not None:
+        commands.append(f"threefold score {run.run_id} --requests {out / 'requests.parquet'} --k 5 --out "
+                        f"{out / 'lists-k5'} --store {store}")
+    for command in commands:
+        print(f"   try   {command}")
 
 
 def _demo_loop(site) -> None:
