@@ -227,3 +227,28 @@ def test_the_help_examples_that_need_only_the_sample_run(name, tmp_path):
     result = subprocess.run(threefold_command(*argv), capture_output=True, text=True, cwd=tmp_path,
                             env=child_env(), timeout=600)
     assert result.returncode == 0, result.stderr
+
+
+def test_a_first_run_says_the_kernels_compile_once_and_a_cached_run_says_nothing(tmp_path):
+    # Issue 16: the first run sat silent while numba compiled; now one line says what happens and where it is cached.
+    from threefold.core.kernel_cache import kernels_cached
+
+    empty = tmp_path / "empty-cache"
+    first = subprocess.run(threefold_command("score", str(tmp_path / "no-model"), "--requests", "r.csv", "--out",
+                                             str(tmp_path / "o")), capture_output=True, text=True, cwd=tmp_path,
+                           env=child_env(NUMBA_CACHE_DIR=str(empty)), timeout=300)
+    assert "note: first run on this machine: the numerical kernels compile" in first.stderr
+    assert str(empty) in first.stderr
+    filled = tmp_path / "filled-cache"
+    for name in ("cp_x/kernels.solve_rows-237.py311.nbi", "tucker_x/rows._rows_kernel-190.py311.nbi",
+                 "ranking_x/topk._select_rows_parallel-322.py311.nbi"):
+        (filled / name).parent.mkdir(parents=True, exist_ok=True)
+        (filled / name).write_bytes(b"")
+    assert kernels_cached(filled) and not kernels_cached(empty)
+    later = subprocess.run(threefold_command("score", str(tmp_path / "no-model"), "--requests", "r.csv", "--out",
+                                             str(tmp_path / "o")), capture_output=True, text=True, cwd=tmp_path,
+                           env=child_env(NUMBA_CACHE_DIR=str(filled)), timeout=300)
+    assert "first run" not in later.stderr and later.returncode == 1
+    validate = subprocess.run(threefold_command("models", "cp"), capture_output=True, text=True, cwd=tmp_path,
+                              env=child_env(NUMBA_CACHE_DIR=str(empty)), timeout=300)
+    assert "first run" not in validate.stderr  # a command that compiles nothing says nothing

@@ -930,6 +930,11 @@ def main(argv: Sequence[str] | None = None) -> int:
                 "train": cmd_train, "sweep": cmd_sweep, "runs": cmd_runs, "models": cmd_models, "score": cmd_score,
                 "history": cmd_history, "select": cmd_select, "gain": cmd_gain, "explain": cmd_explain, "refresh": cmd_refresh,
                 "loop": cmd_loop}
+    from threefold.core.kernel_cache import first_run_notice
+
+    notice = first_run_notice(args.command)
+    if notice:
+        print(f"note: {notice}", file=sys.stderr)
     try:
         with warnings.catch_warnings():
             warnings.showwarning = _show_warning  # one line each, as the commands print their own warnings
