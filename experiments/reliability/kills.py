@@ -17,7 +17,7 @@ each kill the checks are:
   complete new one (it loads and verifies); rerunning completes.
 
     .venv/bin/python experiments/reliability/kills.py --kills 50 --write
-    .venv/bin/python experiments/reliability/kills.py --quick      # 2 per operation (tests/test_kills.py)
+    .venv/bin/python experiments/reliability/kills.py --quick      # 2 per operation (tests/test_fault_campaigns.py)
 """
 
 from __future__ import annotations
