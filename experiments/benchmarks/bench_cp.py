@@ -24,10 +24,10 @@ tensor so numba's compiled kernels are loaded from cache before timing.
 
 Usage (from the repository root; run one case at a time on a shared machine)::
 
-    /work/venv/bin/python experiments/benchmarks/bench_cp.py b1     # writes its section of results/cp.md
-    /work/venv/bin/python experiments/benchmarks/bench_cp.py b2
-    /work/venv/bin/python experiments/benchmarks/bench_cp.py b3
-    /work/venv/bin/python experiments/benchmarks/bench_cp.py b2 --nnz 1000000 --no-write   # quick check
+    .venv/bin/python experiments/benchmarks/bench_cp.py b1     # writes its section of results/cp.md
+    .venv/bin/python experiments/benchmarks/bench_cp.py b2
+    .venv/bin/python experiments/benchmarks/bench_cp.py b3
+    .venv/bin/python experiments/benchmarks/bench_cp.py b2 --nnz 1000000 --no-write   # quick check
 """
 
 from __future__ import annotations

@@ -18,8 +18,8 @@ Contenders, each in its own child process (peak RSS from resource.getrusage):
 
 Usage::
 
-    /work/venv/bin/python experiments/benchmarks/bench_harness.py                 # full size, writes the results file
-    /work/venv/bin/python experiments/benchmarks/bench_harness.py --queries 10000 --no-write
+    .venv/bin/python experiments/benchmarks/bench_harness.py                 # full size, writes the results file
+    .venv/bin/python experiments/benchmarks/bench_harness.py --queries 10000 --no-write
 """
 
 from __future__ import annotations
@@ -140,7 +140,7 @@ def main() -> None:
     def rss(name: str) -> float:
         return max(r["peak_rss_bytes"] for r in runs[name]) / 2**20
 
-    command = "/work/venv/bin/python experiments/benchmarks/bench_harness.py"
+    command = ".venv/bin/python experiments/benchmarks/bench_harness.py"
     if (args.queries, args.items, args.rank, args.k) != (100_000, 20_000, 64, 10):
         command += f" --queries {args.queries} --items {args.items} --rank {args.rank} --k {args.k}"
     text = "\n".join([

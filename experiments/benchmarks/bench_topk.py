@@ -17,8 +17,8 @@ is timed. The script also checks that both select the same top-K sets.
 
 Usage::
 
-    /work/venv/bin/python experiments/benchmarks/bench_topk.py            # full size, writes results/evaluation.md
-    /work/venv/bin/python experiments/benchmarks/bench_topk.py --queries 5000 --no-write   # quick look
+    .venv/bin/python experiments/benchmarks/bench_topk.py            # full size, writes results/evaluation.md
+    .venv/bin/python experiments/benchmarks/bench_topk.py --queries 5000 --no-write   # quick look
 """
 
 from __future__ import annotations
@@ -144,7 +144,7 @@ def main() -> None:
         f"| {r['name']} | {r['seconds']:.1f} | {r['rss_mb']:.0f} | {r['detail']} |" for r in (ours, ref, floor)
     ]
     cores = len(os.sched_getaffinity(0))
-    command = "/work/venv/bin/python experiments/benchmarks/bench_topk.py"
+    command = ".venv/bin/python experiments/benchmarks/bench_topk.py"
     if (args.queries, args.items, args.rank, args.k) != (100_000, 20_000, 64, 10):
         command += f" --queries {args.queries} --items {args.items} --rank {args.rank} --k {args.k}"
     if args.repeats != 2:

@@ -20,9 +20,9 @@ loaded from cache) on a tiny tensor before timing. Each case writes its own sect
 
 Usage (from the repository root)::
 
-    /work/venv/bin/python experiments/benchmarks/bench_tucker.py                 # both cases, writes results/tucker.md
-    /work/venv/bin/python experiments/benchmarks/bench_tucker.py --case small --no-write
-    /work/venv/bin/python experiments/benchmarks/bench_tucker.py --case large --large-nnz 1000000 --no-write
+    .venv/bin/python experiments/benchmarks/bench_tucker.py                 # both cases, writes results/tucker.md
+    .venv/bin/python experiments/benchmarks/bench_tucker.py --case small --no-write
+    .venv/bin/python experiments/benchmarks/bench_tucker.py --case large --large-nnz 1000000 --no-write
 """
 
 from __future__ import annotations
@@ -158,7 +158,7 @@ def case_small(args, folder: str) -> str:
     path, nnz = generate(folder, "small", shape, args.small_nnz, seed=1, binary=True)
     ours = run(OURS, path, function="fit_hooi", rank=rank, sweeps=args.sweeps)
     theirs = run(TENSORLY_DENSE, path, rank=list(rank), sweeps=args.sweeps)
-    command = f"/work/venv/bin/python experiments/benchmarks/bench_tucker.py --case small --sweeps {args.sweeps}"
+    command = f".venv/bin/python experiments/benchmarks/bench_tucker.py --case small --sweeps {args.sweeps}"
     rows = [
         ("tensorly `tucker`, dense (reference)", theirs, "1.0x", "1.0x"),
         ("threefold `fit_hooi`, sparse", ours, f"{theirs['seconds'] / ours['seconds']:.1f}x faster",
@@ -192,7 +192,7 @@ def case_large(args, folder: str) -> str:
     reference = run(SPARSE_PRODUCT, path)
     hooi = run(OURS, path, function="fit_hooi", rank=(32, 32, 4, 3), sweeps=args.sweeps)
     implicit = run(OURS, path, function="fit_implicit_tucker", rank=(16, 16, 4, 3), sweeps=args.sweeps)
-    command = (f"/work/venv/bin/python experiments/benchmarks/bench_tucker.py --case large "
+    command = (f".venv/bin/python experiments/benchmarks/bench_tucker.py --case large "
                f"--large-nnz {args.large_nnz} --sweeps {args.sweeps}")
     lines = [
         f"### Tucker at scale: {shape[0]:,} × {shape[1]:,} × {shape[2]} × {shape[3]}, {nnz:,} stored cells "

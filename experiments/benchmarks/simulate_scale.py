@@ -6,7 +6,7 @@ job of comparable shape: draw ``n`` uniform numbers, argsort them (the log's
 final time ordering) and build one ``n``-row string id column by ``take`` —
 the least work any generator of an ``n``-row sorted log with string ids does.
 
-    /work/venv/bin/python experiments/benchmarks/simulate_scale.py [--sizes 1000000 10000000]
+    .venv/bin/python experiments/benchmarks/simulate_scale.py [--sizes 1000000 10000000]
 """
 
 from __future__ import annotations
