@@ -30,3 +30,15 @@ def test_concurrent_trains_and_a_sweep_on_one_store_lose_nothing():
     assert done.returncode == 0, done.stdout[-3000:] + done.stderr[-3000:]
     result = json.loads(done.stdout.strip().splitlines()[-1])
     assert result["lost"] == [] and result["runs_by_kind"]["train"] == 3 and result["cp_models_loaded"] == 3
+
+
+def test_the_main_job_end_to_end_in_fresh_processes():
+    # The 10-million-event run of docs/reliability.md, at 20,000 events: every stage exits 0 and reports its peak.
+    script = ROOT / "experiments" / "reliability" / "end_to_end.py"
+    done = subprocess.run([sys.executable, str(script), "--events", "20000", "--requests", "500", "--json"],
+                          capture_output=True, text=True, env=child_env(), timeout=1200)
+    assert done.returncode == 0, done.stdout[-3000:] + done.stderr[-3000:]
+    stages = json.loads(done.stdout.strip().splitlines()[-1])
+    assert [s["stage"].split(" ")[0] for s in stages] == ["simulate", "reference:", "validate", "build", "train",
+                                                          "score"]
+    assert all(s["peak_gib"] > 0 for s in stages)
