@@ -85,7 +85,12 @@ def main() -> int:
         print("second run (filled cache) ...", file=sys.stderr)
         warm = run_demo(Path(tmp) / "warm", args.events, cache)
     cold_compile, warm_compile = sum(cold["compile"].values()), sum(warm["compile"].values())
-    lines = [f"`threefold demo --events {args.events:,}`, two fresh processes sharing one new numba cache.", "",
+    lines = ["# Compiling the kernels (first run on a machine)", "",
+             "numba compiles each kernel the first time it is called with new argument types and caches it under "
+             "`NUMBA_CACHE_DIR` (by default `$XDG_CACHE_HOME/threefold/numba`, never the source tree). A first run "
+             "prints one line saying so (`note: first run on this machine: ...`). The reference is the same demo in "
+             "a second process with the cache filled.", "",
+             f"`threefold demo --events {args.events:,}`, two fresh processes sharing one new numba cache.", "",
              "| run | process wall s | compile s (top-level, numba's events) | kernels compiled |",
              "|---|---|---|---|",
              f"| first (empty cache) | {cold['process']:.1f} | {cold_compile:.1f} | {len(cold['compile'])} |",
@@ -96,6 +101,12 @@ def main() -> int:
     for name, seconds in sorted(cold["compile"].items(), key=lambda kv: -kv[1]):
         if seconds >= 0.1:
             lines.append(f"| `{name}` | {seconds:.2f} |")
+    top4 = sum(sorted(cold["compile"].values())[-4:])
+    lines += ["", f"Goal of the issue: under 10 s of compile on a first run. Not met: {cold_compile:.0f} s in "
+                  f"{len(cold['compile'])} kernels, {100 * top4 / cold_compile:.0f}% of it in the four largest. The "
+                  f"second run compiled {len(warm['compile'])} kernels, so the cost is paid once per machine and "
+                  "code version. Measured separately (one run each, same demo): `NUMBA_OPT=1` cut the compile by "
+                  "only 18% (41.4 s against 50.2 s), so LLVM's optimisation passes are not where the time goes."]
     lines += ["", f"Machine: x86_64, 2 shared cores (1-minute load average {load:.1f} at the start, "
                   f"{os.getloadavg()[0]:.1f} at the end); threefold at commit {_commit()}.", "",
               f"Command: `.venv/bin/python experiments/benchmarks/bench_compile.py --events {args.events} --write`"]
