@@ -60,6 +60,8 @@ def check_allow(allow, owner: str = "validate_events") -> frozenset:
         raise ValueError(f"{owner}: allow: unknown problem code(s) {', '.join(map(repr, unknown))}; "
                          f"the codes that can be allowed are {', '.join(SUSPICIOUS_CODES)}")
     return frozenset(allow)
+
+
 _LEVEL_CAP = 10_000
 _CLICK, _IMPRESSION = EVENT_VALUES.index("click"), EVENT_VALUES.index("impression")
 
