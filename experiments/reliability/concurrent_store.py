@@ -21,7 +21,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).parent))
-from kills import CONFIG, run, threefold  # noqa: E402  (the same tiny config and command helpers)
+from kills import CONFIG, run, threefold, user_env  # noqa: E402  (the same tiny config and command helpers)
 
 SWEEP = """
 [sweep]
@@ -43,10 +43,7 @@ def main(argv=None) -> int:
     parser.add_argument("--sweeps", type=int, default=2, help="concurrent sweeps, 1 Dask worker each (default 2)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON on the last line")
     args = parser.parse_args(argv)
-    import os
-
-    env = {k: v for k, v in os.environ.items() if not k.startswith("PYTEST_")}
-    env.pop("MLFLOW_TRACKING_URI", None)
+    env = user_env()
     with tempfile.TemporaryDirectory(prefix="threefold-writers-") as tmp:
         folder = Path(tmp)
         config = folder / "config.toml"

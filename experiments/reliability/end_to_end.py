@@ -21,7 +21,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).parent))
-from kills import threefold  # noqa: E402
+from kills import threefold, user_env  # noqa: E402
 
 CONFIG = """
 [experiment]
@@ -77,8 +77,7 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     import pyarrow.parquet as pq
 
-    env = {k: v for k, v in os.environ.items() if not k.startswith("PYTEST_")}
-    env.pop("MLFLOW_TRACKING_URI", None)
+    env = user_env()
     rows = []
     with tempfile.TemporaryDirectory(prefix="threefold-e2e-") as tmp:
         folder = Path(tmp)

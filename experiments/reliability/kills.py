@@ -96,6 +96,16 @@ def threefold(*args: str) -> list[str]:
     return [str(script), *args] if script.exists() else [sys.executable, "-m", "threefold.cli", *args]
 
 
+def user_env() -> dict:
+    """The environment of a user's shell: no pytest variables, no tracking URI (each script names its store).
+
+    The user's numba kernel cache is kept, so the children load compiled kernels.
+    """
+    env = {k: v for k, v in os.environ.items() if not k.startswith("PYTEST_")}
+    env.pop("MLFLOW_TRACKING_URI", None)
+    return env
+
+
 def run(command: list[str], env: dict, check: bool = True) -> subprocess.CompletedProcess:
     done = subprocess.run(command, capture_output=True, text=True, env=env, timeout=900)
     if check and done.returncode != 0:
@@ -234,8 +244,7 @@ def _differs(reference: Path, out: Path) -> str:
 
 
 def campaign(kills: int, seed: int, folder: Path, echo=print) -> list[dict]:
-    env = {k: v for k, v in os.environ.items() if not k.startswith("PYTEST_")}  # the user's kernel cache
-    env.pop("MLFLOW_TRACKING_URI", None)
+    env = user_env()
     echo("setting up (one train, score and refresh uninterrupted, timed) ...")
     ws = Workspace(folder, env)
     echo("uninterrupted: " + ", ".join(f"{op} {s:.1f} s" for op, s in ws.durations.items()))
